@@ -1,0 +1,85 @@
+"""Input checks shared by the public functions.
+
+Every check raises ``TypeError`` or ``ValueError`` with a message that says
+what was expected and what arrived (shape, dtype, the first non-finite row).
+Arrays are converted once, to the network's dtype; the caller's array is never
+modified (a conversion copies, and no function here writes into its input).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+_NUMERIC_KINDS = "fiu"
+
+
+def as_float_array(value: Any, name: str, dtype: np.dtype) -> np.ndarray:
+    """``value`` as an array of ``dtype``; refuse non-numeric, empty or non-finite data."""
+    try:
+        array = np.asarray(value)
+    except (ValueError, TypeError) as exc:  # ragged nested lists and the like
+        raise TypeError(f"{name} must be a numeric array, could not convert it: {exc}") from None
+    if array.dtype.kind not in _NUMERIC_KINDS:
+        raise TypeError(
+            f"{name} must hold real numbers (float or int), got dtype {array.dtype}"
+        )
+    if array.size == 0:
+        raise ValueError(f"{name} is empty (shape {array.shape}); at least one sample is needed")
+    converted = array.astype(dtype, copy=False)
+    require_finite(converted, name, converted_from=array.dtype)
+    return converted
+
+
+def require_finite(array: np.ndarray, name: str, converted_from: np.dtype | None = None) -> None:
+    """Raise ``ValueError`` naming the first row that holds NaN or infinity."""
+    if np.isfinite(array.sum()):
+        return  # a single NaN or inf would make the sum non-finite
+    bad = ~np.isfinite(array)
+    if not bad.any():
+        return  # only the sum overflowed
+    index = np.unravel_index(int(np.argmax(bad)), array.shape)
+    where = f"row {index[0]}" + (f", column {index[1]}" if len(index) > 1 else "")
+    note = ""
+    if converted_from is not None and converted_from != array.dtype:
+        note = f" after conversion from {converted_from} to {array.dtype}"
+    raise ValueError(f"{name} has a non-finite value ({array[index]}) at {where}{note}")
+
+
+def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.ndarray:
+    """A 2-D ``(n, n_columns)`` sample matrix (samples are rows)."""
+    array = as_float_array(value, name, dtype)
+    if array.ndim != 2 or array.shape[1] != n_columns:
+        hint = ""
+        if array.ndim == 1:
+            hint = (
+                f"; for one sample use {name}.reshape(1, -1), "
+                f"for one input column use {name}.reshape(-1, 1)"
+            )
+        raise ValueError(
+            f"{name} must have shape (n_samples, {n_columns}), got shape {array.shape}{hint}"
+        )
+    return array
+
+
+def as_targets(value: Any, name: str, n_samples: int, n_outputs: int, dtype: np.dtype) -> np.ndarray:
+    """Targets as ``(n_samples, n_outputs)``; a 1-D target is accepted when ``n_outputs == 1``."""
+    array = as_float_array(value, name, dtype)
+    if array.ndim == 1 and n_outputs == 1:
+        array = array.reshape(-1, 1)
+    if array.shape != (n_samples, n_outputs):
+        raise ValueError(
+            f"{name} must have shape ({n_samples}, {n_outputs}) to match the "
+            f"{n_samples} samples and {n_outputs} network outputs, got shape {array.shape}"
+        )
+    return array
+
+
+def positive_int(value: Any, name: str) -> int:
+    """``value`` as a positive ``int``; bools and floats are refused."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise TypeError(f"{name} must be a positive integer, got {value!r}")
+    if value < 1:
+        raise ValueError(f"{name} must be a positive integer, got {value}")
+    return int(value)

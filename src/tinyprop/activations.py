@@ -1,0 +1,173 @@
+"""Elementwise activations with closed-form derivatives.
+
+An activation maps a pre-activation ``z`` to ``a = f(z)`` element by element.
+The network's backward pass needs ``f'(z)``; :meth:`Activation.derivative`
+receives both ``z`` and ``a`` so that derivatives that are cheapest in terms of
+the output (sigmoid: ``a (1 - a)``, tanh: ``1 - a**2``) cost nothing extra.
+
+Every built-in is written in a form that neither overflows nor warns for
+``|z|`` up to 1e4 in float32 and float64, and returns arrays of ``z``'s dtype.
+
+To write your own, subclass :class:`Activation`, implement ``value`` and
+``derivative``, then verify the pair with :func:`tinyprop.check_activation`
+(see ``docs/custom-activation.md``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = [
+    "Activation",
+    "Sigmoid",
+    "Tanh",
+    "ReLU",
+    "LeakyReLU",
+    "Softplus",
+    "Identity",
+]
+
+
+class Activation:
+    """Base class of elementwise activations ``a = f(z)``.
+
+    Subclasses implement :meth:`value` and :meth:`derivative`. Both take and
+    return arrays of the same shape and dtype as ``z`` and must not modify
+    their arguments.
+
+    ``kinks`` lists the points where ``f`` is not differentiable (ReLU: 0).
+    The derivative returned there is a convention of the subclass; the
+    verification in :func:`tinyprop.check_activation` accepts either one-sided
+    derivative at a declared kink.
+    """
+
+    kinks: tuple[float, ...] = ()
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        """Return ``f(z)`` elementwise."""
+        raise NotImplementedError(f"{type(self).__name__} must implement value(z)")
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        """Return ``f'(z)`` elementwise; ``a`` is ``value(z)``, already computed."""
+        raise NotImplementedError(
+            f"{type(self).__name__} must implement derivative(z, a)"
+        )
+
+    def settings(self) -> dict[str, float]:
+        """The constructor arguments that recreate this activation (for saving)."""
+        return {}
+
+    def __eq__(self, other: object) -> bool:
+        return type(self) is type(other) and self.settings() == other.settings()  # type: ignore[attr-defined]
+
+    def __hash__(self) -> int:
+        return hash((type(self).__name__, tuple(sorted(self.settings().items()))))
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{k}={v!r}" for k, v in self.settings().items())
+        return f"{type(self).__name__}({args})"
+
+
+class Sigmoid(Activation):
+    """Logistic sigmoid.
+
+    ``f(z) = 1 / (1 + exp(-z))``, ``f'(z) = f(z) (1 - f(z)) = a (1 - a)``.
+
+    Evaluated as ``1 / (1 + e)`` for ``z >= 0`` and ``e / (1 + e)`` for ``z < 0``
+    with ``e = exp(-|z|) <= 1``, so no exponential can overflow and large
+    negative ``z`` gives a tiny positive number (or 0), never NaN.
+    """
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        e = np.exp(-np.abs(z))
+        return np.where(z >= 0, 1.0, e) / (1.0 + e)
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        return a * (1.0 - a)
+
+
+class Tanh(Activation):
+    """Hyperbolic tangent.
+
+    ``f(z) = tanh(z)``, ``f'(z) = 1 - tanh(z)**2 = 1 - a**2``.
+    """
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        return np.tanh(z)
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        return 1.0 - a * a
+
+
+class ReLU(Activation):
+    """Rectified linear unit.
+
+    ``f(z) = max(z, 0)``, ``f'(z) = 1 if z > 0 else 0``.
+
+    Convention at the kink: ``f'(0) = 0`` (the left derivative), so a unit
+    whose pre-activation is exactly zero passes no gradient.
+    """
+
+    kinks = (0.0,)
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        return np.maximum(z, 0.0, dtype=z.dtype)
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        return (z > 0).astype(z.dtype)
+
+
+class LeakyReLU(Activation):
+    """Rectifier with a small slope for negative inputs.
+
+    ``f(z) = z if z > 0 else slope * z``, ``f'(z) = 1 if z > 0 else slope``.
+
+    Convention at the kink: ``f'(0) = slope`` (the left derivative).
+    """
+
+    kinks = (0.0,)
+
+    def __init__(self, slope: float = 0.01) -> None:
+        slope = float(slope)
+        if not np.isfinite(slope) or slope < 0.0:
+            raise ValueError(f"LeakyReLU slope must be a finite number >= 0, got {slope!r}")
+        self.slope = slope
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        return np.where(z > 0, z, z * z.dtype.type(self.slope))
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        one, slope = z.dtype.type(1.0), z.dtype.type(self.slope)
+        return np.where(z > 0, one, slope)
+
+    def settings(self) -> dict[str, float]:
+        return {"slope": self.slope}
+
+
+class Softplus(Activation):
+    """Smooth rectifier.
+
+    ``f(z) = log(1 + exp(z))``, ``f'(z) = 1 / (1 + exp(-z))`` (the sigmoid).
+
+    Evaluated as ``max(z, 0) + log1p(exp(-|z|))``, which cannot overflow and
+    keeps full precision for large negative ``z``.
+    """
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        return np.maximum(z, 0.0, dtype=z.dtype) + np.log1p(np.exp(-np.abs(z)))
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        return Sigmoid().value(z)
+
+
+class Identity(Activation):
+    """Identity (linear output).
+
+    ``f(z) = z``, ``f'(z) = 1``.
+    """
+
+    def value(self, z: np.ndarray) -> np.ndarray:
+        return z.copy()
+
+    def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
+        return np.ones_like(z)

@@ -1,0 +1,141 @@
+"""Layers other than activations: the trainable affine map and fixed scalings.
+
+A network is a list of layers applied in order to a batch whose rows are
+samples. Three kinds exist:
+
+- :class:`Affine`, the only layer with parameters: ``z = x W^T + b``;
+- :class:`~tinyprop.activations.Activation` subclasses, elementwise;
+- fixed column scalings (:class:`Standardize`, :class:`Unstandardize`), which
+  carry preprocessing inside the model so that a saved or exported network
+  cannot be used without it. They have no trainable parameters.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ._validate import as_float_array, positive_int
+
+__all__ = ["Affine", "ColumnScaling", "Standardize", "Unstandardize"]
+
+
+class Affine:
+    """Affine map ``z = x W^T + b`` from ``n_in`` inputs to ``n_out`` units.
+
+    ``weight`` has shape ``(n_out, n_in)``: ``weight[k, j]`` connects input
+    ``j`` to unit ``k``. ``bias`` has shape ``(n_out,)``, or is ``None`` when
+    built with ``bias=False``. Both start at zero; :class:`~tinyprop.Network`
+    draws the initial weights from its seed.
+
+    Derivatives, for a batch ``x`` of shape ``(n, n_in)`` and the delta
+    ``d = dE/dz`` of shape ``(n, n_out)``::
+
+        dE/dW = d^T x        (n_out, n_in)
+        dE/db = sum_i d[i]   (n_out,)
+        dE/dx = d W          (n, n_in)
+    """
+
+    def __init__(self, n_in: int, n_out: int, *, bias: bool = True) -> None:
+        self.n_in = positive_int(n_in, "n_in")
+        self.n_out = positive_int(n_out, "n_out")
+        self.weight = np.zeros((self.n_out, self.n_in))
+        self.bias: np.ndarray | None = np.zeros(self.n_out) if bias else None
+
+    @property
+    def params(self) -> list[np.ndarray]:
+        """The live parameter arrays: ``[weight, bias]`` or ``[weight]``."""
+        return [self.weight] if self.bias is None else [self.weight, self.bias]
+
+    def value(self, x: np.ndarray) -> np.ndarray:
+        """``x W^T + b``."""
+        z = x @ self.weight.T
+        if self.bias is not None:
+            z += self.bias
+        return z
+
+    def settings(self) -> dict[str, Any]:
+        return {"n_in": self.n_in, "n_out": self.n_out, "bias": self.bias is not None}
+
+    def __repr__(self) -> str:
+        return f"Affine({self.n_in}, {self.n_out}, bias={self.bias is not None})"
+
+
+class ColumnScaling:
+    """Fixed per-column rescaling ``y = x * gain + offset`` built from a mean and a scale.
+
+    No trainable parameters. Derivative: ``dE/dx = dE/dy * gain`` (columnwise).
+    Use the two subclasses, which say what the numbers mean.
+    """
+
+    def __init__(self, mean: Any, scale: Any) -> None:
+        mean = as_float_array(mean, "mean", np.dtype(np.float64))
+        scale = as_float_array(scale, "scale", np.dtype(np.float64))
+        if mean.ndim != 1 or scale.shape != mean.shape:
+            raise ValueError(
+                f"mean and scale must be 1-D of equal length, got shapes {mean.shape} and {scale.shape}"
+            )
+        if np.any(scale <= 0):
+            raise ValueError(f"scale must be positive, got {scale.min()} at column {int(np.argmin(scale))}")
+        self.mean, self.scale = mean, scale
+        self.gain, self.offset = self._gain_offset(mean, scale)
+
+    @staticmethod
+    def _gain_offset(mean: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        raise NotImplementedError
+
+    @classmethod
+    def from_data(cls, data: Any) -> "ColumnScaling":
+        """Mean and population standard deviation of each column; a constant column gets scale 1."""
+        array = as_float_array(data, "data", np.dtype(np.float64))
+        if array.ndim == 1:
+            array = array.reshape(-1, 1)
+        if array.ndim != 2:
+            raise ValueError(f"data must be 1-D or 2-D, got shape {array.shape}")
+        scale = array.std(axis=0)
+        scale[scale == 0] = 1.0
+        return cls(array.mean(axis=0), scale)
+
+    @property
+    def width(self) -> int:
+        return int(self.mean.shape[0])
+
+    def value(self, x: np.ndarray) -> np.ndarray:
+        """``x * gain + offset``."""
+        return x * self.gain + self.offset
+
+    def input_gradient(self, d_y: np.ndarray) -> np.ndarray:
+        """``dE/dx = dE/dy * gain``."""
+        return d_y * self.gain
+
+    def settings(self) -> dict[str, Any]:
+        return {"mean": self.mean.tolist(), "scale": self.scale.tolist()}
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}(width={self.width})"
+
+
+class Standardize(ColumnScaling):
+    """Input standardisation ``y = (x - mean) / scale``, stored inside the model.
+
+    ``gain = 1 / scale``, ``offset = -mean / scale``. Build it from the
+    training inputs with ``Standardize.from_data(X_train)``.
+    """
+
+    @staticmethod
+    def _gain_offset(mean: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return 1.0 / scale, -mean / scale
+
+
+class Unstandardize(ColumnScaling):
+    """Output un-standardisation ``y = x * scale + mean``, stored inside the model.
+
+    The network learns standardised targets while predicting in the targets'
+    own units. Build it from the training targets with
+    ``Unstandardize.from_data(y_train)``.
+    """
+
+    @staticmethod
+    def _gain_offset(mean: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return scale.copy(), mean.copy()

@@ -1,0 +1,287 @@
+"""The network: forward pass, the delta recursion, and derivatives built on it.
+
+Notation (also used in ``docs/derivation.md``): the network is a list of
+layers ``L_0 .. L_{m-1}``; ``v_0 = X`` and ``v_{i+1} = L_i(v_i)``, so ``v_i`` is
+the input of layer ``i`` and ``v_m`` the output. For an error ``E`` the
+backward pass starts from ``delta = dE/dv_m`` and walks back through the
+layers, turning the delta at a layer's output into the delta at its input:
+
+- activation ``a = f(z)``:   ``delta_z = f'(z) * delta_a``  (elementwise)
+- affine ``z = x W^T + b``:  ``dE/dW = delta_z^T x``, ``dE/db = sum of delta_z``,
+  ``delta_x = delta_z W``
+- fixed scaling:            ``delta_x = delta_y * gain``
+
+Chained, this is the generalised delta rule: the delta of a hidden unit is the
+derivative of its activation times the weighted sum of the deltas of the units
+it feeds. ``backward``, ``jacobian`` and ``input_gradient`` all run this one
+recursion (``_delta_recursion``); they differ only in what they seed it with
+and how they collect the per-layer terms.
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+
+from ._validate import as_float_array, as_samples
+from .activations import Activation
+from .init import SCHEMES, draw_weight
+from .layers import Affine, ColumnScaling
+
+__all__ = ["Network", "Trace"]
+
+Layer = Affine | Activation | ColumnScaling
+
+
+@dataclass(frozen=True)
+class Trace:
+    """What the forward pass keeps for the backward pass.
+
+    ``values[i]`` is the input of layer ``i``; ``values[-1]`` is the output.
+    """
+
+    values: tuple[np.ndarray, ...]
+
+    @property
+    def output(self) -> np.ndarray:
+        return self.values[-1]
+
+
+class Network:
+    """A multilayer network: an ordered list of layers applied to row samples.
+
+    Parameters
+    ----------
+    layers:
+        :class:`~tinyprop.Affine`, :class:`~tinyprop.Activation` and fixed
+        scaling layers, in order. The network takes ownership of them: their
+        arrays are cast to ``dtype`` and, unless ``init=None``, the affine
+        weights are drawn anew.
+    seed:
+        Seed for the weight initialisation (``numpy.random.default_rng``).
+    dtype:
+        ``np.float64`` (default) or ``np.float32``; parameters, inputs and all
+        intermediate arrays use it.
+    init:
+        ``"glorot"`` (default), ``"he"`` or ``"lecun"`` (see :mod:`tinyprop.init`),
+        or ``None`` to keep the weights already in the layers.
+
+    >>> import numpy as np, tinyprop as tp
+    >>> net = tp.Network([tp.Affine(2, 3), tp.Tanh(), tp.Affine(3, 1)], seed=0)
+    >>> net.n_params
+    13
+    >>> net.predict(np.zeros((4, 2))).shape
+    (4, 1)
+    """
+
+    def __init__(
+        self,
+        layers: Sequence[Layer],
+        *,
+        seed: int | None = None,
+        dtype: Any = np.float64,
+        init: str | None = "glorot",
+    ) -> None:
+        self.dtype = _network_dtype(dtype)
+        self.layers: list[Layer] = list(layers)
+        self.n_in, self.n_out = _check_layer_widths(self.layers)
+        if init is not None and init not in SCHEMES:
+            raise ValueError(f"init must be one of {SCHEMES} or None, got {init!r}")
+        rng = np.random.default_rng(seed)
+        for layer in self.layers:
+            if isinstance(layer, Affine):
+                if init is not None:
+                    layer.weight = draw_weight(rng, init, layer.n_in, layer.n_out, self.dtype)
+                    layer.bias = None if layer.bias is None else np.zeros(layer.n_out, self.dtype)
+                else:
+                    layer.weight = np.ascontiguousarray(layer.weight, dtype=self.dtype)
+                    layer.bias = None if layer.bias is None else np.ascontiguousarray(layer.bias, dtype=self.dtype)
+            elif isinstance(layer, ColumnScaling):
+                layer.gain = layer.gain.astype(self.dtype)
+                layer.offset = layer.offset.astype(self.dtype)
+        self._affine = [layer for layer in self.layers if isinstance(layer, Affine)]
+        self._first_affine = next(i for i, layer in enumerate(self.layers) if isinstance(layer, Affine))
+
+    # ----------------------------------------------------------------- parameters
+    @property
+    def params(self) -> list[np.ndarray]:
+        """The live parameter arrays in layer order, weight before bias."""
+        return [p for layer in self._affine for p in layer.params]
+
+    @property
+    def n_params(self) -> int:
+        return sum(p.size for p in self.params)
+
+    def get_vector(self) -> np.ndarray:
+        """All parameters as one new flat vector, in the order of :attr:`params`."""
+        return np.concatenate([p.ravel() for p in self.params])
+
+    def set_vector(self, theta: Any) -> None:
+        """Copy a flat vector into the live parameter arrays (which keep their identity)."""
+        theta = as_float_array(theta, "theta", self.dtype)
+        if theta.shape != (self.n_params,):
+            raise ValueError(f"theta must have shape ({self.n_params},), got shape {theta.shape}")
+        start = 0
+        for p in self.params:
+            p[...] = theta[start:start + p.size].reshape(p.shape)
+            start += p.size
+
+    # ----------------------------------------------------------------- forward
+    def predict(self, X: Any) -> np.ndarray:
+        """Network output ``(n, n_out)`` for inputs ``X`` ``(n, n_in)``; keeps no trace."""
+        v = as_samples(X, "X", self.n_in, self.dtype)
+        for layer in self.layers:
+            v = layer.value(v)
+        return v
+
+    def forward(self, X: Any) -> tuple[np.ndarray, Trace]:
+        """Output and the :class:`Trace` that :meth:`backward` needs."""
+        values = [as_samples(X, "X", self.n_in, self.dtype)]
+        for layer in self.layers:
+            values.append(layer.value(values[-1]))
+        return values[-1], Trace(tuple(values))
+
+    # ----------------------------------------------------------------- backward
+    def backward(
+        self, trace: Trace, d_out: Any, *, need_input: bool = True
+    ) -> tuple[list[np.ndarray], np.ndarray | None]:
+        """Gradients of an error ``E`` given ``d_out = dE/d(output)``.
+
+        Returns ``(grads, d_input)``: ``grads`` aligned with :attr:`params`
+        (``dE/dW = delta^T x``, ``dE/db = sum of delta`` per affine layer) and
+        ``d_input = dE/dX`` of shape ``(n, n_in)`` (``None`` when
+        ``need_input=False``, which skips that last product).
+        """
+        d_out = self._check_d_out(trace, d_out)
+        terms, d_input = self._delta_recursion(trace, d_out, need_input)
+        grads: list[np.ndarray] = []
+        for layer, x, delta in terms:
+            grads.append(delta.T @ x)
+            if layer.bias is not None:
+                grads.append(delta.sum(axis=0))
+        return grads, d_input
+
+    def _delta_recursion(
+        self, trace: Trace, delta: np.ndarray, need_input: bool
+    ) -> tuple[list[tuple[Affine, np.ndarray, np.ndarray]], np.ndarray | None]:
+        """Walk from the output delta back to the input.
+
+        Returns, in layer order, ``(layer, x, delta_z)`` for every affine layer
+        (its input and the delta at its output), and ``dE/dX`` or ``None``.
+        """
+        values = trace.values
+        terms = []
+        for i in range(len(self.layers) - 1, -1, -1):
+            layer = self.layers[i]
+            if isinstance(layer, Affine):
+                terms.append((layer, values[i], delta))
+                if i == self._first_affine and not need_input:
+                    terms.reverse()
+                    return terms, None
+                delta = delta @ layer.weight
+            elif isinstance(layer, Activation):
+                delta = delta * layer.derivative(values[i], values[i + 1])
+            else:
+                delta = layer.input_gradient(delta)
+        terms.reverse()
+        return terms, delta
+
+    def _check_d_out(self, trace: Trace, d_out: Any) -> np.ndarray:
+        if not isinstance(trace, Trace) or len(trace.values) != len(self.layers) + 1:
+            raise TypeError("trace must be the Trace returned by this network's forward()")
+        d_out = as_float_array(d_out, "d_out", self.dtype)
+        if d_out.shape != trace.output.shape:
+            raise ValueError(
+                f"d_out must have the output's shape {trace.output.shape}, got shape {d_out.shape}"
+            )
+        return d_out
+
+    # ----------------------------------------------------------------- derivatives per sample
+    def jacobian(self, X: Any) -> np.ndarray:
+        """``J[i * n_out + k, p] = d output[i, k] / d theta[p]``, by backpropagation.
+
+        Shape ``(n * n_out, n_params)``; columns follow :meth:`get_vector`.
+        For output ``k`` the recursion is seeded with ``delta = e_k`` for every
+        sample, and each sample keeps its own outer product ``delta_i x_i^T``
+        instead of the batch sum that :meth:`backward` forms.
+        """
+        _, trace = self.forward(X)
+        n = trace.values[0].shape[0]
+        J = np.empty((n, self.n_out, self.n_params), dtype=self.dtype)
+        for k in range(self.n_out):
+            seed = np.zeros((n, self.n_out), dtype=self.dtype)
+            seed[:, k] = 1.0
+            terms, _ = self._delta_recursion(trace, seed, need_input=False)
+            columns = []
+            for layer, x, delta in terms:
+                columns.append((delta[:, :, None] * x[:, None, :]).reshape(n, -1))
+                if layer.bias is not None:
+                    columns.append(delta)
+            J[:, k, :] = np.concatenate(columns, axis=1)
+        return J.reshape(n * self.n_out, self.n_params)
+
+    def input_gradient(self, X: Any) -> np.ndarray:
+        """``G[i, k, j] = d output[i, k] / d X[i, j]``, shape ``(n, n_out, n_in)``."""
+        _, trace = self.forward(X)
+        n = trace.values[0].shape[0]
+        G = np.empty((n, self.n_out, self.n_in), dtype=self.dtype)
+        for k in range(self.n_out):
+            seed = np.zeros((n, self.n_out), dtype=self.dtype)
+            seed[:, k] = 1.0
+            _, G[:, k, :] = self._delta_recursion(trace, seed, need_input=True)
+        return G
+
+    # ----------------------------------------------------------------- utilities
+    def copy(self, dtype: Any = None) -> "Network":
+        """An independent copy (same layers and weights), optionally in another dtype."""
+        layers = copy.deepcopy(self.layers)
+        return Network(layers, dtype=self.dtype if dtype is None else dtype, init=None)
+
+    def __repr__(self) -> str:
+        inner = ", ".join(repr(layer) for layer in self.layers)
+        return f"Network([{inner}], dtype={self.dtype.name})"
+
+
+def _network_dtype(dtype: Any) -> np.dtype:
+    try:
+        resolved = np.dtype(dtype)
+    except TypeError:
+        raise TypeError(f"dtype must be float32 or float64, got {dtype!r}") from None
+    if resolved not in (np.dtype(np.float32), np.dtype(np.float64)):
+        raise TypeError(f"dtype must be float32 or float64, got {resolved}")
+    return resolved
+
+
+def _check_layer_widths(layers: list[Layer]) -> tuple[int, int]:
+    """Check that consecutive widths agree; return the network's ``(n_in, n_out)``."""
+    if not layers:
+        raise ValueError("a network needs at least one layer, got an empty list")
+    width: int | None = None
+    n_in: int | None = None
+    for index, layer in enumerate(layers):
+        if isinstance(layer, Activation):
+            continue
+        if isinstance(layer, Affine):
+            layer_in, layer_out = layer.n_in, layer.n_out
+        elif isinstance(layer, ColumnScaling):
+            layer_in = layer_out = layer.width
+        else:
+            raise TypeError(
+                f"layer {index} is a {type(layer).__name__}; expected Affine, an Activation "
+                "subclass, Standardize or Unstandardize"
+            )
+        if width is not None and layer_in != width:
+            raise ValueError(
+                f"layer {index} ({layer!r}) expects {layer_in} inputs but the layer before it "
+                f"produces {width}"
+            )
+        if n_in is None:
+            n_in = layer_in
+        width = layer_out
+    if not any(isinstance(layer, Affine) for layer in layers):
+        raise ValueError("a network needs at least one Affine layer (it has no parameters otherwise)")
+    assert n_in is not None and width is not None
+    return n_in, width
