@@ -1,0 +1,611 @@
+"""The mini-batch training loop: shuffling, validation, early stopping, divergence guard.
+
+One epoch of :func:`train`:
+
+1. permute the training rows with the loop's own ``numpy.random.default_rng(seed)``;
+2. for each mini-batch of ``batch_size`` rows (the last one may be smaller):
+   forward pass, loss ``E_batch``, backward pass (``need_input=False``), the
+   optional L2 term ``l2 * W`` added to every weight-matrix gradient (the
+   gradient of ``l2/2 * sum ||W||_F**2``; biases are not penalised), then
+   ``optimizer.update(net.params, grads)``;
+3. record the training loss (``loss`` over all training rows, with the
+   weights at the end of the epoch, without the L2 term) and, when given,
+   the validation loss on the validation rows;
+4. bookkeeping for early stopping, the progress line and the callback.
+
+The same seed, data and starting weights give bit-identical weights: the
+only randomness is the permutation, and it comes from the seeded generator.
+
+**Divergence guard.** Training stops as soon as the mini-batch loss, the
+squared gradient norm, an updated weight, or the end-of-epoch training or
+validation loss is not finite. The network is left holding the last finite
+weights (those before the update that produced a non-finite weight, else the
+current ones) and :class:`TrainingDiverged` is raised; its ``result`` holds
+the history up to that point. NumPy's overflow and invalid-value warnings
+are silenced inside the loop because this guard reports the event instead.
+
+**Checkpoint and resume.** :class:`TrainingState` is everything needed to
+continue a run exactly: weights, optimizer state, the generator's state, the
+epoch count, the history and the early-stopping bookkeeping. It is returned
+in ``result.state`` and can be taken after any epoch from the callback
+(``info.capture()``). ``train(..., resume=state)`` continues from it; the
+final weights are bit-identical to an uninterrupted run.
+:meth:`TrainingState.to_parts` splits it into JSON-able scalars and named
+arrays (no pickle) for a checkpoint file; :meth:`TrainingState.from_parts`
+reverses it.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import numpy as np
+
+from ._validate import as_samples, as_targets, positive_int, require_finite
+from .layers import Affine
+from .losses import Loss
+from .network import Network
+from .optim import Optimizer, OptimizerState
+from .schedules import real_in_range
+
+__all__ = ["train", "TrainingResult", "TrainingState", "TrainingDiverged", "History", "EpochInfo"]
+
+STOP_EPOCHS = "epochs"
+STOP_EARLY = "early stopping"
+STOP_CALLBACK = "callback"
+STOP_DIVERGED = "diverged"
+
+
+@dataclass(frozen=True)
+class History:
+    """Loss per epoch: ``training[e - 1]`` and ``validation[e - 1]`` belong to epoch ``e``.
+
+    ``validation`` is ``None`` when no validation data was given.
+    """
+
+    training: tuple[float, ...]
+    validation: tuple[float, ...] | None
+
+
+@dataclass
+class TrainingState:
+    """Everything needed to continue a training run exactly where it stopped.
+
+    ``epoch`` epochs are complete. ``weights`` are copies of ``net.params``;
+    ``optimizer`` the optimizer's state; ``rng`` the bit generator state of
+    the shuffling generator (JSON-able); ``training_loss`` and
+    ``validation_loss`` the history; ``best_epoch``, ``best_loss``,
+    ``best_weights`` and ``epochs_since_best`` the early-stopping bookkeeping
+    (``None`` without validation data); ``settings`` the run's settings, which
+    a resumed run must match.
+    """
+
+    epoch: int
+    weights: list[np.ndarray]
+    optimizer: OptimizerState
+    rng: dict[str, Any]
+    training_loss: list[float]
+    validation_loss: list[float] | None
+    best_epoch: int | None
+    best_loss: float | None
+    best_weights: list[np.ndarray] | None
+    epochs_since_best: int
+    settings: dict[str, Any]
+
+    def to_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """Split into ``(scalars, arrays)``: a JSON-able dict and a dict of named arrays.
+
+        Array names: ``"weights/<i>"``, ``"best_weights/<i>"`` and
+        ``"optimizer/<slot>/<i>"``. The arrays are the state's own (not copies).
+        """
+        scalars = {
+            "format": "tinyprop training state",
+            "version": 1,
+            "epoch": self.epoch,
+            "n_weights": len(self.weights),
+            "optimizer": {"kind": self.optimizer.kind, "settings": self.optimizer.settings, "steps": self.optimizer.steps},
+            "rng": self.rng,
+            "training_loss": list(self.training_loss),
+            "validation_loss": None if self.validation_loss is None else list(self.validation_loss),
+            "best_epoch": self.best_epoch,
+            "best_loss": self.best_loss,
+            "epochs_since_best": self.epochs_since_best,
+            "settings": self.settings,
+        }
+        arrays = {f"weights/{i}": w for i, w in enumerate(self.weights)}
+        if self.best_weights is not None:
+            arrays.update({f"best_weights/{i}": w for i, w in enumerate(self.best_weights)})
+        arrays.update({f"optimizer/{name}": a for name, a in self.optimizer.arrays.items()})
+        return scalars, arrays
+
+    @classmethod
+    def from_parts(cls, scalars: dict[str, Any], arrays: dict[str, np.ndarray]) -> "TrainingState":
+        """Rebuild a state from :meth:`to_parts` output; ``ValueError`` if anything is missing."""
+        try:
+            if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
+                raise ValueError(f"not a version-1 tinyprop training state: {scalars['format']!r} {scalars['version']!r}")
+            n = int(scalars["n_weights"])
+            weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
+            has_best = f"best_weights/0" in arrays
+            best = [np.asarray(arrays[f"best_weights/{i}"]) for i in range(n)] if has_best else None
+            prefix = "optimizer/"
+            optimizer = OptimizerState(
+                kind=scalars["optimizer"]["kind"],
+                settings=scalars["optimizer"]["settings"],
+                steps=scalars["optimizer"]["steps"],
+                arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
+            )
+            expected = {f"weights/{i}" for i in range(n)} | ({f"best_weights/{i}" for i in range(n)} if has_best else set())
+            extra = {k for k in arrays if not k.startswith(prefix)} - expected
+            if extra:
+                raise ValueError(f"unexpected arrays {sorted(extra)}")
+            return cls(
+                epoch=int(scalars["epoch"]),
+                weights=weights,
+                optimizer=optimizer,
+                rng=scalars["rng"],
+                training_loss=[float(v) for v in scalars["training_loss"]],
+                validation_loss=None if scalars["validation_loss"] is None else [float(v) for v in scalars["validation_loss"]],
+                best_epoch=scalars["best_epoch"],
+                best_loss=scalars["best_loss"],
+                best_weights=best,
+                epochs_since_best=int(scalars["epochs_since_best"]),
+                settings=scalars["settings"],
+            )
+        except KeyError as exc:
+            raise ValueError(f"training state is missing {exc}") from None
+
+
+@dataclass(frozen=True)
+class TrainingResult:
+    """What :func:`train` returns.
+
+    ``history``: per-epoch losses of the whole run (a resumed run includes the
+    epochs before the resume). ``epochs_run``: epochs completed in total.
+    ``stop_reason``: ``"epochs"`` (the epoch limit), ``"early stopping"``,
+    ``"callback"`` or ``"diverged"``; ``message`` says it in a sentence.
+    ``best_epoch`` / ``best_validation_loss``: the epoch (1-based) with the
+    lowest validation loss and that loss (``None`` without validation data).
+    ``updates``: optimizer updates made in total. ``elapsed``: seconds spent
+    in this call. ``state``: the :class:`TrainingState` after the last
+    completed epoch (before best weights are restored), for resuming.
+    """
+
+    history: History
+    epochs_run: int
+    stop_reason: str
+    message: str
+    best_epoch: int | None
+    best_validation_loss: float | None
+    updates: int
+    elapsed: float
+    state: TrainingState = field(repr=False)
+
+
+class TrainingDiverged(ArithmeticError):
+    """Training produced a non-finite loss, gradient or weight.
+
+    The network holds the last finite weights; ``result`` is the
+    :class:`TrainingResult` up to that point (``stop_reason == "diverged"``).
+    """
+
+    def __init__(self, message: str, result: TrainingResult) -> None:
+        super().__init__(message)
+        self.result = result
+
+
+@dataclass(frozen=True)
+class EpochInfo:
+    """What the per-epoch callback receives.
+
+    ``epoch`` (1-based) of ``epochs``; the epoch's ``training_loss`` and
+    ``validation_loss`` (``None`` without validation data); ``best_epoch``;
+    ``elapsed`` seconds in this call. ``capture()`` returns a
+    :class:`TrainingState` of this moment (a copy), for checkpoints.
+    """
+
+    epoch: int
+    epochs: int
+    training_loss: float
+    validation_loss: float | None
+    best_epoch: int | None
+    elapsed: float
+    capture: Callable[[], TrainingState] = field(repr=False)
+
+
+def train(
+    net: Network,
+    X: Any,
+    y: Any,
+    *,
+    loss: Loss,
+    optimizer: Optimizer,
+    epochs: int,
+    batch_size: int,
+    validation: tuple[Any, Any] | None = None,
+    patience: int | None = None,
+    seed: int | None = None,
+    progress: bool = False,
+    l2: float = 0.0,
+    callback: Callable[[EpochInfo], bool | None] | None = None,
+    resume: TrainingState | None = None,
+) -> TrainingResult:
+    """Train ``net`` in place by mini-batch gradient descent (see the module docstring).
+
+    Parameters
+    ----------
+    net, X, y:
+        The network and its training data: ``X`` ``(n, n_in)``, ``y``
+        ``(n, n_out)`` (1-D allowed for one output). Converted once to the
+        network's dtype; the caller's arrays are not modified.
+    loss:
+        A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
+        losses (``MeanSquaredError``, the cross-entropies) make the step size
+        independent of ``batch_size``; ``SquaredError`` sums over the batch.
+    optimizer:
+        A :class:`~tinyprop.optim.Optimizer`; it keeps its state between calls.
+    epochs:
+        Total number of epochs, counting those already in ``resume``.
+    batch_size:
+        Rows per update; a batch larger than ``n`` means full-batch training.
+    validation:
+        Optional ``(X_val, y_val)``; its loss is recorded after every epoch.
+    patience:
+        Early stopping (needs ``validation``): stop after ``patience`` epochs
+        without a strictly lower validation loss and restore the weights of the
+        best epoch. The best weights are also restored when the epoch limit or
+        the callback ends the run; not after divergence.
+    seed:
+        Seed of the shuffling generator (``numpy.random.default_rng``).
+    progress:
+        Print a progress line on stderr after each epoch (epoch, losses,
+        elapsed and estimated remaining time); it is rewritten in place when
+        stderr is a terminal and printed as plain lines otherwise.
+    l2:
+        Weight of the L2 penalty ``l2/2 * sum ||W||**2`` on the weight
+        matrices (not biases), added to the gradient.
+    callback:
+        Called with an :class:`EpochInfo` after every epoch; returning
+        ``True`` stops training (``stop_reason == "callback"``), ``None`` or
+        ``False`` continues.
+    resume:
+        A :class:`TrainingState` to continue from; ``net``'s weights and the
+        optimizer's state are replaced by the state's, and the settings
+        (``batch_size``, ``seed``, ``l2``, ``patience``, ``loss``, data sizes)
+        must equal those of the run that produced it.
+
+    Raises
+    ------
+    TrainingDiverged
+        When a loss, gradient or weight becomes non-finite (the network keeps
+        the last finite weights).
+
+    >>> import numpy as np, tinyprop as tp
+    >>> from tinyprop.optim import Adam
+    >>> from tinyprop.train import train
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.uniform(-1, 1, (64, 2)); y = X @ np.array([1.5, -2.0]) + 0.5  # synthetic
+    >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
+    >>> result = train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(lr=0.05),
+    ...                epochs=200, batch_size=16, seed=1)
+    >>> result.stop_reason, result.history.training[-1] < 1e-8
+    ('epochs', True)
+    """
+    run = _Run(net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback)
+    if resume is not None:
+        run.restore(resume)
+    return run.execute()
+
+
+class _Run:
+    """One call of :func:`train`: checked inputs, the loop and its bookkeeping."""
+
+    def __init__(
+        self,
+        net: Network,
+        X: Any,
+        y: Any,
+        loss: Loss,
+        optimizer: Optimizer,
+        epochs: int,
+        batch_size: int,
+        validation: tuple[Any, Any] | None,
+        patience: int | None,
+        seed: int | None,
+        progress: bool,
+        l2: float,
+        callback: Callable[[EpochInfo], bool | None] | None,
+    ) -> None:
+        if not isinstance(net, Network):
+            raise TypeError(f"net must be a tinyprop Network, got {type(net).__name__}")
+        if not isinstance(loss, Loss):
+            raise TypeError(f"loss must be a tinyprop Loss (e.g. MeanSquaredError()), got {type(loss).__name__}")
+        if not isinstance(optimizer, Optimizer):
+            raise TypeError(f"optimizer must be a tinyprop Optimizer (e.g. Adam()), got {type(optimizer).__name__}")
+        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer))):
+            raise TypeError(f"seed must be None or an integer >= 0, got {seed!r}")
+        if seed is not None and seed < 0:
+            raise ValueError(f"seed must be None or an integer >= 0, got {seed}")
+        if not isinstance(progress, bool):
+            raise TypeError(f"progress must be True or False, got {progress!r}")
+        if callback is not None and not callable(callback):
+            raise TypeError(f"callback must be callable or None, got {type(callback).__name__}")
+        for i, p in enumerate(net.params):
+            require_finite(p, f"network parameter array {i}")
+        self.net, self.loss, self.optimizer, self.callback = net, loss, optimizer, callback
+        self.X = as_samples(X, "X", net.n_in, net.dtype)
+        self.y = as_targets(y, "y", self.X.shape[0], net.n_out, net.dtype)
+        self.validation = _check_validation(validation, net)
+        self.epochs = positive_int(epochs, "epochs")
+        self.batch_size = positive_int(batch_size, "batch_size")
+        self.patience = None if patience is None else positive_int(patience, "patience")
+        if self.patience is not None and self.validation is None:
+            raise ValueError("patience (early stopping) needs validation data: pass validation=(X_val, y_val)")
+        self.l2 = real_in_range(l2, "l2", low=0.0)
+        self.progress = progress
+        self.rng = np.random.default_rng(seed)
+        self.settings = {
+            "batch_size": self.batch_size,
+            "seed": None if seed is None else int(seed),
+            "l2": self.l2,
+            "patience": self.patience,
+            "loss": repr(loss),
+            "dtype": net.dtype.name,
+            "n_samples": int(self.X.shape[0]),
+            "n_validation": None if self.validation is None else int(self.validation[0].shape[0]),
+            "parameter_shapes": [list(p.shape) for p in net.params],
+        }
+        self.params = net.params
+        self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
+        self.backup = [np.empty_like(p) for p in self.params]
+        self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
+        self.epoch = 0
+        self.training_loss: list[float] = []
+        self.validation_loss: list[float] | None = None if self.validation is None else []
+        self.best_epoch: int | None = None
+        self.best_loss: float | None = None
+        self.epochs_since_best = 0
+        self.started = time.perf_counter()
+        self.first_epoch_of_call = 1
+
+    # ----------------------------------------------------------------- state
+    def capture(self) -> TrainingState:
+        has_best = self.best_epoch is not None and self.best_weights is not None
+        return TrainingState(
+            epoch=self.epoch,
+            weights=[p.copy() for p in self.params],
+            optimizer=self.optimizer.get_state(),
+            rng=_copy_json(self.rng.bit_generator.state),
+            training_loss=list(self.training_loss),
+            validation_loss=None if self.validation_loss is None else list(self.validation_loss),
+            best_epoch=self.best_epoch,
+            best_loss=self.best_loss,
+            best_weights=[w.copy() for w in self.best_weights] if has_best else None,  # type: ignore[union-attr]
+            epochs_since_best=self.epochs_since_best,
+            settings=_copy_json(self.settings),
+        )
+
+    def restore(self, state: TrainingState) -> None:
+        if not isinstance(state, TrainingState):
+            raise TypeError(f"resume must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
+        differing = sorted(k for k in set(self.settings) | set(state.settings) if self.settings.get(k) != state.settings.get(k))
+        if differing:
+            detail = ", ".join(f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing)
+            raise ValueError(f"resume state does not match this training run ({detail})")
+        if not 0 <= state.epoch <= self.epochs:
+            raise ValueError(f"resume state has {state.epoch} epochs done, more than epochs={self.epochs}")
+        if len(state.training_loss) != state.epoch:
+            raise ValueError(f"resume state has {len(state.training_loss)} history entries for {state.epoch} epochs")
+        _check_like(self.params, state.weights, "resume state weights")
+        if state.best_weights is not None:
+            _check_like(self.best_weights or [], state.best_weights, "resume state best_weights")
+        probe = type(self.rng.bit_generator)()
+        try:
+            probe.state = _copy_json(state.rng)
+        except (TypeError, ValueError, KeyError) as exc:
+            raise ValueError(f"resume state has an unusable rng state: {exc}") from None
+        self.optimizer.set_state(state.optimizer)  # checks everything before changing anything
+        # from here on nothing can fail
+        _copy_into(self.params, state.weights, "resume state weights")
+        if state.best_weights is not None:
+            _copy_into(self.best_weights or [], state.best_weights, "resume state best_weights")
+        self.rng = np.random.Generator(probe)
+        self.epoch = state.epoch
+        self.first_epoch_of_call = state.epoch + 1
+        self.training_loss = list(state.training_loss)
+        self.validation_loss = None if state.validation_loss is None else list(state.validation_loss)
+        self.best_epoch, self.best_loss = state.best_epoch, state.best_loss
+        self.epochs_since_best = state.epochs_since_best
+
+    # ----------------------------------------------------------------- the loop
+    def execute(self) -> TrainingResult:
+        self.started = time.perf_counter()
+        reason = self._stop_reason(stop_requested=False)
+        while reason is None:
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                problem = self._epoch()
+            if problem is not None:
+                self._finish_progress()
+                result = self._result(STOP_DIVERGED, problem)
+                raise TrainingDiverged(result.message, result)
+            reason = self._after_epoch()
+        self._finish_progress()
+        result = self._result(reason, None)
+        if self.patience is not None and self.best_epoch is not None:
+            _copy_into(self.params, self.best_weights or [], "best weights")
+        return result
+
+    def _epoch(self) -> str | None:
+        """Run one epoch; return a description of a divergence, or ``None``."""
+        order = self.rng.permutation(self.X.shape[0])
+        X, y = self.X[order], self.y[order]
+        for start in range(0, X.shape[0], self.batch_size):
+            problem = self._step(X[start:start + self.batch_size], y[start:start + self.batch_size])
+            if problem is not None:
+                return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+        self.epoch += 1
+        self.training_loss.append(self.loss.value(self.net.predict(self.X), self.y))
+        if not math.isfinite(self.training_loss[-1]):
+            return f"after epoch {self.epoch}: the training loss is {self.training_loss[-1]}"
+        if self.validation is not None and self.validation_loss is not None:
+            self.validation_loss.append(self.loss.value(self.net.predict(self.validation[0]), self.validation[1]))
+            if not math.isfinite(self.validation_loss[-1]):
+                return f"after epoch {self.epoch}: the validation loss is {self.validation_loss[-1]}"
+        return None
+
+    def _step(self, xb: np.ndarray, yb: np.ndarray) -> str | None:
+        out, trace = self.net.forward(xb)
+        batch_loss = self.loss.value(out, yb)
+        if not math.isfinite(batch_loss):
+            return f"the mini-batch loss is {batch_loss}"
+        grads, _ = self.net.backward(trace, self.loss.gradient(out, yb), need_input=False)
+        if self.l2:
+            for g, p, is_weight in zip(grads, self.params, self.is_weight):
+                if is_weight:
+                    g += self.l2 * p
+        squared_norm = sum(float(np.vdot(g, g)) for g in grads)
+        if not math.isfinite(squared_norm):
+            return f"the squared gradient norm is {squared_norm}"
+        for saved, p in zip(self.backup, self.params):
+            np.copyto(saved, p)
+        self.optimizer.update(self.params, grads)
+        if not all(np.isfinite(p).all() for p in self.params):
+            _copy_into(self.params, self.backup, "backup")
+            return "the update made a weight non-finite (the weights before it were restored)"
+        return None
+
+    def _after_epoch(self) -> str | None:
+        if self.validation_loss is not None:
+            current = self.validation_loss[-1]
+            if self.best_loss is None or current < self.best_loss:
+                self.best_epoch, self.best_loss, self.epochs_since_best = self.epoch, current, 0
+                _copy_into(self.best_weights or [], self.params, "best weights")
+            else:
+                self.epochs_since_best += 1
+        self._show_progress()
+        stop_requested = False
+        if self.callback is not None:
+            info = EpochInfo(
+                epoch=self.epoch,
+                epochs=self.epochs,
+                training_loss=self.training_loss[-1],
+                validation_loss=None if self.validation_loss is None else self.validation_loss[-1],
+                best_epoch=self.best_epoch,
+                elapsed=time.perf_counter() - self.started,
+                capture=self.capture,
+            )
+            answer = self.callback(info)
+            if answer is not None and not isinstance(answer, bool):
+                raise TypeError(f"callback must return None, True (stop) or False, got {answer!r}")
+            stop_requested = bool(answer)
+        return self._stop_reason(stop_requested)
+
+    def _stop_reason(self, stop_requested: bool) -> str | None:
+        if self.patience is not None and self.epochs_since_best >= self.patience:
+            return STOP_EARLY
+        if stop_requested:
+            return STOP_CALLBACK
+        if self.epoch >= self.epochs:
+            return STOP_EPOCHS
+        return None
+
+    # ----------------------------------------------------------------- reporting
+    def _result(self, reason: str, problem: str | None) -> TrainingResult:
+        messages = {
+            STOP_EPOCHS: f"completed {self.epoch} of {self.epochs} epochs",
+            STOP_EARLY: (
+                f"early stopping after epoch {self.epoch}: no lower validation loss for {self.patience} "
+                f"epochs; restored the weights of epoch {self.best_epoch}"
+            ),
+            STOP_CALLBACK: f"the callback stopped training after epoch {self.epoch}",
+            STOP_DIVERGED: (
+                f"training diverged {problem}; the network holds the last finite weights. "
+                f"Lower the learning rate (lr={self.optimizer.lr:g}) or set clip_norm on the optimizer"
+            ),
+        }
+        message = messages[reason]
+        if reason == STOP_CALLBACK and self.patience is not None and self.best_epoch is not None:
+            message += f"; restored the weights of epoch {self.best_epoch}"
+        if reason == STOP_EPOCHS and self.patience is not None and self.best_epoch is not None:
+            message += f"; restored the weights of epoch {self.best_epoch} (lowest validation loss)"
+        return TrainingResult(
+            history=History(
+                tuple(self.training_loss), None if self.validation_loss is None else tuple(self.validation_loss)
+            ),
+            epochs_run=self.epoch,
+            stop_reason=reason,
+            message=message,
+            best_epoch=self.best_epoch,
+            best_validation_loss=self.best_loss,
+            updates=self.optimizer.steps,
+            elapsed=time.perf_counter() - self.started,
+            state=self.capture(),
+        )
+
+    def _show_progress(self) -> None:
+        if not self.progress:
+            return
+        elapsed = time.perf_counter() - self.started
+        done = self.epoch - self.first_epoch_of_call + 1
+        remaining = elapsed / done * (self.epochs - self.epoch)
+        line = f"epoch {self.epoch}/{self.epochs}  training loss {self.training_loss[-1]:.6g}"
+        if self.validation_loss is not None:
+            line += f"  validation loss {self.validation_loss[-1]:.6g}"
+        line += f"  elapsed {elapsed:.1f} s  remaining ~{remaining:.1f} s"
+        if _is_terminal(sys.stderr):
+            sys.stderr.write("\r" + line + "\033[K")
+        else:
+            sys.stderr.write(line + "\n")
+        sys.stderr.flush()
+
+    def _finish_progress(self) -> None:
+        if self.progress and self.epoch >= self.first_epoch_of_call and _is_terminal(sys.stderr):
+            sys.stderr.write("\n")
+            sys.stderr.flush()
+
+
+def _is_terminal(stream: Any) -> bool:
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):
+        return False
+
+
+def _check_validation(validation: Any, net: Network) -> tuple[np.ndarray, np.ndarray] | None:
+    if validation is None:
+        return None
+    if not isinstance(validation, (tuple, list)) or len(validation) != 2:
+        raise TypeError(f"validation must be a pair (X_val, y_val) or None, got {type(validation).__name__}")
+    X_val = as_samples(validation[0], "validation X", net.n_in, net.dtype)
+    y_val = as_targets(validation[1], "validation y", X_val.shape[0], net.n_out, net.dtype)
+    return X_val, y_val
+
+
+def _check_like(targets: list[np.ndarray], sources: list[np.ndarray], what: str) -> None:
+    """Raise ``ValueError`` unless ``sources`` match ``targets`` in count, shapes and dtypes and are finite."""
+    if len(targets) != len(sources):
+        raise ValueError(f"{what}: expected {len(targets)} arrays, got {len(sources)}")
+    for i, (t, s) in enumerate(zip(targets, sources)):
+        s = np.asarray(s)
+        if s.shape != t.shape or s.dtype != t.dtype:
+            raise ValueError(f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} {s.dtype}")
+        require_finite(s, f"{what} array {i}")
+
+
+def _copy_into(targets: list[np.ndarray], sources: list[np.ndarray], what: str) -> None:
+    _check_like(targets, sources, what)
+    for t, s in zip(targets, sources):
+        np.copyto(t, s)
+
+
+def _copy_json(value: Any) -> Any:
+    """A deep copy of nested dicts/lists of scalars."""
+    if isinstance(value, dict):
+        return {k: _copy_json(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_copy_json(v) for v in value]
+    return value
