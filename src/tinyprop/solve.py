@@ -125,8 +125,9 @@ def solve(
 
     >>> import numpy as np, tinyprop as tp
     >>> from tinyprop.solve import solve
-    >>> x = np.linspace(0, 2, 20).reshape(-1, 1); y = 3.0 * np.tanh(1.5 * x[:, 0] - 0.5)  # synthetic
-    >>> net = tp.Network([tp.Affine(1, 1), tp.Tanh(), tp.Affine(1, 1, bias=False)], seed=0)
+    >>> x = np.linspace(-2, 2, 20).reshape(-1, 1)
+    >>> y = 3.0 / (1.0 + np.exp(0.5 - 1.5 * x[:, 0]))  # synthetic: 3 * sigmoid(1.5 x - 0.5)
+    >>> net = tp.Network([tp.Affine(1, 1), tp.Sigmoid(), tp.Affine(1, 1, bias=False)], seed=0)
     >>> result = solve(net, x, y)
     >>> result.success, np.round(result.theta, 6).tolist()
     (True, [1.5, -0.5, 3.0])
