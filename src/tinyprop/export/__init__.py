@@ -1,0 +1,20 @@
+"""Dependency-free inference code generated from a network: C99 and plain Python.
+
+- :func:`export_c` writes ``<name>.h`` and ``<name>.c`` (C99, ``<math.h>`` only);
+- :func:`export_python` writes ``<name>.py`` (standard library ``math`` only);
+- :func:`agreement_bound` gives the tolerance for comparing the generated
+  code's results with ``Network.predict``.
+
+Custom activations take part through the methods ``c_expression(ctype)`` and
+``python_expression()`` (see :mod:`tinyprop.export._activations` and
+``docs/export.md``).
+
+Not certified for safety functions: validation on the target hardware and
+against the applicable functional-safety standards, local codes and qualified
+review is the user's responsibility.
+"""
+
+from .bound import agreement_bound
+from .c99 import export_c
+
+__all__ = ["agreement_bound", "export_c"]
