@@ -13,9 +13,13 @@ reference ``r`` of the same entry::
 
     error = |g - r| / max(|r|, floor)
 
-- :func:`check_gradient`: ``floor = 1e-6 * max |r|`` over *all* parameters, so
-  entries far smaller than the largest gradient are judged on an absolute
-  scale instead of amplifying the reference's own rounding noise.
+- :func:`check_gradient`: ``floor = max(1e-3 * max |r|, 1e-5 * max(1, |E|))``
+  with ``max |r|`` over *all* parameters and ``E`` the loss value. Entries a
+  thousand times smaller than the largest gradient (vanishing gradients in
+  early layers), or all entries when the gradient is zero (dead units), are
+  judged on that absolute scale: their numerical reference carries rounding
+  noise of order ``eps |E| / h`` that would otherwise dominate their relative
+  error.
 - :func:`check_activation`: ``floor = 1``; relative for large derivatives,
   absolute for small ones.
 
@@ -24,9 +28,15 @@ with the same weights: numerical differentiation in float32 is too coarse to
 be a reference. The default float32 tolerance (1e-3) allows for float32
 rounding in the backward pass itself.
 
-The reference is only meaningful where the function is smooth within the
-difference steps; a pre-activation that sits closer to a kink (ReLU at 0) than
-the step can produce a spurious failure. Use other points in that case.
+**Steps.** Differences start from a parameter step ``h = 0.05`` and shrink by
+halves. Near a kink (ReLU at 0) a difference that straddles it is
+meaningless, so when an activation with ``kinks`` sees a pre-activation within
+``m`` of a kink, the starting step is reduced to
+``0.1 m / max(1, max |layer input|)``; the report records ``m`` and ``h``.
+The same holds for a loss whose second derivative jumps (Huber at
+``|r| = c``, see :meth:`tinyprop.Loss.kink_distance`).
+A pre-activation *exactly* on a kink (``m = 0``) cannot be checked by
+differences; the check refuses it and asks for other points.
 """
 
 from __future__ import annotations
@@ -41,7 +51,7 @@ from ._validate import as_samples, as_targets
 from .activations import Activation
 from .layers import Affine
 from .losses import Loss
-from .network import Network
+from .network import Network, Trace
 
 __all__ = [
     "check_gradient",
@@ -53,8 +63,9 @@ __all__ = [
 ]
 
 _GRADIENT_TOLERANCE = {np.dtype(np.float64): 1e-6, np.dtype(np.float32): 1e-3}
-_GRADIENT_FLOOR = 1e-6
-_INITIAL_STEP = 1e-2
+_GRADIENT_FLOOR = 1e-3
+_INITIAL_STEP = 0.05
+_KINK_FRACTION = 0.1
 
 DEFAULT_POINTS = np.unique(
     np.concatenate(
@@ -95,6 +106,8 @@ class GradientReport:
     arrays: tuple[ArrayError, ...]
     analytic: np.ndarray = field(repr=False)
     numerical: np.ndarray = field(repr=False)
+    initial_step: float = _INITIAL_STEP
+    kink_margin: float = float("inf")
     reference: str = "scipy.differentiate.jacobian in float64"
 
     @property
@@ -109,7 +122,8 @@ class GradientReport:
         lines = [
             f"gradient check against {self.reference}: "
             f"{'PASSED' if self.passed else 'FAILED'} "
-            f"(max relative error {self.max_rel_error:.2e}, tolerance {self.tolerance:.0e})"
+            f"(max relative error {self.max_rel_error:.2e}, tolerance {self.tolerance:.0e}, "
+            f"initial step {self.initial_step:.1e})"
         ]
         for a in self.arrays:
             flag = "ok  " if a.max_rel_error <= self.tolerance else "FAIL"
@@ -147,21 +161,19 @@ def check_gradient(
     grads, _ = net.backward(trace, loss.gradient(out, y), need_input=False)
     analytic = np.concatenate([g.ravel() for g in grads]).astype(np.float64)
 
-    reference = net.copy(np.float64)
-    X64, y64 = X.astype(np.float64), y.astype(np.float64)
+    margin, input_scale = _kink_margin(net, trace)
+    if margin == 0.0:
+        raise ValueError(
+            "a pre-activation lies exactly on a kink of an activation (e.g. ReLU at 0), where "
+            "numerical differentiation is undefined; check the gradient on other X"
+        )
+    step = min(_INITIAL_STEP, _KINK_FRACTION * margin / max(1.0, input_scale))
+    output_jacobian = _numerical_output_jacobian(net, X, step)
+    loss_gradient = _numerical_loss_gradient(loss, out.astype(np.float64), y.astype(np.float64))
+    numerical = output_jacobian.T @ loss_gradient
 
-    def loss_of(theta: np.ndarray) -> np.ndarray:
-        columns = theta.reshape(theta.shape[0], -1)
-        values = np.empty(columns.shape[1])
-        for j in range(columns.shape[1]):
-            reference.set_vector(columns[:, j])
-            values[j] = loss.value(reference.predict(X64), y64)
-        return values.reshape(theta.shape[1:])
-
-    theta0 = reference.get_vector()
-    numerical = differentiate.jacobian(loss_of, theta0, initial_step=_INITIAL_STEP).df
-
-    floor = _GRADIENT_FLOOR * max(float(np.max(np.abs(numerical))), np.finfo(np.float64).tiny)
+    loss_scale = max(1.0, abs(loss.value(out, y)))
+    floor = max(_GRADIENT_FLOOR * float(np.max(np.abs(numerical))), 1e-5 * loss_scale)
     errors = np.abs(analytic - numerical) / np.maximum(np.abs(numerical), floor)
     return GradientReport(
         max_rel_error=float(errors.max()),
@@ -169,7 +181,60 @@ def check_gradient(
         arrays=tuple(_per_array(net, errors, analytic, numerical)),
         analytic=analytic,
         numerical=numerical,
+        initial_step=step,
+        kink_margin=margin,
     )
+
+
+def _numerical_output_jacobian(net: Network, X: np.ndarray, step: float) -> np.ndarray:
+    """``d output / d theta`` by ``scipy.differentiate.jacobian``, shape ``(n * n_out, n_params)``.
+
+    The network is evaluated on an extended-precision copy (``np.longdouble``)
+    and the function handed to scipy returns ``output(theta) - output(theta0)``,
+    so the differences scipy forms carry almost none of float64's rounding.
+    """
+    reference = net.copy(np.longdouble)
+    X_ref = X.astype(np.longdouble)
+    theta0 = reference.get_vector().astype(np.float64)  # exact: the weights are float32/64
+    out0 = reference.predict(X_ref).ravel()
+
+    def output_change(theta: np.ndarray) -> np.ndarray:
+        columns = theta.reshape(theta.shape[0], -1)
+        values = np.empty((out0.size, columns.shape[1]))
+        for j in range(columns.shape[1]):
+            reference.set_vector(columns[:, j])
+            values[:, j] = reference.predict(X_ref).ravel() - out0
+        return values.reshape((out0.size,) + theta.shape[1:])
+
+    return differentiate.jacobian(output_change, theta0, initial_step=step).df
+
+
+def _numerical_loss_gradient(loss: Loss, out: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """``dE / d output`` by ``scipy.differentiate.jacobian``, flattened like the output."""
+    step = min(_INITIAL_STEP, _KINK_FRACTION * loss.kink_distance(out, y))
+    if step == 0.0:
+        raise ValueError(
+            f"an output sits exactly where {loss!r} switches form; check the gradient on other X"
+        )
+    base = loss.value(out, y)
+
+    def loss_change(flat: np.ndarray) -> np.ndarray:
+        columns = flat.reshape(flat.shape[0], -1)
+        values = [loss.value(columns[:, j].reshape(out.shape), y) - base for j in range(columns.shape[1])]
+        return np.asarray(values).reshape(flat.shape[1:])
+
+    return differentiate.jacobian(loss_change, out.ravel(), initial_step=step).df
+
+
+def _kink_margin(net: Network, trace: Trace) -> tuple[float, float]:
+    """Smallest distance of a pre-activation from a declared kink, and the largest |layer input|."""
+    margin = float("inf")
+    for layer, z in zip(net.layers, trace.values):
+        if isinstance(layer, Activation):
+            for k in layer.kinks:
+                margin = min(margin, float(np.min(np.abs(z.astype(np.float64) - k))))
+    input_scale = max(float(np.max(np.abs(v))) for v in trace.values[:-1])
+    return margin, input_scale
 
 
 def _per_array(net: Network, errors: np.ndarray, analytic: np.ndarray, numerical: np.ndarray) -> list[ArrayError]:

@@ -39,6 +39,13 @@ class Loss:
     def settings(self) -> dict[str, float]:
         return {}
 
+    def kink_distance(self, y_hat: np.ndarray, y: np.ndarray) -> float:
+        """Distance of the outputs from a point where the loss is not twice differentiable.
+
+        Infinite for smooth losses; numerical checks keep their steps below it.
+        """
+        return float("inf")
+
     def __eq__(self, other: object) -> bool:
         return type(self) is type(other) and self.settings() == other.settings()  # type: ignore[attr-defined]
 
@@ -189,3 +196,8 @@ class HuberError(Loss):
 
     def settings(self) -> dict[str, float]:
         return {"threshold": self.threshold}
+
+    def kink_distance(self, y_hat: np.ndarray, y: np.ndarray) -> float:
+        """``min | |r| - c |``: rho switches from quadratic to linear at ``|r| = c``."""
+        y_hat, y = _pair(y_hat, y)
+        return float(np.min(np.abs(np.abs(y_hat - y) - self.threshold)))

@@ -245,12 +245,17 @@ class Network:
         return f"Network([{inner}], dtype={self.dtype.name})"
 
 
+# np.longdouble (x86 extended precision, no BLAS, slow) is accepted for the
+# numerical references in tinyprop.check; float32 and float64 are the working dtypes.
+_DTYPES = (np.dtype(np.float32), np.dtype(np.float64), np.dtype(np.longdouble))
+
+
 def _network_dtype(dtype: Any) -> np.dtype:
     try:
         resolved = np.dtype(dtype)
     except TypeError:
         raise TypeError(f"dtype must be float32 or float64, got {dtype!r}") from None
-    if resolved not in (np.dtype(np.float32), np.dtype(np.float64)):
+    if resolved not in _DTYPES:
         raise TypeError(f"dtype must be float32 or float64, got {resolved}")
     return resolved
 
