@@ -16,5 +16,6 @@ review is the user's responsibility.
 
 from .bound import agreement_bound
 from .c99 import export_c
+from .python import export_python
 
-__all__ = ["agreement_bound", "export_c"]
+__all__ = ["agreement_bound", "export_c", "export_python"]
