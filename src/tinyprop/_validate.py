@@ -27,7 +27,8 @@ def as_float_array(value: Any, name: str, dtype: np.dtype) -> np.ndarray:
         )
     if array.size == 0:
         raise ValueError(f"{name} is empty (shape {array.shape}); at least one sample is needed")
-    converted = array.astype(dtype, copy=False)
+    with np.errstate(over="ignore"):  # an overflow to inf is reported just below, by row
+        converted = array.astype(dtype, copy=False)
     require_finite(converted, name, converted_from=array.dtype)
     return converted
 

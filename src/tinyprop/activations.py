@@ -35,10 +35,12 @@ class Activation:
     return arrays of the same shape and dtype as ``z`` and must not modify
     their arguments.
 
-    ``kinks`` lists the points where ``f`` is not differentiable (ReLU: 0).
-    The derivative returned there is a convention of the subclass; the
-    verification in :func:`tinyprop.check_activation` accepts either one-sided
-    derivative at a declared kink.
+    ``kinks`` lists the points where ``f`` is not twice differentiable: where
+    ``f`` itself has a corner (ReLU at 0) or where ``f'`` has one (softsign
+    ``z / (1 + |z|)`` at 0). The derivative returned at a corner of ``f`` is a
+    convention of the subclass. Numerical checks keep their difference steps
+    from straddling a kink and, exactly on one, accept either one-sided
+    derivative.
     """
 
     kinks: tuple[float, ...] = ()

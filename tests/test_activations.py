@@ -1,0 +1,98 @@
+"""Built-in activations: closed-form derivatives against scipy's numerical derivative,
+textbook identities, and numerical stability."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import differentiate, special
+
+import tinyprop as tp
+from net_strategies import BUILT_IN_ACTIVATIONS
+
+IDS = [repr(a) for a in BUILT_IN_ACTIVATIONS]
+
+
+@pytest.mark.parametrize("activation", BUILT_IN_ACTIVATIONS, ids=IDS)
+def test_default_grid_check_passes(activation):
+    report = tp.check_activation(activation)
+    assert report.passed, str(report)
+    assert report.max_error < 1e-8
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.sampled_from(BUILT_IN_ACTIVATIONS),
+    st.lists(st.floats(-60, 60, allow_nan=False).filter(lambda z: abs(z) > 1e-3 or z == 0.0), min_size=1, max_size=30),
+)
+def test_derivative_matches_scipy_on_generated_points(activation, points):
+    # External reference: scipy.differentiate.derivative, via check_activation.
+    report = tp.check_activation(activation, points=points)
+    assert report.passed, str(report)
+
+
+def test_sigmoid_identity_and_known_values():
+    # Common practice: sigma'(z) = sigma(z)(1 - sigma(z)), sigma'(0) = 1/4, tanh'(0) = 1.
+    z = np.linspace(-20, 20, 401)
+    s = tp.Sigmoid()
+    a = s.value(z)
+    direct = np.exp(-z) / (1.0 + np.exp(-z)) ** 2  # a different formula for the same derivative
+    np.testing.assert_allclose(s.derivative(z, a), a * (1 - a), rtol=1e-15)
+    # a (1 - a) loses relative (not absolute) accuracy where 1 - a is tiny: compare absolutely
+    np.testing.assert_allclose(s.derivative(z, a), direct, rtol=1e-9, atol=np.finfo(float).eps)
+    np.testing.assert_allclose(a, special.expit(z), rtol=1e-15)  # scipy.special.expit as reference
+    zero = np.zeros(1)
+    assert s.derivative(zero, s.value(zero))[0] == 0.25
+    assert tp.Tanh().derivative(zero, tp.Tanh().value(zero))[0] == 1.0
+
+
+def test_softplus_matches_log1p_exp_and_its_derivative_is_the_sigmoid():
+    z = np.linspace(-30, 30, 301)
+    sp = tp.Softplus()
+    np.testing.assert_allclose(sp.value(z), np.logaddexp(0.0, z), rtol=1e-14)
+    np.testing.assert_allclose(sp.derivative(z, sp.value(z)), special.expit(z), rtol=1e-14)
+
+
+def test_kink_conventions():
+    zero = np.zeros(3)
+    assert np.all(tp.ReLU().derivative(zero, tp.ReLU().value(zero)) == 0.0)
+    leaky = tp.LeakyReLU(0.2)
+    assert np.all(leaky.derivative(zero, leaky.value(zero)) == 0.2)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("activation", BUILT_IN_ACTIVATIONS, ids=IDS)
+def test_stable_for_large_inputs(activation, dtype):
+    z = np.array([-1e4, -1e3, -100.0, -30.0, 0.0, 30.0, 100.0, 1e3, 1e4], dtype=dtype)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with np.errstate(over="raise", invalid="raise", divide="raise"):
+            a = activation.value(z)
+            d = activation.derivative(z, a)
+    assert a.dtype == dtype and d.dtype == dtype
+    assert np.all(np.isfinite(a)) and np.all(np.isfinite(d))
+
+
+def test_sigmoid_limits_for_large_negative_and_positive_inputs():
+    for dtype in (np.float32, np.float64):
+        a = tp.Sigmoid().value(np.array([-1e4, 1e4], dtype=dtype))
+        assert a[0] == 0.0 and a[1] == 1.0
+
+
+def test_activations_do_not_modify_their_input():
+    z = np.linspace(-3, 3, 13)
+    before = z.copy()
+    for act in BUILT_IN_ACTIVATIONS:
+        act.derivative(z, act.value(z))
+    np.testing.assert_array_equal(z, before)
+
+
+def test_leaky_relu_rejects_bad_slope():
+    with pytest.raises(ValueError, match="slope"):
+        tp.LeakyReLU(float("nan"))
+    with pytest.raises(ValueError, match="slope"):
+        tp.LeakyReLU(-1.0)

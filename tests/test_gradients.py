@@ -1,0 +1,151 @@
+"""Backpropagation against scipy's numerical differentiation, on generated networks.
+
+External reference: scipy.differentiate (Richardson-extrapolated central
+differences), through tinyprop.check_gradient; see tinyprop/check.py for the
+exact error metric: error = |g - r| / max(|r|, floor),
+floor = max(1e-3 * max|r|, 1e-5 * max(1, |E|)).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import assume, given, reject, settings
+from hypothesis import strategies as st
+from scipy import differentiate
+
+import tinyprop as tp
+from net_strategies import networks, training_cases
+
+# float64: the bar from the project's verification policy.
+# float32: backprop in float32 carries its own rounding (unit roundoff 6e-8,
+# accumulated over sums of up to ~100 terms and up to 6 layers, so ~1e-5..1e-4
+# observed); 1e-3 leaves margin while any wrong derivative shows as O(1).
+BOUND = {np.dtype(np.float64): 1e-6, np.dtype(np.float32): 1e-3}
+
+
+@settings(max_examples=80, deadline=None)
+@given(training_cases())
+def test_backprop_gradient_matches_numerical(case):
+    net, X, y, loss = case
+    try:
+        report = tp.check_gradient(net, X, y, loss)
+    except ValueError:
+        reject()  # a pre-activation exactly on a ReLU kink: no numerical reference exists
+    assume(report.kink_margin >= 1e-4)  # differences too close to a kink are not a reference
+    assert report.max_rel_error <= BOUND[net.dtype], str(report)
+    assert report.passed
+
+
+def _numerical_jacobian(f, x):
+    return differentiate.jacobian(f, x, initial_step=0.05).df
+
+
+def _columnwise(net, X):
+    """theta (p, ...) -> outputs (n*n_out, ...), for scipy's vectorised jacobian."""
+
+    def f(theta):
+        cols = theta.reshape(theta.shape[0], -1)
+        out = np.empty((X.shape[0] * net.n_out, cols.shape[1]))
+        for j in range(cols.shape[1]):
+            net.set_vector(cols[:, j])
+            out[:, j] = net.predict(X).ravel()
+        return out.reshape((out.shape[0],) + theta.shape[1:])
+
+    return f
+
+
+SMOOTH = (tp.Sigmoid(), tp.Tanh(), tp.Softplus(), tp.Identity())
+
+
+@settings(max_examples=25, deadline=None)
+@given(networks(max_depth=4, max_width=6, dtype=np.float64, activations=SMOOTH), st.integers(1, 5), st.integers(0, 999))
+def test_jacobian_matches_numerical_jacobian(net, n, seed):
+    X = np.random.default_rng(seed).normal(size=(n, net.n_in))
+    J = net.jacobian(X)
+    theta = net.get_vector()
+    reference = _numerical_jacobian(_columnwise(net.copy(), X), theta)
+    assert J.shape == (n * net.n_out, net.n_params)
+    scale = max(1.0, np.abs(reference).max())
+    np.testing.assert_allclose(J, reference, rtol=1e-7, atol=1e-8 * scale)
+
+
+@settings(max_examples=40, deadline=None)
+@given(networks(max_depth=5, max_width=8, dtype=np.float64), st.integers(1, 6), st.integers(0, 999))
+def test_jacobian_rows_weighted_by_residuals_give_squared_error_gradient(net, n, seed):
+    rng = np.random.default_rng(seed)
+    X, y = rng.normal(size=(n, net.n_in)), rng.normal(size=(n, net.n_out))
+    out, trace = net.forward(X)
+    grads, _ = net.backward(trace, tp.SquaredError().gradient(out, y))
+    residual = (out - y).ravel()  # row i*n_out + k of J pairs with residual[i, k]
+    via_jacobian = net.jacobian(X).T @ residual
+    np.testing.assert_allclose(via_jacobian, np.concatenate([g.ravel() for g in grads]), rtol=1e-10, atol=1e-12)
+
+
+@settings(max_examples=25, deadline=None)
+@given(networks(max_depth=4, max_width=6, dtype=np.float64, activations=SMOOTH), st.integers(1, 4), st.integers(0, 999))
+def test_input_gradient_matches_numerical(net, n, seed):
+    X = np.random.default_rng(seed).normal(size=(n, net.n_in))
+    G = net.input_gradient(X)
+    assert G.shape == (n, net.n_out, net.n_in)
+    for i in range(n):
+        def f(x):
+            cols = x.reshape(x.shape[0], -1)
+            out = np.stack([net.predict(cols[:, j][None, :])[0] for j in range(cols.shape[1])], axis=1)
+            return out.reshape((net.n_out,) + x.shape[1:])
+
+        reference = _numerical_jacobian(f, X[i])
+        np.testing.assert_allclose(G[i], reference, rtol=1e-7, atol=1e-9)
+
+
+@settings(max_examples=30, deadline=None)
+@given(networks(max_depth=5, max_width=8), st.integers(1, 6), st.integers(0, 999))
+def test_backward_input_delta_is_the_output_weighted_input_gradient(net, n, seed):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, net.n_in))
+    d_out = rng.normal(size=(n, net.n_out)).astype(net.dtype)
+    _, trace = net.forward(X)
+    _, d_input = net.backward(trace, d_out)
+    expected = np.einsum("ik,ikj->ij", d_out, net.input_gradient(X))
+    tol = 1e-10 if net.dtype == np.float64 else 1e-4
+    np.testing.assert_allclose(d_input, expected, rtol=tol, atol=tol)
+
+
+@settings(max_examples=30, deadline=None)
+@given(networks(max_depth=4, max_width=6), st.integers(1, 5), st.integers(0, 999))
+def test_float32_stays_float32_throughout(net, n, seed):
+    X = np.random.default_rng(seed).normal(size=(n, net.n_in))  # float64 in, converted once
+    out, trace = net.forward(X)
+    grads, d_input = net.backward(trace, np.ones_like(out))
+    arrays = [*trace.values, *grads, d_input, *net.params, net.jacobian(X), net.input_gradient(X)]
+    assert {a.dtype for a in arrays} == {net.dtype}
+
+
+def test_backward_without_input_delta_gives_the_same_parameter_gradients():
+    net = tp.build_mlp([3, 4, 2], seed=3)
+    X = np.random.default_rng(0).normal(size=(5, 3))
+    out, trace = net.forward(X)
+    with_input, d_input = net.backward(trace, out)
+    without, none = net.backward(trace, out, need_input=False)
+    assert none is None and d_input.shape == (5, 3)
+    for a, b in zip(with_input, without):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_vector_round_trip_keeps_the_live_arrays():
+    net = tp.build_mlp([3, 4, 2], seed=1)
+    ids = [id(p) for p in net.params]
+    theta = np.arange(net.n_params, dtype=float)
+    net.set_vector(theta)
+    np.testing.assert_array_equal(net.get_vector(), theta)
+    assert [id(p) for p in net.params] == ids
+    assert net.layers[0].weight[1, 0] == 3.0  # row-major: weight (4, 3) fills first
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_same_seed_same_weights(dtype):
+    a = tp.build_mlp([5, 7, 3], seed=42, dtype=dtype)
+    b = tp.build_mlp([5, 7, 3], seed=42, dtype=dtype)
+    c = tp.build_mlp([5, 7, 3], seed=43, dtype=dtype)
+    assert np.array_equal(a.get_vector(), b.get_vector())
+    assert not np.array_equal(a.get_vector(), c.get_vector())
