@@ -165,7 +165,7 @@ def _storable(name: Any, array: Any) -> np.ndarray:
         raise ArchiveError(f"array {name!r} must be a numpy array, got {type(array).__name__}")
     if array.dtype.name not in ARRAY_DTYPES:
         raise ArchiveError(f"array {name!r} has dtype {array.dtype}; allowed: {', '.join(ARRAY_DTYPES)}")
-    return np.ascontiguousarray(array, dtype=ARRAY_DTYPES[array.dtype.name])
+    return np.asarray(array, dtype=ARRAY_DTYPES[array.dtype.name], order="C")  # keeps 0-d arrays 0-d
 
 
 def array_bytes(array: np.ndarray) -> bytes:

@@ -407,8 +407,8 @@ def _check_manifest_fields(manifest: dict[str, Any]) -> None:
 
 def _check_layer_record(index: int, layer: Any) -> None:
     where = f"layer {index}"
-    if not isinstance(layer, dict) or layer.get("kind") not in _LAYER_KEYS:
-        kind = layer.get("kind") if isinstance(layer, dict) else type(layer).__name__
+    kind = layer.get("kind") if isinstance(layer, dict) else type(layer).__name__
+    if not isinstance(kind, str) or kind not in _LAYER_KEYS or not isinstance(layer, dict):
         raise ModelFileError(f"{where}: kind must be one of {sorted(_LAYER_KEYS)}, found {kind!r}")
     keys = _LAYER_KEYS[layer["kind"]]
     if set(layer) != keys:
