@@ -202,7 +202,8 @@ class _Writer:
             "",
             f'#include "{self.name}.h"',
             "",
-            f"/* Refuse to compile where {self.ctype} is not {size} bytes (e.g. a 4-byte double). */",
+            f"/* Refuse to compile where {self.ctype} is not {size} bytes"
+            + (" (some 8-bit targets have a 4-byte double). */" if size == 8 else ". */"),
             f"typedef char {self.name}_requires_{size}_byte_{self.ctype}"
             f"[sizeof({self.ctype}) == {size} ? 1 : -1];",
         ]
