@@ -162,19 +162,19 @@ class ScaledTanh(tp.Activation):
         return {"amplitude": self.amplitude}
 
 
-register_activation(Cube)
-register_activation(ScaledTanh, "tests.ScaledTanh")
+register_activation(Cube, "test_io.Cube")
+register_activation(ScaledTanh, "test_io.ScaledTanh")
 
 
 def test_builtins_are_registered_under_their_class_names():
     for cls in (tp.Sigmoid, tp.Tanh, tp.ReLU, tp.LeakyReLU, tp.Softplus, tp.Identity):
         assert activation_class(cls.__name__) is cls
-    assert registered_activations()["Cube"] is Cube
+    assert registered_activations()["test_io.Cube"] is Cube
 
 
 def test_registering_the_same_pair_again_is_harmless():
-    assert register_activation(Cube) is Cube
-    assert register_activation(ScaledTanh, "tests.ScaledTanh") is ScaledTanh
+    assert register_activation(Cube, "test_io.Cube") is Cube
+    assert register_activation(ScaledTanh, "test_io.ScaledTanh") is ScaledTanh
 
 
 def test_a_name_cannot_be_bound_to_a_second_class():
@@ -187,7 +187,7 @@ def test_a_name_cannot_be_bound_to_a_second_class():
 
 
 def test_a_class_cannot_take_a_second_name():
-    with pytest.raises(ValueError, match=r"already registered as 'Cube'"):
+    with pytest.raises(ValueError, match=r"already registered as 'test_io\.Cube'; a class has one name"):
         register_activation(Cube, "Cubic")
     assert activation_class("Cubic") is None
 
@@ -363,7 +363,7 @@ class Forgetful(tp.Activation):
         return np.full_like(z, self.gain)
 
 
-register_activation(Forgetful, "tests.Forgetful")
+register_activation(Forgetful, "test_io.Forgetful")
 
 
 class WiderAffine(tp.Affine):
@@ -376,8 +376,8 @@ class WiderAffine(tp.Affine):
         (lambda: tp.Network([tp.Affine(1, 1), Forgetful(3.0)], seed=0), None,
          r"Forgetful\(\*\*\{\}\) does not recreate it .*settings\(\) must return the constructor arguments"),
         (lambda: tp.Network([WiderAffine(1, 1)], seed=0), None, r"layer 0 is a WiderAffine"),
-        (hand_set_network, {"shape": (2, 3)}, r"metadata\['shape'\] is a tuple.*\(use a list\)"),
-        (hand_set_network, {"n": np.int64(3)}, r"metadata\['n'\] is a int64.*convert it with int\(\)"),
+        (hand_set_network, {"shape": (2, 3)}, r"metadata\['shape'\] has type tuple.*\(use a list\)"),
+        (hand_set_network, {"n": np.int64(3)}, r"metadata\['n'\] has type int64.*convert it with int\(\)"),
         (hand_set_network, {"loss": float("nan")}, r"metadata\['loss'\] is nan; JSON holds finite numbers only"),
         (hand_set_network, {1: "a"}, r"metadata has the key 1 of type int; JSON keys are strings"),
         (hand_set_network, ["a"], r"metadata must be a dict of JSON values or None, got list"),

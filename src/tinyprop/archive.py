@@ -27,6 +27,7 @@ removes the temporary file and leaves a previous file at ``path`` untouched.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import io
 import json
@@ -114,6 +115,8 @@ def write_bytes_atomically(path: str | os.PathLike[str], data: bytes) -> None:
     """
     target = os.path.abspath(os.fspath(path))
     folder, base = os.path.split(target)
+    if not os.path.isdir(folder):
+        raise FileNotFoundError(errno.ENOENT, f"cannot write {target}: the folder does not exist", folder)
     temporary = os.path.join(folder, f".{base[:100]}.{secrets.token_hex(8)}.tmp")
     descriptor = os.open(temporary, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666)
     try:
@@ -211,7 +214,7 @@ def check_json(value: Any, where: str, depth: int = 0) -> None:
         return
     hint = " (use a list)" if isinstance(value, tuple) else " (convert it with int(), float() or .tolist())" if isinstance(value, (np.generic, np.ndarray)) else ""
     raise ArchiveError(
-        f"{where} is a {type(value).__name__}, which JSON cannot hold{hint}; allowed: dict with str keys, "
+        f"{where} has type {type(value).__name__}, which JSON cannot hold{hint}; allowed: dict with str keys, "
         "list, str, int, bool, finite float, None"
     )
 

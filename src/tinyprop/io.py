@@ -227,7 +227,7 @@ def _check_setting_value(value: Any, where: str, depth: int) -> None:
             _check_setting_value(item, f"{where}[{i}]", depth + 1)
         return
     raise ModelFileError(
-        f"{where} is a {type(value).__name__}; settings values must be None, bool, str, int, finite float "
+        f"{where} has type {type(value).__name__}; settings values must be None, bool, str, int, finite float "
         "or lists of these (at most 8 levels deep)"
     )
 
@@ -495,8 +495,9 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     """
     if not isinstance(net, Network):
         raise TypeError(f"expected a tinyprop Network, got {type(net).__name__}")
+    inputs = "input" if net.n_in == 1 else "inputs"
     outputs = "output" if net.n_out == 1 else "outputs"
-    lines = [f"network: {net.n_in} inputs -> {net.n_out} {outputs}, {net.n_params} parameters, {net.dtype.name}"]
+    lines = [f"network: {net.n_in} {inputs} -> {net.n_out} {outputs}, {net.n_params} parameters, {net.dtype.name}"]
     try:
         lines.append(f"fingerprint: {fingerprint(net)}")
     except ModelFileError as exc:
