@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.archive import array_record
+from tinyprop.archive import ArchiveError, array_record, read_archive, write_archive
 from tinyprop.io import ModelFileError, describe, fingerprint, load, load_model_file, save
 from tinyprop.registry import activation_class, register_activation, registered_activations
 
@@ -757,3 +757,52 @@ def test_describe_works_for_a_network_a_file_cannot_hold():
     assert "network: 2 inputs -> 2 outputs, 17 parameters, float64" in text
     assert "fingerprint: none (layer 1 is the activation" in text
     assert "Unlisted (not registered)()" in text
+
+
+# ---------------------------------------------------------------- the reusable archive
+def test_archive_round_trip_with_nested_names_and_state_like_content(tmp_path):
+    arrays = {
+        "weights/0": np.arange(6.0).reshape(2, 3),
+        "optimizer/m/0": np.zeros((2, 3), np.float32),
+        "counts": np.array([3, 1], np.int64),
+        "mask": np.array([True, False]),
+        "scalar": np.array(2.5),
+    }
+    manifest = {"epoch": 4, "rng": {"state": 2**100 + 7, "inc": 3}, "history": [0.5, 0.25], "note": None}
+    path = tmp_path / "state.npz"
+    write_archive(path, arrays, manifest)
+    read_arrays, read_manifest = read_archive(path)
+    assert read_manifest == manifest
+    assert list(read_arrays) == list(arrays)
+    for name, array in arrays.items():
+        assert read_arrays[name].dtype == array.dtype and np.array_equal(read_arrays[name], array)
+    with np.load(path, allow_pickle=False) as archive:  # numpy's own reader
+        assert np.array_equal(archive["optimizer/m/0"], arrays["optimizer/m/0"])
+
+
+def test_archive_writes_big_endian_and_fortran_arrays_in_the_standard_layout(tmp_path):
+    array = np.asfortranarray(np.arange(6.0).reshape(2, 3)).astype(">f8")
+    write_archive(tmp_path / "a.npz", {"a": array}, {})
+    read = read_archive(tmp_path / "a.npz")[0]["a"]
+    assert read.dtype.str == "<f8" and read.flags.c_contiguous and np.array_equal(read, array)
+
+
+@pytest.mark.parametrize(
+    "arrays, manifest, message",
+    [
+        ({"../escape": np.zeros(1)}, {}, r"array names are 1 to 200 characters.*got '\.\./escape'"),
+        ({"a//b": np.zeros(1)}, {}, r"array names are .*got 'a//b'"),
+        ({"w": [1.0, 2.0]}, {}, r"array 'w' must be a numpy array, got list"),
+        ({"w": np.array(["x"])}, {}, r"array 'w' has dtype <U1; allowed: bool, int8"),
+        ({"w": np.array([None])}, {}, r"array 'w' has dtype object; allowed"),
+        ({"w": np.zeros(2, np.complex128)}, {}, r"array 'w' has dtype complex128; allowed"),
+        ({}, {"arrays": []}, r"the manifest key 'arrays' is reserved"),
+        ({}, [("a", 1)], r"the manifest must be a dict, got list"),
+        ({}, {"loss": float("inf")}, r"manifest\['loss'\] is inf; JSON holds finite numbers only"),
+        ([np.zeros(1)], {}, r"arrays must be a dict of name to numpy array, got list"),
+    ],
+)
+def test_archive_refuses_what_it_cannot_store(tmp_path, arrays, manifest, message):
+    with pytest.raises(ArchiveError, match=message):
+        write_archive(tmp_path / "a.npz", arrays, manifest)
+    assert list(tmp_path.iterdir()) == []

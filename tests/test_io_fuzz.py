@@ -251,7 +251,7 @@ def test_any_architecture_round_trips(net, metadata_value):
 # ---------------------------------------------------------------- the reusable archive
 @st.composite
 def named_arrays(draw) -> dict[str, np.ndarray]:
-    names = draw(st.lists(st.from_regex(r"[A-Za-z0-9_][A-Za-z0-9_.\-]{0,12}", fullmatch=True), max_size=4, unique=True))
+    names = draw(st.lists(st.from_regex(r"[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}(/[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}){0,2}", fullmatch=True), max_size=4, unique=True))
     arrays = {}
     for name in names:
         dtype = np.dtype(draw(st.sampled_from(sorted(ARRAY_DTYPES))))

@@ -56,7 +56,8 @@ ARRAY_DTYPES = {
     name: np.dtype(name).newbyteorder("<")
     for name in ("bool", "int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64", "float32", "float64")
 }
-ARRAY_NAME = re.compile(r"[A-Za-z0-9_][A-Za-z0-9_.\-]{0,199}")
+ARRAY_NAME = re.compile(r"(?=.{1,200}\Z)[A-Za-z0-9_][A-Za-z0-9_.\-]*(/[A-Za-z0-9_][A-Za-z0-9_.\-]*)*")
+"""Array names: ``/``-separated parts, each starting with a letter, digit or ``_`` (so never ``..``); 1-200 characters."""
 MAX_JSON_DEPTH = 64
 MAX_MANIFEST_BYTES = 64 * 2**20
 _MAX_NPY_HEADER = 10_000  # numpy's own default limit for reading .npy headers
@@ -64,7 +65,7 @@ _RECORD_KEYS = {"name", "dtype", "shape", "sha256"}
 _SHA256 = re.compile(r"[0-9a-f]{64}")
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)  # fixed, so equal content gives byte-identical files
 # What zipfile, json and numpy's header parser raise on malformed input.
-_MALFORMED = (zipfile.BadZipFile, EOFError, ValueError, KeyError, IndexError, OverflowError, RuntimeError, MemoryError)
+_MALFORMED = (zipfile.BadZipFile, EOFError, ValueError, KeyError, IndexError, OverflowError, RuntimeError)
 
 
 class ArchiveError(ValueError):
@@ -75,8 +76,8 @@ class ArchiveError(ValueError):
 def write_archive(path: str | os.PathLike[str], arrays: Mapping[str, np.ndarray], manifest: Mapping[str, Any]) -> None:
     """Write ``arrays`` and ``manifest`` to ``path`` atomically.
 
-    ``arrays`` maps names (ASCII letters, digits, ``_ . -``; up to 200
-    characters) to numpy arrays of a dtype in :data:`ARRAY_DTYPES`; they are
+    ``arrays`` maps names (:data:`ARRAY_NAME`, e.g. ``"layer0.weight"`` or
+    ``"optimizer/m/0"``) to numpy arrays of a dtype in :data:`ARRAY_DTYPES`; they are
     written little-endian in C order, in the mapping's order. ``manifest`` is a
     JSON-compatible dict (see :func:`check_json`) without an ``"arrays"`` key;
     the written manifest is ``manifest`` plus ``"arrays"``. Neither argument is
@@ -161,8 +162,8 @@ def _member_info(name: str) -> zipfile.ZipInfo:
 def _storable(name: Any, array: Any) -> np.ndarray:
     if not isinstance(name, str) or not ARRAY_NAME.fullmatch(name):
         raise ArchiveError(
-            "array names must start with an ASCII letter, digit or '_' and continue with up to 199 "
-            f"letters, digits, '_', '.' or '-', got {name!r}"
+            "array names are 1 to 200 characters: '/'-separated parts, each an ASCII letter, digit or '_' "
+            f"followed by letters, digits, '_', '.' or '-', got {name!r}"
         )
     if not isinstance(array, np.ndarray):
         raise ArchiveError(f"array {name!r} must be a numpy array, got {type(array).__name__}")
@@ -309,7 +310,7 @@ def _array_records(records: Any) -> list[dict[str, Any]]:
             raise ArchiveError(f"{where} must be an object with keys {sorted(_RECORD_KEYS)}, found {found}")
         name, dtype, shape, digest = record["name"], record["dtype"], record["shape"], record["sha256"]
         if not isinstance(name, str) or not ARRAY_NAME.fullmatch(name) or name in seen:
-            raise ArchiveError(f"{where}: 'name' must be a new array name (letters, digits, '_ . -'), found {name!r}")
+            raise ArchiveError(f"{where}: 'name' must be a new array name ('/'-separated letters, digits, '_ . -'), found {name!r}")
         seen.add(name)
         if not isinstance(dtype, str) or dtype not in ARRAY_DTYPES:
             raise ArchiveError(f"array {name!r}: dtype {dtype!r} is not allowed; allowed: {', '.join(ARRAY_DTYPES)}")

@@ -93,8 +93,8 @@ class ModelFile:
 def fingerprint(net: Network) -> str:
     """SHA-256 (64 lowercase hex digits) of the network's architecture and arrays.
 
-    ``sha256(canonical_json(description))``, see :func:`fingerprint_description`
-    and ``docs/model-file.md`` for the exact bytes. Two networks have the same
+    ``sha256(canonical JSON of {format, version, dtype, layers, arrays})``;
+    ``docs/model-file.md`` gives the exact bytes. Two networks have the same
     fingerprint exactly when they have the same dtype, the same layers with the
     same settings and bit-identical parameters and scalings.
 
@@ -104,14 +104,8 @@ def fingerprint(net: Network) -> str:
     >>> len(fingerprint(net)), fingerprint(net) == fingerprint(net.copy())
     (64, True)
     """
-    layers, arrays = layer_records(net)
+    layers, arrays = _layer_records(net)
     return _fingerprint_of(net.dtype.name, layers, [array_record(name, array) for name, array in arrays])
-
-
-def fingerprint_description(net: Network) -> dict[str, Any]:
-    """The object whose canonical JSON is hashed by :func:`fingerprint`."""
-    layers, arrays = layer_records(net)
-    return _description(net.dtype.name, layers, [array_record(name, array) for name, array in arrays])
 
 
 def _description(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str, Any]]) -> dict[str, Any]:
@@ -119,11 +113,11 @@ def _description(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str
 
 
 def _fingerprint_of(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str, Any]]) -> str:
-    text = canonical_json(_description(dtype, layers, arrays))
+    text = _canonical_json(_description(dtype, layers, arrays))
     return hashlib.sha256(text.encode("ascii")).hexdigest()
 
 
-def canonical_json(value: Any) -> str:
+def _canonical_json(value: Any) -> str:
     """JSON text with sorted keys, no whitespace, ASCII only, floats as bit patterns.
 
     Every float becomes ``{"binary64": "<16 hex digits>"}``, the big-endian
@@ -146,7 +140,7 @@ def _floats_as_bits(value: Any) -> Any:
     return value
 
 
-def layer_records(net: Network) -> tuple[list[dict[str, Any]], list[tuple[str, np.ndarray]]]:
+def _layer_records(net: Network) -> tuple[list[dict[str, Any]], list[tuple[str, np.ndarray]]]:
     """Layer records (kind and settings) and the named arrays, in layer order."""
     if not isinstance(net, Network):
         raise TypeError(f"expected a tinyprop Network, got {type(net).__name__}")
@@ -192,11 +186,11 @@ def _activation_record(index: int, activation: Activation) -> dict[str, Any]:
             "in the programs that save and load it"
         )
     settings = activation.settings()
-    check_activation_settings(settings, f"settings of activation {name!r} (layer {index})")
+    _check_activation_settings(settings, f"settings of activation {name!r} (layer {index})")
     return {"kind": "activation", "name": name, "settings": settings}
 
 
-def check_activation_settings(settings: Any, where: str) -> None:
+def _check_activation_settings(settings: Any, where: str) -> None:
     """Refuse settings that cannot be stored and hashed portably.
 
     Allowed: a dict with identifier keys whose values are ``None``, ``bool``,
@@ -243,7 +237,7 @@ def save(net: Network, path: str | os.PathLike[str], *, metadata: dict[str, Any]
     atomic: a failure leaves an earlier file at ``path`` as it was. Neither
     ``net`` nor ``metadata`` is modified.
     """
-    layers, arrays = layer_records(net)
+    layers, arrays = _layer_records(net)
     for record, layer in zip(layers, net.layers):
         if record["kind"] == "activation":
             _check_rebuilds(record, layer)
@@ -429,7 +423,7 @@ def _check_layer_record(index: int, layer: Any) -> None:
                 f"import the module that defines it and call tinyprop.registry.register_activation(<class>, "
                 f"name={name!r}) before loading (registered: {sorted(registered_activations())})"
             )
-        check_activation_settings(layer["settings"], f"{where}: settings of activation {name!r}")
+        _check_activation_settings(layer["settings"], f"{where}: settings of activation {name!r}")
     elif not _is_int(layer["width"]) or not 1 <= layer["width"] <= _MAX_WIDTH:
         raise ModelFileError(f"{where}: width must be an integer from 1 to {_MAX_WIDTH}, found {layer['width']!r}")
 
