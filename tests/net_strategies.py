@@ -21,14 +21,21 @@ DTYPES = (np.float64, np.float32)
 @st.composite
 def networks(draw, *, max_depth: int = 6, max_width: int = 12, dtype=None, activations=BUILT_IN_ACTIVATIONS):
     """A network of 1..max_depth affine layers, widths 1..max_width, a random activation
-    after every hidden affine layer (and sometimes after the last), random biases."""
+    after every hidden affine layer (and sometimes after the last, sometimes two in a
+    row), random biases, and sometimes fixed scaling layers at either end."""
     depth = draw(st.integers(1, max_depth))
     widths = draw(st.lists(st.integers(1, max_width), min_size=depth + 1, max_size=depth + 1))
     layers: list = []
+    if draw(st.booleans()):
+        layers.append(tp.Standardize(np.linspace(-1.0, 1.0, widths[0]), np.linspace(0.5, 2.0, widths[0])))
     for i in range(depth):
         layers.append(tp.Affine(widths[i], widths[i + 1], bias=draw(st.booleans())))
         if i < depth - 1 or draw(st.booleans()):
             layers.append(draw(st.sampled_from(activations)))
+            if draw(st.integers(0, 5)) == 0:
+                layers.append(draw(st.sampled_from(activations)))
+    if draw(st.booleans()):
+        layers.append(tp.Unstandardize(np.full(widths[-1], 3.0), np.full(widths[-1], 1.5)))
     dtype = draw(st.sampled_from(DTYPES)) if dtype is None else dtype
     return tp.Network(layers, seed=draw(st.integers(0, 2**32 - 1)), dtype=dtype)
 

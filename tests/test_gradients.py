@@ -149,3 +149,40 @@ def test_same_seed_same_weights(dtype):
     c = tp.build_mlp([5, 7, 3], seed=43, dtype=dtype)
     assert np.array_equal(a.get_vector(), b.get_vector())
     assert not np.array_equal(a.get_vector(), c.get_vector())
+
+
+@settings(max_examples=60, deadline=None)
+@given(training_cases(), st.integers(0, 3))
+def test_workspace_passes_equal_the_allocating_passes(case, spare_rows):
+    """The in-place workspace path (training) computes what the plain path computes."""
+    net, X, y, loss = case
+    out, trace = net.forward(X)
+    grads, d_input = net.backward(trace, loss.gradient(out, y))
+    work = net.workspace(X.shape[0] + spare_rows)
+    for _ in range(2):  # a second step reuses the same arrays
+        out_w, trace_w = net.forward(X, workspace=work)
+        np.testing.assert_array_equal(out_w, out)
+        grads_w, d_input_w = net.backward(trace_w, loss.gradient(out_w, y))
+        tol = 1e-12 if net.dtype == np.float64 else 1e-5
+        for g, g_w in zip(grads, grads_w):
+            np.testing.assert_allclose(g_w, g, rtol=tol, atol=tol * max(1.0, np.abs(g).max()))
+        np.testing.assert_allclose(d_input_w, d_input, rtol=tol, atol=tol * max(1.0, np.abs(d_input).max()))
+    assert all(a is b for a, b in zip(grads_w, work.grads))
+
+
+def test_workspace_trace_serves_one_backward_and_is_invalidated_by_the_next_forward():
+    net = tp.build_mlp([3, 5, 1], seed=0)
+    work = net.workspace(4)
+    X = np.ones((4, 3))
+    out, trace = net.forward(X, workspace=work)
+    net.backward(trace, out)
+    with pytest.raises(ValueError, match="run forward"):
+        net.backward(trace, out)
+    out, old = net.forward(X, workspace=work)
+    net.forward(X, workspace=work)
+    with pytest.raises(ValueError, match="overwritten"):
+        net.backward(old, out)
+    with pytest.raises(ValueError, match="at most 4"):
+        net.forward(np.ones((5, 3)), workspace=work)
+    with pytest.raises(TypeError, match="this network"):
+        tp.build_mlp([3, 5, 1]).forward(X, workspace=work)

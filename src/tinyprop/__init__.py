@@ -5,9 +5,13 @@ generated from it against the applicable functional-safety standards, local
 codes and qualified review is the user's responsibility.
 """
 
+__version__ = "0.1.0"
+
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
+from .export import agreement_bound, export_c, export_python
+from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .layers import Affine, ColumnScaling, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,
@@ -18,33 +22,67 @@ from .losses import (
     SquaredError,
 )
 from .network import Network, Trace
-
-__version__ = "0.1.0"
+from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp
+from .registry import register_activation
+from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
+from .solve import SolveResult, solve
+from .train import EpochInfo, History, TrainingDiverged, TrainingResult, TrainingState, train
+from .workspace import Workspace
 
 __all__ = [
     "Activation",
     "ActivationReport",
+    "Adam",
     "Affine",
     "ColumnScaling",
+    "CosineSchedule",
     "CrossEntropyOnSigmoid",
     "CrossEntropyOnSoftmax",
+    "EpochInfo",
+    "ExponentialSchedule",
     "GradientReport",
+    "History",
     "HuberError",
     "Identity",
     "LeakyReLU",
+    "LinearWarmUp",
     "Loss",
     "MeanSquaredError",
+    "ModelFile",
+    "ModelFileError",
     "Network",
+    "Optimizer",
+    "OptimizerState",
+    "RMSProp",
     "ReLU",
+    "SGD",
+    "Schedule",
     "Sigmoid",
+    "SolveResult",
     "Softplus",
     "SquaredError",
     "Standardize",
+    "StepSchedule",
     "Tanh",
     "Trace",
+    "TrainingDiverged",
+    "TrainingResult",
+    "TrainingState",
     "Unstandardize",
+    "Workspace",
+    "agreement_bound",
     "build_mlp",
     "check_activation",
     "check_gradient",
+    "describe",
+    "export_c",
+    "export_python",
+    "fingerprint",
+    "load",
+    "load_model_file",
+    "register_activation",
+    "save",
+    "solve",
+    "train",
     "__version__",
 ]

@@ -8,6 +8,7 @@ modified (a conversion copies, and no function here writes into its input).
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -50,6 +51,15 @@ def require_finite(array: np.ndarray, name: str, converted_from: np.dtype | None
 
 def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.ndarray:
     """A 2-D ``(n, n_columns)`` sample matrix (samples are rows)."""
+    if (
+        type(value) is np.ndarray
+        and value.dtype == dtype
+        and value.ndim == 2
+        and value.shape[1] == n_columns
+        and value.shape[0] > 0
+        and math.isfinite(value.sum())
+    ):
+        return value  # already right: the common case inside training loops, checked cheaply
     array = as_float_array(value, name, dtype)
     if array.ndim != 2 or array.shape[1] != n_columns:
         hint = ""

@@ -11,6 +11,13 @@ Every built-in is written in a form that neither overflows nor warns for
 To write your own, subclass :class:`Activation`, implement ``value`` and
 ``derivative``, then verify the pair with :func:`tinyprop.check_activation`
 (see ``docs/custom-activation.md``).
+
+Every built-in derivative is written in terms of the output ``a`` alone. That
+lets a training workspace (:class:`tinyprop.Workspace`) evaluate a built-in
+activation in place over its pre-activation buffer and, in the backward
+pass, turn the stored output into ``f'(z) * delta`` in that same buffer
+(``_value_in_place`` / ``_delta_in_place``, same formulas, no new arrays).
+Custom activations keep ``z`` and ``a`` in separate arrays and need neither.
 """
 
 from __future__ import annotations
@@ -87,6 +94,16 @@ class Sigmoid(Activation):
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
         return a * (1.0 - a)
 
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        z[...] = self.value(z)
+        return z
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        delta *= a  # a delta
+        np.subtract(1.0, a, out=a)  # 1 - a
+        a *= delta  # a (1 - a) delta
+        return a
+
 
 class Tanh(Activation):
     """Hyperbolic tangent.
@@ -100,6 +117,15 @@ class Tanh(Activation):
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
         return 1.0 - a * a
 
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        return np.tanh(z, out=z)
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        np.multiply(a, a, out=a)
+        np.subtract(1.0, a, out=a)  # 1 - a**2
+        a *= delta
+        return a
+
 
 class ReLU(Activation):
     """Rectified linear unit.
@@ -107,7 +133,8 @@ class ReLU(Activation):
     ``f(z) = max(z, 0)``, ``f'(z) = 1 if z > 0 else 0``.
 
     Convention at the kink: ``f'(0) = 0`` (the left derivative), so a unit
-    whose pre-activation is exactly zero passes no gradient.
+    whose pre-activation is exactly zero passes no gradient. From the output:
+    ``f'(z) = 1`` exactly where ``a > 0``.
     """
 
     kinks = (0.0,)
@@ -116,7 +143,15 @@ class ReLU(Activation):
         return np.maximum(z, 0.0, dtype=z.dtype)
 
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
-        return (z > 0).astype(z.dtype)
+        return (a > 0).astype(a.dtype)
+
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        return np.maximum(z, 0.0, out=z)
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        np.greater(a, 0.0, out=a)  # 1.0 where a > 0, else 0.0
+        a *= delta
+        return a
 
 
 class LeakyReLU(Activation):
@@ -124,7 +159,9 @@ class LeakyReLU(Activation):
 
     ``f(z) = z if z > 0 else slope * z``, ``f'(z) = 1 if z > 0 else slope``.
 
-    Convention at the kink: ``f'(0) = slope`` (the left derivative).
+    Convention at the kink: ``f'(0) = slope`` (the left derivative). From the
+    output (``slope >= 0``, so ``a > 0`` exactly where ``z > 0``):
+    ``f'(z) = 1 if a > 0 else slope``.
     """
 
     kinks = (0.0,)
@@ -139,8 +176,17 @@ class LeakyReLU(Activation):
         return np.where(z > 0, z, z * z.dtype.type(self.slope))
 
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
-        one, slope = z.dtype.type(1.0), z.dtype.type(self.slope)
-        return np.where(z > 0, one, slope)
+        one, slope = a.dtype.type(1.0), a.dtype.type(self.slope)
+        return np.where(a > 0, one, slope)
+
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        z[...] = self.value(z)
+        return z
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        a[...] = self.derivative(a, a)
+        a *= delta
+        return a
 
     def settings(self) -> dict[str, float]:
         return {"slope": self.slope}
@@ -152,14 +198,27 @@ class Softplus(Activation):
     ``f(z) = log(1 + exp(z))``, ``f'(z) = 1 / (1 + exp(-z))`` (the sigmoid).
 
     Evaluated as ``max(z, 0) + log1p(exp(-|z|))``, which cannot overflow and
-    keeps full precision for large negative ``z``.
+    keeps full precision for large negative ``z``. From the output:
+    ``exp(-a) = 1 / (1 + exp(z))``, so ``f'(z) = 1 - exp(-a) = -expm1(-a)``,
+    accurate for tiny ``a`` too.
     """
 
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.maximum(z, 0.0, dtype=z.dtype) + np.log1p(np.exp(-np.abs(z)))
 
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
-        return Sigmoid().value(z)
+        return -np.expm1(-a)
+
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        z[...] = self.value(z)
+        return z
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        np.negative(a, out=a)
+        np.expm1(a, out=a)  # -f'(z)
+        np.negative(a, out=a)
+        a *= delta
+        return a
 
 
 class Identity(Activation):
@@ -173,3 +232,17 @@ class Identity(Activation):
 
     def derivative(self, z: np.ndarray, a: np.ndarray) -> np.ndarray:
         return np.ones_like(z)
+
+    def _value_in_place(self, z: np.ndarray) -> np.ndarray:
+        return z
+
+    def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
+        return delta
+
+
+_IN_PLACE = (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity)
+
+
+def works_in_place(activation: Activation) -> bool:
+    """True for the built-in classes themselves (not subclasses, which may redefine ``value``)."""
+    return type(activation) in _IN_PLACE

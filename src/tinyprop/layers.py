@@ -48,9 +48,9 @@ class Affine:
         """The live parameter arrays: ``[weight, bias]`` or ``[weight]``."""
         return [self.weight] if self.bias is None else [self.weight, self.bias]
 
-    def value(self, x: np.ndarray) -> np.ndarray:
-        """``x W^T + b``."""
-        z = x @ self.weight.T
+    def value(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """``x W^T + b``, written into ``out`` when given."""
+        z = np.matmul(x, self.weight.T, out=out)
         if self.bias is not None:
             z += self.bias
         return z

@@ -22,28 +22,37 @@ from __future__ import annotations
 
 import copy
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
 from ._validate import as_float_array, as_samples
-from .activations import Activation
+from .activations import Activation, works_in_place
 from .init import SCHEMES, draw_weight
 from .layers import Affine, ColumnScaling
+from .workspace import Workspace
 
 __all__ = ["Network", "Trace"]
 
 Layer = Affine | Activation | ColumnScaling
 
+# what the forward and backward passes do with each layer (fixed at construction)
+_AFFINE, _ACTIVATION, _ACTIVATION_IN_PLACE, _SCALING = "affine", "activation", "in place", "scaling"
 
-@dataclass(frozen=True)
+
+@dataclass(slots=True)
 class Trace:
     """What the forward pass keeps for the backward pass.
 
     ``values[i]`` is the input of layer ``i``; ``values[-1]`` is the output.
+    A trace made with a :class:`~tinyprop.Workspace` lives in the workspace's
+    arrays (a built-in activation's input and output are then one array) and
+    serves one ``backward`` call.
     """
 
     values: tuple[np.ndarray, ...]
+    workspace: Workspace | None = None
+    generation: int = 0
 
     @property
     def output(self) -> np.ndarray:
@@ -104,6 +113,13 @@ class Network:
                 layer.offset = layer.offset.astype(self.dtype)
         self._affine = [layer for layer in self.layers if isinstance(layer, Affine)]
         self._first_affine = next(i for i, layer in enumerate(self.layers) if isinstance(layer, Affine))
+        self._plan = tuple(
+            (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
+        )
+        self._grad_slot = {}  # affine layer index -> index of its weight in params
+        for i, layer in enumerate(self.layers):
+            if isinstance(layer, Affine):
+                self._grad_slot[i] = sum(len(a.params) for a in self.layers[:i] if isinstance(a, Affine))
 
     # ----------------------------------------------------------------- parameters
     @property
@@ -133,16 +149,48 @@ class Network:
     def predict(self, X: Any) -> np.ndarray:
         """Network output ``(n, n_out)`` for inputs ``X`` ``(n, n_in)``; keeps no trace."""
         v = as_samples(X, "X", self.n_in, self.dtype)
-        for layer in self.layers:
-            v = layer.value(v)
+        for kind, layer in self._plan:
+            if kind is _ACTIVATION_IN_PLACE:
+                v = layer._value_in_place(v)  # v is the affine output this call made
+            else:
+                v = layer.value(v)
         return v
 
-    def forward(self, X: Any) -> tuple[np.ndarray, Trace]:
-        """Output and the :class:`Trace` that :meth:`backward` needs."""
-        values = [as_samples(X, "X", self.n_in, self.dtype)]
-        for layer in self.layers:
-            values.append(layer.value(values[-1]))
-        return values[-1], Trace(tuple(values))
+    def forward(self, X: Any, *, workspace: Workspace | None = None) -> tuple[np.ndarray, Trace]:
+        """Output and the :class:`Trace` that :meth:`backward` needs.
+
+        With a ``workspace`` (see :meth:`workspace`) the arrays are the
+        workspace's and no large array is allocated.
+        """
+        x = as_samples(X, "X", self.n_in, self.dtype)
+        generation = 0
+        if workspace is not None:
+            generation = self._claim(workspace, x.shape[0])
+        values = [x]
+        v = x
+        for i, (kind, layer) in enumerate(self._plan):
+            if workspace is None:
+                v = layer.value(v)
+            elif kind is _AFFINE:
+                v = layer.value(v, out=workspace.output(i, v.shape[0], layer.n_out))
+            elif kind is _ACTIVATION_IN_PLACE:
+                v = layer._value_in_place(v)  # overwrites the affine output it reads
+            else:
+                v = layer.value(v)
+            values.append(v)
+        return v, Trace(tuple(values), workspace, generation)
+
+    def workspace(self, max_rows: int) -> Workspace:
+        """Preallocated arrays for training steps on batches of up to ``max_rows`` samples."""
+        return Workspace(self, max_rows)
+
+    def _claim(self, workspace: Workspace, rows: int) -> int:
+        if not isinstance(workspace, Workspace) or workspace.network is not self:
+            raise TypeError("workspace must come from this network's workspace() method")
+        if rows > workspace.max_rows:
+            raise ValueError(f"the batch has {rows} rows but the workspace holds at most {workspace.max_rows}")
+        workspace.generation += 1
+        return workspace.generation
 
     # ----------------------------------------------------------------- backward
     def backward(
@@ -153,50 +201,72 @@ class Network:
         Returns ``(grads, d_input)``: ``grads`` aligned with :attr:`params`
         (``dE/dW = delta^T x``, ``dE/db = sum of delta`` per affine layer) and
         ``d_input = dE/dX`` of shape ``(n, n_in)`` (``None`` when
-        ``need_input=False``, which skips that last product).
+        ``need_input=False``, which skips that last product). For a trace made
+        with a workspace, ``grads`` are the workspace's arrays, overwritten by
+        the next backward pass.
         """
         d_out = self._check_d_out(trace, d_out)
-        terms, d_input = self._delta_recursion(trace, d_out, need_input)
-        grads: list[np.ndarray] = []
-        for layer, x, delta in terms:
-            grads.append(delta.T @ x)
+        work = trace.workspace
+        grads: list[np.ndarray] = [] if work is None else work.grads
+        if work is None:
+            grads.extend([np.empty(0)] * len(self.params))
+
+        def gradient_of(i: int, layer: Affine, x: np.ndarray, delta: np.ndarray) -> None:
+            k = self._grad_slot[i]
+            grads[k] = np.matmul(delta.T, x, out=None if work is None else grads[k])  # delta^T x
             if layer.bias is not None:
-                grads.append(delta.sum(axis=0))
+                grads[k + 1] = np.add.reduce(delta, axis=0, out=None if work is None else grads[k + 1])
+
+        d_input = self._delta_recursion(trace, d_out, need_input, gradient_of)
         return grads, d_input
 
     def _delta_recursion(
-        self, trace: Trace, delta: np.ndarray, need_input: bool
-    ) -> tuple[list[tuple[Affine, np.ndarray, np.ndarray]], np.ndarray | None]:
-        """Walk from the output delta back to the input.
+        self,
+        trace: Trace,
+        delta: np.ndarray,
+        need_input: bool,
+        on_affine: Callable[[int, Affine, np.ndarray, np.ndarray], None],
+    ) -> np.ndarray | None:
+        """Walk from the output delta back to the input; return ``dE/dX`` (or ``None``).
 
-        Returns, in layer order, ``(layer, x, delta_z)`` for every affine layer
-        (its input and the delta at its output), and ``dE/dX`` or ``None``.
+        ``on_affine(i, layer, x, delta_z)`` is called for every affine layer,
+        last to first, with its input ``x`` and the delta at its output, before
+        the recursion moves below it (with a workspace, ``x`` is overwritten
+        right after).
         """
-        values = trace.values
-        terms = []
-        for i in range(len(self.layers) - 1, -1, -1):
-            layer = self.layers[i]
-            if isinstance(layer, Affine):
-                terms.append((layer, values[i], delta))
+        values, work = trace.values, trace.workspace
+        for i in range(len(self._plan) - 1, -1, -1):
+            kind, layer = self._plan[i]
+            if kind is _AFFINE:
+                on_affine(i, layer, values[i], delta)
                 if i == self._first_affine and not need_input:
-                    terms.reverse()
-                    return terms, None
-                delta = delta @ layer.weight
-            elif isinstance(layer, Activation):
-                delta = delta * layer.derivative(values[i], values[i + 1])
-            else:
+                    return None
+                out = None if work is None else work.scratch(delta.shape[0], layer.n_in)
+                delta = np.matmul(delta, layer.weight, out=out)  # delta_x = delta_z W
+            elif kind is _ACTIVATION_IN_PLACE and work is not None:
+                delta = layer._delta_in_place(values[i + 1], delta)  # f'(z) * delta, in a's memory
+            elif kind is _SCALING:
                 delta = layer.input_gradient(delta)
-        terms.reverse()
-        return terms, delta
+            else:
+                delta = delta * layer.derivative(values[i], values[i + 1])  # f'(z) * delta
+        return delta
 
     def _check_d_out(self, trace: Trace, d_out: Any) -> np.ndarray:
         if not isinstance(trace, Trace) or len(trace.values) != len(self.layers) + 1:
             raise TypeError("trace must be the Trace returned by this network's forward()")
-        d_out = as_float_array(d_out, "d_out", self.dtype)
-        if d_out.shape != trace.output.shape:
-            raise ValueError(
-                f"d_out must have the output's shape {trace.output.shape}, got shape {d_out.shape}"
-            )
+        work = trace.workspace
+        if work is not None:
+            if trace.generation != work.generation:
+                raise ValueError(
+                    "this trace's workspace arrays were overwritten by a later forward() or used by "
+                    "an earlier backward(); run forward() again"
+                )
+            work.generation += 1  # the backward pass below consumes the trace
+        expected = trace.values[-1].shape
+        if not (type(d_out) is np.ndarray and d_out.dtype == self.dtype):
+            d_out = as_float_array(d_out, "d_out", self.dtype)
+        if d_out.shape != expected:
+            raise ValueError(f"d_out must have the output's shape {expected}, got shape {d_out.shape}")
         return d_out
 
     # ----------------------------------------------------------------- derivatives per sample
@@ -214,13 +284,15 @@ class Network:
         for k in range(self.n_out):
             seed = np.zeros((n, self.n_out), dtype=self.dtype)
             seed[:, k] = 1.0
-            terms, _ = self._delta_recursion(trace, seed, need_input=False)
-            columns = []
-            for layer, x, delta in terms:
-                columns.append((delta[:, :, None] * x[:, None, :]).reshape(n, -1))
+            columns: list[np.ndarray] = []
+
+            def per_sample(i: int, layer: Affine, x: np.ndarray, delta: np.ndarray) -> None:
                 if layer.bias is not None:
                     columns.append(delta)
-            J[:, k, :] = np.concatenate(columns, axis=1)
+                columns.append((delta[:, :, None] * x[:, None, :]).reshape(n, -1))
+
+            self._delta_recursion(trace, seed, False, per_sample)
+            J[:, k, :] = np.concatenate(columns[::-1], axis=1)  # collected last layer first
         return J.reshape(n * self.n_out, self.n_params)
 
     def input_gradient(self, X: Any) -> np.ndarray:
@@ -231,7 +303,7 @@ class Network:
         for k in range(self.n_out):
             seed = np.zeros((n, self.n_out), dtype=self.dtype)
             seed[:, k] = 1.0
-            _, G[:, k, :] = self._delta_recursion(trace, seed, need_input=True)
+            G[:, k, :] = self._delta_recursion(trace, seed, True, lambda *_: None)
         return G
 
     # ----------------------------------------------------------------- utilities
@@ -248,6 +320,16 @@ class Network:
 # np.longdouble (x86 extended precision, no BLAS, slow) is accepted for the
 # numerical references in tinyprop.check; float32 and float64 are the working dtypes.
 _DTYPES = (np.dtype(np.float32), np.dtype(np.float64), np.dtype(np.longdouble))
+
+
+def _kind(layer: Layer, previous: Layer | None) -> str:
+    """A built-in activation right after an affine layer may overwrite that layer's output."""
+    if isinstance(layer, Affine):
+        return _AFFINE
+    if isinstance(layer, Activation):
+        in_place = works_in_place(layer) and isinstance(previous, Affine)
+        return _ACTIVATION_IN_PLACE if in_place else _ACTIVATION
+    return _SCALING
 
 
 def _network_dtype(dtype: Any) -> np.dtype:

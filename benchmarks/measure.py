@@ -1,0 +1,274 @@
+"""The measurements of the bundled benchmark; every figure is a ratio taken in one run.
+
+Timing rule: two competitors are timed in alternating rounds of ``k`` calls
+each, and each keeps its fastest round (the least disturbed by the rest of the
+machine); the ratio is of those per-call minima. Data are synthetic (seeded
+normal draws) except the second-order figures, which use NIST StRD problems.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import math
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+import tracemalloc
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+import tinyprop as tp
+from tinyprop.export import export_c, export_python
+from tinyprop.optim import SGD, Adam
+
+from .handwritten import handwritten_step
+
+
+def fastest_pair(a: Callable[[], Any], b: Callable[[], Any], *, calls: int, rounds: int) -> tuple[float, float]:
+    """Per-call seconds of ``a`` and ``b``: fastest of ``rounds`` alternating rounds of ``calls`` calls."""
+    a(), b()  # warm up: first-call allocations, caches
+    best_a = best_b = math.inf
+    for _ in range(rounds):
+        for fn, which in ((a, 0), (b, 1)):
+            start = time.perf_counter()
+            for _ in range(calls):
+                fn()
+            per_call = (time.perf_counter() - start) / calls
+            if which == 0:
+                best_a = min(best_a, per_call)
+            else:
+                best_b = min(best_b, per_call)
+    return best_a, best_b
+
+
+def _synthetic(rows: int, n_in: int, dtype: Any, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(rows, n_in)).astype(dtype)
+    return X, np.tanh(X[:, :1] - 0.5 * X[:, -1:]).astype(dtype)  # synthetic target
+
+
+def _training_step(net: tp.Network, optimizer: Any, X: np.ndarray, y: np.ndarray) -> Callable[[], None]:
+    """tinyprop's public-API step: forward, loss gradient, backward, update."""
+    loss = tp.MeanSquaredError()
+    work = net.workspace(X.shape[0])
+
+    def step() -> None:
+        out, trace = net.forward(X, workspace=work)
+        grads, _ = net.backward(trace, loss.gradient(out, y), need_input=False)
+        optimizer.update(net.params, grads)
+
+    return step
+
+
+def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str, Any]:
+    """Adam training step of 64-256-256-1 tanh over the floor: its matrix products and activations.
+
+    The floor times, on the same weight arrays and preallocated outputs, only
+    what any implementation must do: the forward products ``x W^T``, one
+    ``tanh`` per hidden layer, and the backward products ``delta^T x`` and
+    ``delta W`` (not below the first layer).
+    """
+    net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+    X, y = _synthetic(batch, 64, dtype)
+    step = _training_step(net, Adam(1e-6), X, y)
+    W1, W2, W3 = (layer.weight for layer in net.layers if isinstance(layer, tp.Affine))
+    a1, a2 = np.empty((batch, 256), dtype), np.empty((batch, 256), dtype)
+    out, d2, d1 = np.empty((batch, 1), dtype), np.empty((batch, 256), dtype), np.empty((batch, 256), dtype)
+    g1, g2, g3 = np.empty_like(W1), np.empty_like(W2), np.empty_like(W3)
+
+    def floor() -> None:
+        np.tanh(np.matmul(X, W1.T, out=a1), out=a1)
+        np.tanh(np.matmul(a1, W2.T, out=a2), out=a2)
+        np.matmul(a2, W3.T, out=out)
+        np.matmul(out.T, a2, out=g3)
+        np.matmul(out, W3, out=d2)
+        np.matmul(d2.T, a1, out=g2)
+        np.matmul(d2, W2, out=d1)
+        np.matmul(d1.T, X, out=g1)
+
+    t_step, t_floor = fastest_pair(step, floor, calls=calls, rounds=rounds)
+    return {"batch": batch, "dtype": np.dtype(dtype).name, "step_s": t_step, "floor_s": t_floor, "ratio": t_step / t_floor}
+
+
+def abstraction_tax(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
+    """Plain-SGD step through tinyprop's public API over the hand-written numpy step (handwritten.py)."""
+    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=0)
+    X, y = _synthetic(batch, sizes[0], np.float64)
+    step = _training_step(net, SGD(1e-6), X, y)
+    weights = [layer.weight.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
+    biases = [layer.bias.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
+
+    def by_hand() -> None:
+        handwritten_step(weights, biases, X, y, 1e-6)
+
+    t_step, t_hand = fastest_pair(step, by_hand, calls=calls, rounds=rounds)
+    label = "-".join(map(str, sizes))
+    return {"network": label, "batch": batch, "step_s": t_step, "hand_s": t_hand, "ratio": t_step / t_hand}
+
+
+def memory_ratio(batch: int, dtype: Any = np.float64) -> dict[str, Any]:
+    """Peak traced allocation of Adam training steps (64-256-256-1) over the theoretical need.
+
+    Traced from before the network exists to after two steps, minus the
+    training data. Need: parameters, gradients, Adam's two moments, and the
+    stored activations (every hidden layer's output and the network output).
+    """
+    X, y = _synthetic(batch, 64, dtype)
+    tracemalloc.start()
+    try:
+        net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+        step = _training_step(net, Adam(1e-6), X, y)
+        step()
+        step()
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    itemsize = np.dtype(dtype).itemsize
+    need = (4 * net.n_params + batch * (256 + 256 + 1)) * itemsize
+    return {"batch": batch, "dtype": np.dtype(dtype).name, "peak_bytes": peak, "need_bytes": need, "ratio": peak / need}
+
+
+def scaling(sample_counts: list[int], *, batch: int = 256) -> dict[str, Any]:
+    """Seconds per epoch of ``tp.train`` (8-32-32-1, Adam) against n, and the fitted exponent.
+
+    Per-epoch time is (time of 3 epochs - time of 1 epoch) / 2, which removes
+    the one-off input checks and set-up from the figure.
+    """
+    seconds = []
+    for n in sample_counts:
+        X, y = _synthetic(n, 8, np.float64)
+
+        def run(epochs: int) -> float:
+            net = tp.build_mlp([8, 32, 32, 1], seed=0)
+            start = time.perf_counter()
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch, seed=0)
+            return time.perf_counter() - start
+
+        one = min(run(1) for _ in range(2))
+        three = min(run(3) for _ in range(2))
+        seconds.append(max(three - one, 1e-9) / 2)
+    slope = float(np.polyfit(np.log(sample_counts), np.log(seconds), 1)[0])
+    return {"samples": sample_counts, "seconds_per_epoch": seconds, "exponent": slope}
+
+
+def second_order(names: tuple[str, ...] = ("Rat42",)) -> list[dict[str, Any]]:
+    """Levenberg-Marquardt from NIST start 1: wall time, Jacobian evaluations, LRE of the RSS."""
+    from tinyprop.datasets import load_nist
+
+    rows = []
+    for name in names:
+        problem = load_nist(name)
+        if name != "Rat42":
+            raise ValueError(f"the benchmark builds only Rat42 as a network, not {name}")
+        b1, b2, b3 = problem.start1
+        first, last = tp.Affine(1, 1), tp.Affine(1, 1, bias=False)
+        first.weight[:] = b3  # y = b1 / (1 + exp(b2 - b3 x)) = b1 * sigmoid(b3 x - b2)
+        first.bias[:] = -b2
+        last.weight[:] = b1
+        net = tp.Network([first, tp.Sigmoid(), last], init=None)
+        start = time.perf_counter()
+        result = tp.solve(net, problem.x, problem.y, method="levenberg-marquardt")
+        wall = time.perf_counter() - start
+        lre = -math.log10(abs(result.rss - problem.certified_rss) / problem.certified_rss)
+        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations, "rss_lre": lre})
+    return rows
+
+
+def inference(*, calls: int, rounds: int) -> dict[str, Any]:
+    """Single-sample latency of net.predict, the exported Python and the exported C (8-32-32-1)."""
+    net = tp.build_mlp([8, 32, 32, 1], seed=0)
+    x = np.linspace(-1.0, 1.0, 8).reshape(1, 8)
+    t_predict, _ = fastest_pair(lambda: net.predict(x), lambda: None, calls=calls, rounds=rounds)
+    row: dict[str, Any] = {"predict_s": t_predict}
+    with tempfile.TemporaryDirectory() as folder:
+        path = export_python(net, folder, name="bench_model")
+        spec = importlib.util.spec_from_file_location("bench_model", path)
+        assert spec is not None and spec.loader is not None
+        module = importlib.util.module_from_spec(spec)
+        spec.loader.exec_module(module)
+        sample = x[0].tolist()
+        t_python, _ = fastest_pair(lambda: module.predict(sample), lambda: None, calls=calls, rounds=rounds)
+        row["python_s"] = t_python
+        row["python_ratio"] = t_python / t_predict
+        row["c_s"] = _c_latency(net, Path(folder))
+        row["c_speedup"] = None if row["c_s"] is None else t_predict / row["c_s"]
+    return row
+
+
+_C_DRIVER = r"""
+#define _POSIX_C_SOURCE 199309L
+#include <stdio.h>
+#include <time.h>
+#include "bench_model.h"
+
+int main(void) {
+    float x[8] = {-1.0f, -0.71f, -0.43f, -0.14f, 0.14f, 0.43f, 0.71f, 1.0f};
+    float y[1];
+    volatile float sink = 0.0f;
+    const long n = 2000000;
+    double best = 1e30;
+    for (int round = 0; round < 5; ++round) {
+        struct timespec t0, t1;
+        clock_gettime(CLOCK_MONOTONIC, &t0);
+        for (long i = 0; i < n; ++i) {
+            x[0] = (float)(i & 7) * 0.125f;
+            bench_model_predict(x, y);
+            sink += y[0];
+        }
+        clock_gettime(CLOCK_MONOTONIC, &t1);
+        double s = (double)(t1.tv_sec - t0.tv_sec) + 1e-9 * (double)(t1.tv_nsec - t0.tv_nsec);
+        if (s < best) best = s;
+    }
+    printf("%.9g\n", best / (double)n);
+    return 0;
+}
+"""
+
+
+def _c_latency(net: tp.Network, folder: Path) -> float | None:
+    """Seconds per call of the exported C (float32, gcc -O2), timed in C; None without a compiler."""
+    compiler = shutil.which(os.environ.get("CC", "gcc")) or shutil.which("cc")
+    if compiler is None:
+        return None
+    export_c(net, folder, name="bench_model")
+    (folder / "driver.c").write_text(_C_DRIVER)
+    binary = folder / "driver"
+    subprocess.run(
+        [compiler, "-std=c99", "-O2", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
+        check=True,
+        capture_output=True,
+    )
+    output = subprocess.run([str(binary)], check=True, capture_output=True, text=True).stdout
+    return float(output)
+
+
+def machine() -> dict[str, Any]:
+    """What the figures were measured on: CPU, cores, numpy and its BLAS."""
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    blas = "unknown"
+    try:
+        config = np.show_config(mode="dicts")
+        info = config.get("Build Dependencies", {}).get("blas", {})
+        blas = f"{info.get('name', '?')} {info.get('version', '')}".strip()
+    except (TypeError, AttributeError):
+        pass
+    return {
+        "cpu": cpu,
+        "cores": os.cpu_count(),
+        "python": sys.version.split()[0],
+        "numpy": np.__version__,
+        "blas": blas,
+        "tinyprop": tp.__version__,
+    }

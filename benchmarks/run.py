@@ -1,0 +1,102 @@
+"""Run the bundled benchmark and print its table (``--json PATH`` also writes it as JSON).
+
+Usage: ``python -m tinyprop.benchmarks [--quick] [--json PATH]`` or ``tinyprop bench``.
+The default takes a few minutes on a 2-core laptop; ``--quick`` is a
+seconds-long smoke run whose figures are too short to trust.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+import numpy as np
+
+from . import measure
+
+BARS = {
+    "floor": 1.20,
+    "tax": 1.20,
+    "memory": 1.5,
+    "exponent": (0.9, 1.1),
+    "c_speedup": 50.0,
+}
+
+
+def run(quick: bool = False) -> dict[str, Any]:
+    """All measurements as one JSON-able dict."""
+    calls, rounds = (3, 2) if quick else (20, 15)
+    small_calls = 20 if quick else 500
+    batches = (256,) if quick else (256, 4096)
+    results: dict[str, Any] = {"machine": measure.machine(), "quick": quick}
+    results["floor"] = [
+        measure.floor_ratio(b, dtype, calls=calls if b < 4096 else max(2, calls // 4), rounds=rounds)
+        for dtype in (np.float32, np.float64)
+        for b in batches
+    ]
+    results["tax"] = [
+        measure.abstraction_tax([4, 8, 1], 16, calls=small_calls, rounds=rounds),
+        measure.abstraction_tax([8, 32, 32, 1], 32, calls=small_calls, rounds=rounds),
+    ]
+    results["memory"] = [measure.memory_ratio(256 if quick else 4096, dtype) for dtype in (np.float32, np.float64)]
+    results["scaling"] = measure.scaling([1000, 10000] if quick else [1000, 10000, 100000, 1000000])
+    results["second_order"] = measure.second_order()
+    results["inference"] = measure.inference(calls=small_calls, rounds=rounds)
+    return results
+
+
+def table(results: dict[str, Any]) -> str:
+    """The results as a plain-text table, each ratio beside its bar."""
+    m = results["machine"]
+    lines = [
+        f"tinyprop {m['tinyprop']} benchmark{' (quick smoke run: figures not meaningful)' if results['quick'] else ''}",
+        f"machine: {m['cpu']}, {m['cores']} cores, Python {m['python']}, numpy {m['numpy']}, BLAS {m['blas']}",
+        "",
+        f"{'figure':<46} {'measured':>12} {'ratio':>8} {'bar':>10}",
+    ]
+
+    def row(name: str, measured: str, ratio: float | None, bar: str) -> None:
+        shown = "-" if ratio is None else f"{ratio:.2f}"
+        lines.append(f"{name:<46} {measured:>12} {shown:>8} {bar:>10}")
+
+    for r in results["floor"]:
+        row(f"floor ratio, batch {r['batch']} {r['dtype']}", f"{r['step_s'] * 1e3:.3f} ms", r["ratio"], f"<= {BARS['floor']}")
+    for r in results["tax"]:
+        row(f"abstraction tax, {r['network']} batch {r['batch']}", f"{r['step_s'] * 1e6:.1f} us", r["ratio"], f"<= {BARS['tax']}")
+    for r in results["memory"]:
+        row(f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], f"<= {BARS['memory']}")
+    s = results["scaling"]
+    for n, sec in zip(s["samples"], s["seconds_per_epoch"]):
+        row(f"epoch time, n = {n:.0e}", f"{sec * 1e3:.2f} ms", None, "")
+    low, high = BARS["exponent"]
+    row("scaling exponent (time ~ n^k)", "", s["exponent"], f"{low}..{high}")
+    for r in results["second_order"]:
+        row(f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians)", f"{r['seconds'] * 1e3:.1f} ms", None, f"LRE {r['rss_lre']:.1f}")
+    i = results["inference"]
+    row("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, "")
+    row("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"], "")
+    if i["c_s"] is None:
+        row("inference: exported C", "no compiler", None, "")
+    else:
+        row("inference: predict / exported C (speed-up)", f"{i['c_s'] * 1e9:.0f} ns", i["c_speedup"], f">= {BARS['c_speedup']:.0f}")
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="tinyprop bench", description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="seconds-long smoke run (figures not meaningful)")
+    parser.add_argument("--json", metavar="PATH", help="also write the results as JSON to PATH")
+    args = parser.parse_args(argv)
+    results = run(quick=args.quick)
+    print(table(results))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as handle:
+            json.dump(results, handle, indent=2)
+        print(f"\nwrote {args.json}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
