@@ -8,8 +8,10 @@ examples (``pytest -m slow``).
 
 from __future__ import annotations
 
+import atexit
 import copy
 import json
+import shutil
 import tempfile
 import zipfile
 from pathlib import Path
@@ -29,7 +31,8 @@ GUARD = dict(deadline=5000, suppress_health_check=[HealthCheck.too_slow, HealthC
 FAST = settings(max_examples=250, **GUARD)
 SLOW = settings(max_examples=5000, **GUARD)
 
-WORKDIR = Path(tempfile.mkdtemp(prefix="tinyprop-fuzz-"))
+WORKDIR = Path(tempfile.mkdtemp(prefix="tinyprop-fuzz-"))  # every example rewrites its own file here
+atexit.register(shutil.rmtree, WORKDIR, ignore_errors=True)
 ORIGINAL = hand_set_network()
 ORIGINAL_PATH = WORKDIR / "original.npz"
 save(ORIGINAL, ORIGINAL_PATH, metadata={"data": "synthetic", "epochs": [1, 2, 3]})
