@@ -179,7 +179,7 @@ def second_order(names: tuple[str, ...] = ("Rat42",)) -> list[dict[str, Any]]:
     return rows
 
 
-def inference(*, calls: int, rounds: int) -> dict[str, Any]:
+def inference(*, calls: int, rounds: int, c_calls: int) -> dict[str, Any]:
     """Single-sample latency of net.predict, the exported Python and the exported C (8-32-32-1)."""
     net = tp.build_mlp([8, 32, 32, 1], seed=0)
     x = np.linspace(-1.0, 1.0, 8).reshape(1, 8)
@@ -195,7 +195,7 @@ def inference(*, calls: int, rounds: int) -> dict[str, Any]:
         t_python, _ = fastest_pair(lambda: module.predict(sample), lambda: None, calls=calls, rounds=rounds)
         row["python_s"] = t_python
         row["python_ratio"] = t_python / t_predict
-        row["c_s"] = _c_latency(net, Path(folder))
+        row["c_s"] = _c_latency(net, Path(folder), c_calls)
         row["c_speedup"] = None if row["c_s"] is None else t_predict / row["c_s"]
     return row
 
@@ -210,7 +210,7 @@ int main(void) {
     float x[8] = {-1.0f, -0.71f, -0.43f, -0.14f, 0.14f, 0.43f, 0.71f, 1.0f};
     float y[1];
     volatile float sink = 0.0f;
-    const long n = 2000000;
+    const long n = CALLS;
     double best = 1e30;
     for (int round = 0; round < 5; ++round) {
         struct timespec t0, t1;
@@ -230,7 +230,7 @@ int main(void) {
 """
 
 
-def _c_latency(net: tp.Network, folder: Path) -> float | None:
+def _c_latency(net: tp.Network, folder: Path, calls: int) -> float | None:
     """Seconds per call of the exported C (float32, gcc -O2), timed in C; None without a compiler."""
     compiler = shutil.which(os.environ.get("CC", "gcc")) or shutil.which("cc")
     if compiler is None:
@@ -239,7 +239,7 @@ def _c_latency(net: tp.Network, folder: Path) -> float | None:
     (folder / "driver.c").write_text(_C_DRIVER)
     binary = folder / "driver"
     subprocess.run(
-        [compiler, "-std=c99", "-O2", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
+        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
         check=True,
         capture_output=True,
     )

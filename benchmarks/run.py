@@ -27,9 +27,9 @@ BARS = {
 
 def run(quick: bool = False) -> dict[str, Any]:
     """All measurements as one JSON-able dict."""
-    calls, rounds = (3, 2) if quick else (20, 15)
-    small_calls = 20 if quick else 500
-    batches = (256,) if quick else (256, 4096)
+    calls, rounds = (2, 1) if quick else (20, 15)
+    small_calls = 5 if quick else 500
+    batches = (64,) if quick else (256, 4096)
     results: dict[str, Any] = {"machine": measure.machine(), "quick": quick}
     results["floor"] = [
         measure.floor_ratio(b, dtype, calls=calls if b < 4096 else max(2, calls // 4), rounds=rounds)
@@ -40,10 +40,10 @@ def run(quick: bool = False) -> dict[str, Any]:
         measure.abstraction_tax([4, 8, 1], 16, calls=small_calls, rounds=rounds),
         measure.abstraction_tax([8, 32, 32, 1], 32, calls=small_calls, rounds=rounds),
     ]
-    results["memory"] = [measure.memory_ratio(256 if quick else 4096, dtype) for dtype in (np.float32, np.float64)]
-    results["scaling"] = measure.scaling([1000, 10000] if quick else [1000, 10000, 100000, 1000000])
+    results["memory"] = [measure.memory_ratio(64 if quick else 4096, dtype) for dtype in (np.float32, np.float64)]
+    results["scaling"] = measure.scaling([300, 1000] if quick else [1000, 10000, 100000, 1000000])
     results["second_order"] = measure.second_order()
-    results["inference"] = measure.inference(calls=small_calls, rounds=rounds)
+    results["inference"] = measure.inference(calls=small_calls, rounds=rounds, c_calls=1000 if quick else 2000000)
     return results
 
 

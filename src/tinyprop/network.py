@@ -160,9 +160,15 @@ class Network:
         """Output and the :class:`Trace` that :meth:`backward` needs.
 
         With a ``workspace`` (see :meth:`workspace`) the arrays are the
-        workspace's and no large array is allocated.
+        workspace's and no large array is allocated. A batch that already has
+        the network's dtype and shape is then used as it is, without the scan
+        for NaN and infinity: training checks its data once before the first
+        epoch, and its divergence guard catches non-finite results.
         """
-        x = as_samples(X, "X", self.n_in, self.dtype)
+        if workspace is not None and _is_batch(X, self.n_in, self.dtype):
+            x = X  # the training fast path: see the docstring
+        else:
+            x = as_samples(X, "X", self.n_in, self.dtype)
         generation = 0
         if workspace is not None:
             generation = self._claim(workspace, x.shape[0])
@@ -320,6 +326,11 @@ class Network:
 # np.longdouble (x86 extended precision, no BLAS, slow) is accepted for the
 # numerical references in tinyprop.check; float32 and float64 are the working dtypes.
 _DTYPES = (np.dtype(np.float32), np.dtype(np.float64), np.dtype(np.longdouble))
+
+
+def _is_batch(X: Any, n_in: int, dtype: np.dtype) -> bool:
+    """An ndarray of ``dtype`` and shape ``(n, n_in)``, ``n >= 1``."""
+    return type(X) is np.ndarray and X.dtype == dtype and X.ndim == 2 and X.shape[1] == n_in and X.shape[0] > 0
 
 
 def _kind(layer: Layer, previous: Layer | None) -> str:

@@ -1,0 +1,26 @@
+"""The bundled benchmark runs end to end (seconds-long smoke mode; no timing assertions)."""
+
+from __future__ import annotations
+
+import json
+
+from tinyprop.benchmarks import main, run, table
+
+
+def test_quick_run_produces_every_figure(tmp_path, capsys):
+    path = tmp_path / "bench.json"
+    assert main(["--quick", "--json", str(path)]) == 0
+    printed = capsys.readouterr().out
+    results = json.loads(path.read_text())
+    for key in ("machine", "floor", "tax", "memory", "scaling", "second_order", "inference"):
+        assert key in results
+    for row in results["floor"] + results["tax"] + results["memory"]:
+        assert row["ratio"] > 0
+    assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
+    assert "floor ratio" in printed and "abstraction tax" in printed and "scaling exponent" in printed
+
+
+def test_table_marks_a_missing_compiler():
+    results = run(quick=True)
+    results["inference"]["c_s"] = None
+    assert "no compiler" in table(results)
