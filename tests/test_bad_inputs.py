@@ -205,7 +205,7 @@ ROWS = [
     Row("predict-text", lambda i: i.net.predict([["a", "b", "c"]]), TypeError, r"X must hold real numbers .*got dtype <U1"),
     Row("set-vector-wrong-length", lambda i: i.net.set_vector(i.theta_short), ValueError,
         r"theta must have shape \(26,\), got shape \(3,\)"),
-    Row("set-vector-nan", lambda i: i.net.set_vector(i.theta_nan), ValueError, r"theta has a non-finite value \(nan\) at row 4"),
+    Row("set-vector-nan", lambda i: i.net.set_vector(i.theta_nan), ValueError, r"theta has a non-finite value \(nan\) at entry 4"),
     Row("backward-wrong-d-out", lambda i: i.net.backward(i.net.forward(i.X)[1], i.d_out_wrong), ValueError,
         r"d_out must have the output's shape \(8, 2\), got shape \(8, 3\)"),
     # ------------------------------------------------------------ train
@@ -237,12 +237,12 @@ ROWS = [
     Row("solve-not-a-network", lambda i: solve([i.net], i.X, i.y), TypeError, r"net must be a tinyprop Network, got list"),
     # ------------------------------------------------------------ check_*
     Row("check-gradient-loss-class", lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError), TypeError,
-        r"loss must be a tinyprop Loss"),
+        r"loss must be a tinyprop Loss \(e\.g\. tp\.SquaredError\(\)\), got the class SquaredError; pass an instance"),
     Row("check-gradient-targets-wrong-shape", lambda i: tp.check_gradient(i.net, i.X, i.y_seven_rows, tp.SquaredError()), ValueError,
         r"y must have shape \(8, 2\)"),
     Row("check-gradient-exactly-on-a-kink", _kink, ValueError, r"kink"),
     Row("check-activation-class-not-instance", lambda i: tp.check_activation(tp.Tanh), TypeError,
-        r"activation must be an instance of a tp\.Activation subclass, got type"),
+        r"activation must be an instance of a tp\.Activation subclass, got the class Tanh; pass an instance, Tanh\(\)"),
     Row("check-activation-nan-points", lambda i: tp.check_activation(tp.Tanh(), points=i.points_nan), ValueError,
         r"points must be a non-empty list of finite numbers"),
     # ------------------------------------------------------------ save, load, fingerprint
@@ -261,16 +261,13 @@ ROWS = [
     Row("load-unknown-activation", _names_unknown_activation, ModelFileError,
         r"names the activation 'test_bad_inputs\.Halving', which is not registered in this program"),
     Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError, r"expected a tinyprop Network, got str"),
-]
-
-
-# Inputs whose error does not yet name the problem (reported to the owners of the code).
-# Strict: once fixed, these fail as "unexpectedly passing" and move up into ROWS.
-GAPS = [
-    Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError, r"seed"),
-    Row("network-fractional-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=1.5), TypeError, r"seed"),
-    Row("check-gradient-negative-tolerance", lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError(), tolerance=-1.0),
-        ValueError, r"tolerance"),
+    Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError,
+        r"seed must be None or an integer >= 0, got -1"),
+    Row("network-fractional-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=1.5), TypeError,
+        r"seed must be None or an integer >= 0, got 1\.5"),
+    Row("check-gradient-negative-tolerance",
+        lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError(), tolerance=-1.0), ValueError,
+        r"tolerance must be a finite number in \(0\.0, inf\], got -1\.0"),
 ]
 
 
@@ -284,17 +281,11 @@ def test_bad_input_is_refused_clearly_and_changes_nothing(row, tmp_path):
     assert_unchanged(before, inputs)
 
 
-@pytest.mark.xfail(strict=True, reason="the error does not name the problem yet; see docs/reliability.md, known gaps")
-@pytest.mark.parametrize("row", GAPS, ids=[row.id for row in GAPS])
-def test_known_gap(row, tmp_path):
-    test_bad_input_is_refused_clearly_and_changes_nothing(row, tmp_path)
-
-
 def test_the_rows_are_distinct_and_many():
     assert len({row.id for row in ROWS}) == len(ROWS) >= 25
 
 
 def test_docs_table_lists_exactly_these_rows():
     documented = re.findall(r"^\| `([a-z0-9-]+)` \|", DOC.read_text(encoding="utf-8"), flags=re.M)
-    assert sorted(documented) == sorted(row.id for row in ROWS + GAPS)
+    assert sorted(documented) == sorted(row.id for row in ROWS)
     assert len(documented) == len(set(documented))

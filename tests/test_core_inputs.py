@@ -54,7 +54,7 @@ def test_set_vector_refuses_wrong_length_and_nan(net):
         net.set_vector(np.zeros(3))
     bad = np.zeros(net.n_params)
     bad[4] = np.nan
-    with pytest.raises(ValueError, match="row 4"):
+    with pytest.raises(ValueError, match="entry 4"):
         net.set_vector(bad)
     np.testing.assert_array_equal(net.get_vector(), before)
 

@@ -35,18 +35,27 @@ def as_float_array(value: Any, name: str, dtype: np.dtype) -> np.ndarray:
 
 
 def require_finite(array: np.ndarray, name: str, converted_from: np.dtype | None = None) -> None:
-    """Raise ``ValueError`` naming the first row that holds NaN or infinity."""
-    if np.isfinite(array.sum()):
+    """Raise ``ValueError`` naming the first row (entry, for 1-D) that holds NaN or infinity."""
+    if _sum_is_finite(array):
         return  # a single NaN or inf would make the sum non-finite
     bad = ~np.isfinite(array)
     if not bad.any():
         return  # only the sum overflowed
     index = np.unravel_index(int(np.argmax(bad)), array.shape)
-    where = f"row {index[0]}" + (f", column {index[1]}" if len(index) > 1 else "")
+    if len(index) == 1:
+        where = f"entry {index[0]}"
+    else:
+        where = f"row {index[0]}, column {index[1]}" if len(index) == 2 else f"index {tuple(map(int, index))}"
     note = ""
     if converted_from is not None and converted_from != array.dtype:
         note = f" after conversion from {converted_from} to {array.dtype}"
     raise ValueError(f"{name} has a non-finite value ({array[index]}) at {where}{note}")
+
+
+def _sum_is_finite(array: np.ndarray) -> bool:
+    """True when the sum is finite, which proves every entry finite (a False may be overflow only)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        return math.isfinite(array.sum())
 
 
 def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.ndarray:
@@ -57,7 +66,7 @@ def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.nda
         and value.ndim == 2
         and value.shape[1] == n_columns
         and value.shape[0] > 0
-        and math.isfinite(value.sum())
+        and _sum_is_finite(value)
     ):
         return value  # already right: the common case inside training loops, checked cheaply
     array = as_float_array(value, name, dtype)
@@ -94,3 +103,21 @@ def positive_int(value: Any, name: str) -> int:
     if value < 1:
         raise ValueError(f"{name} must be a positive integer, got {value}")
     return int(value)
+
+
+def seed_value(seed: Any, name: str = "seed") -> int | None:
+    """``None`` or a non-negative integer seed for ``numpy.random.default_rng``."""
+    if seed is None:
+        return None
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
+        raise TypeError(f"{name} must be None or an integer >= 0, got {seed!r}")
+    if seed < 0:
+        raise ValueError(f"{name} must be None or an integer >= 0, got {seed}")
+    return int(seed)
+
+
+def kind_of(value: Any) -> str:
+    """How to name what arrived: a class passed where an instance belongs is called out."""
+    if isinstance(value, type):
+        return f"the class {value.__name__}; pass an instance, {value.__name__}()"
+    return f"a {type(value).__name__}"

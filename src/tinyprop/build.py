@@ -6,7 +6,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ._validate import positive_int
+from ._validate import kind_of, positive_int
 from .activations import Activation, LeakyReLU, ReLU, Tanh
 from .layers import Affine
 from .network import Layer, Network
@@ -42,7 +42,7 @@ def build_mlp(
     hidden = Tanh() if hidden is None else hidden
     for name, act in (("hidden", hidden), ("output", output)):
         if act is not None and not isinstance(act, Activation):
-            raise TypeError(f"{name} must be a tp.Activation instance, got {act!r}")
+            raise TypeError(f"{name} must be a tp.Activation instance, got {kind_of(act)}")
     if init is None:
         init = "he" if isinstance(hidden, (ReLU, LeakyReLU)) else "glorot"
     layers: list[Layer] = []

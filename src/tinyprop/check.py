@@ -57,11 +57,12 @@ from typing import Any, Sequence
 import numpy as np
 from scipy import differentiate
 
-from ._validate import as_samples, as_targets
+from ._validate import as_samples, as_targets, kind_of
 from .activations import Activation
 from .layers import Affine
 from .losses import Loss
 from .network import Network, Trace
+from .schedules import real_in_range
 
 __all__ = [
     "check_gradient",
@@ -159,11 +160,12 @@ def check_gradient(
     True
     """
     if not isinstance(net, Network):
-        raise TypeError(f"net must be a tinyprop Network, got {type(net).__name__}")
+        raise TypeError(f"net must be a tinyprop Network, got {kind_of(net)}")
     if not isinstance(loss, Loss):
-        raise TypeError(f"loss must be a tinyprop Loss (e.g. tp.SquaredError()), got {type(loss).__name__}")
+        raise TypeError(f"loss must be a tinyprop Loss (e.g. tp.SquaredError()), got {kind_of(loss)}")
     if tolerance is None:
         tolerance = _GRADIENT_TOLERANCE[net.dtype]
+    tolerance = real_in_range(tolerance, "tolerance", low=0.0, low_open=True)
     X = as_samples(X, "X", net.n_in, net.dtype)
     y = as_targets(y, "y", X.shape[0], net.n_out, net.dtype)
 
@@ -321,9 +323,8 @@ def check_activation(
     True
     """
     if not isinstance(activation, Activation):
-        raise TypeError(
-            f"activation must be an instance of a tp.Activation subclass, got {type(activation).__name__}"
-        )
+        raise TypeError(f"activation must be an instance of a tp.Activation subclass, got {kind_of(activation)}")
+    tolerance = real_in_range(tolerance, "tolerance", low=0.0, low_open=True)
     z = DEFAULT_POINTS if points is None else np.asarray(points, dtype=np.float64).ravel()
     if z.size == 0 or not np.all(np.isfinite(z)):
         raise ValueError("points must be a non-empty list of finite numbers")

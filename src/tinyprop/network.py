@@ -26,7 +26,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from ._validate import as_float_array, as_samples
+from ._validate import as_float_array, as_samples, kind_of, seed_value
 from .activations import Activation, works_in_place
 from .init import SCHEMES, draw_weight
 from .layers import Affine, ColumnScaling
@@ -99,7 +99,7 @@ class Network:
         self.n_in, self.n_out = _check_layer_widths(self.layers)
         if init is not None and init not in SCHEMES:
             raise ValueError(f"init must be one of {SCHEMES} or None, got {init!r}")
-        rng = np.random.default_rng(seed)
+        rng = np.random.default_rng(seed_value(seed))
         for layer in self.layers:
             if isinstance(layer, Affine):
                 if init is not None:
@@ -368,7 +368,7 @@ def _check_layer_widths(layers: list[Layer]) -> tuple[int, int]:
             layer_in = layer_out = layer.width
         else:
             raise TypeError(
-                f"layer {index} is a {type(layer).__name__}; expected Affine, an Activation "
+                f"layer {index} is {kind_of(layer)}; expected Affine, an Activation "
                 "subclass, Standardize or Unstandardize"
             )
         if width is not None and layer_in != width:
