@@ -1,0 +1,617 @@
+"""How far to trust a network fitted by least squares.
+
+Classical nonlinear-regression statistics (Bates & Watts (1988), "Nonlinear
+Regression Analysis and Its Applications", Wiley; Seber & Wild (1989),
+"Nonlinear Regression", Wiley) applied to all parameters ``theta`` of a
+network, with the Jacobian ``J = d output / d theta`` from backpropagation
+(:meth:`~tinyprop.network.Network.jacobian`, one row per sample and output).
+
+Parameter covariance, at a least-squares solution with residuals ``r``
+(``N = n * n_out`` residuals, ``p`` parameters)::
+
+    s^2 = RSS / (N - p),   RSS = r^T r
+    C   = s^2 (J^T J)^-1
+
+``(J^T J)^-1`` is never formed by inverting ``J^T J``. The columns of ``J``
+are first scaled to unit length, ``J = A D`` with ``D = diag(||J_j||)``, and
+the singular value decomposition ``A = U diag(sigma) V^T`` gives::
+
+    C = s^2 D^-1 V diag(1 / sigma^2) V^T D^-1
+
+Standard errors are ``sqrt(C_jj)``, correlations ``C_ij / sqrt(C_ii C_jj)``.
+The column scaling makes the verdict below independent of the units of the
+parameters (multiplying a parameter by a constant changes nothing in the
+statistics, so it must not change the verdict) and improves the accuracy of
+the small singular values (van der Sluis (1969), Numer. Math. 14).
+
+Rank deficiency: ``A`` is numerically rank-deficient when a singular value
+``sigma_i <= max(N, p) * eps * sigma_max`` (``eps`` of float64). Then some
+combination of parameters has no measurable effect on the outputs, ``C``
+does not exist, and :func:`parameter_uncertainty` raises
+:class:`RankDeficientError` naming the condition number
+``sigma_max / sigma_min``, the numerical rank and the parameters involved,
+instead of returning meaningless numbers. A full-rank but ill-conditioned fit
+is returned with its ``condition_number``: read the standard errors in the
+light of it.
+
+Prediction intervals by the delta method, for a new input ``x0`` and output
+``k``, with ``g = d f_k(x0) / d theta`` (a row of ``net.jacobian(x0)``) and
+``t = t_{1 - alpha/2, N - p}`` (Student's t quantile, ``scipy.stats.t.ppf``);
+the linear-approximation formulas of Bates & Watts (1988), chapter 2
+("Nonlinear Regression: Iterative Estimation and Linear Approximations"), and
+of Seber & Wild (1989)::
+
+    standard error of the fitted mean   se_mean = sqrt(g^T C g)
+    confidence interval of the mean     f_k(x0) +- t * se_mean
+    prediction interval (new y)         f_k(x0) +- t * sqrt(s^2 + g^T C g)
+
+Several outputs share one error variance ``s^2``: :func:`~tinyprop.solve.solve`
+minimises the unweighted sum of squares over all outputs, which is the
+maximum-likelihood fit only when every output has the same noise level. Scale
+the targets so that this holds (or fit one network per output).
+
+These results assume that the model is locally linear in ``theta`` near the
+solution, that the model form is right, and that the errors are independent,
+Gaussian, with constant variance; see ``docs/uncertainty.md``.
+
+Input sensitivities (:func:`input_sensitivity`) summarise
+``d output_k / d input_j`` from :meth:`~tinyprop.network.Network.input_gradient`
+over a data set: mean absolute value, its standard deviation and the signed
+mean, in output units per input unit.
+
+All statistics are computed in float64 on a float64 copy of the network.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from collections.abc import Iterable, Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from ._validate import as_samples, as_targets, require_finite
+from .activations import Identity, LeakyReLU, ReLU
+from .layers import Affine
+from .network import Network
+from .schedules import real_in_range
+
+if TYPE_CHECKING:
+    from .solve import SolveResult
+
+__all__ = [
+    "ParameterUncertainty",
+    "PredictionIntervals",
+    "RankDeficientError",
+    "SensitivityTable",
+    "input_sensitivity",
+    "parameter_labels",
+    "parameter_uncertainty",
+    "uncertainty_report",
+]
+
+_EPS = float(np.finfo(np.float64).eps)
+_MAX_NAMED = 6  # parameters named per unidentifiable direction in the error message
+_MAX_GROUPS = 3  # unidentifiable directions listed in the error message
+_HOMOGENEOUS = (ReLU, LeakyReLU, Identity)  # f(c z) = c f(z) for c > 0
+
+
+class RankDeficientError(ValueError):
+    """The Jacobian is numerically rank-deficient; the covariance does not exist.
+
+    ``condition_number`` is ``sigma_max / sigma_min`` of the column-scaled
+    Jacobian (``inf`` when a singular value is exactly zero), ``rank`` the
+    numerical rank, ``n_params`` the number of parameters, ``singular_values``
+    all singular values (descending) and ``unidentifiable`` the parameters
+    that can move together without changing the outputs: one tuple of labels
+    per numerically null right singular vector (its components of at least 10%
+    of the largest, at most six; identical tuples listed once).
+    """
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        condition_number: float,
+        rank: int,
+        n_params: int,
+        singular_values: np.ndarray,
+        unidentifiable: tuple[tuple[str, ...], ...],
+    ) -> None:
+        super().__init__(message)
+        self.condition_number = condition_number
+        self.rank = rank
+        self.n_params = n_params
+        self.singular_values = singular_values
+        self.unidentifiable = unidentifiable
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able summary; an infinite condition number is written as ``None``."""
+        return {
+            "rank_deficient": True,
+            "message": str(self),
+            "condition_number": _json_float(self.condition_number),
+            "rank": self.rank,
+            "n_params": self.n_params,
+            "unidentifiable": [list(group) for group in self.unidentifiable],
+        }
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class PredictionIntervals:
+    """Delta-method intervals at new inputs (module docstring formulas).
+
+    Arrays have shape ``(m, n_out)`` for ``m`` new inputs. ``prediction``:
+    the network output ``f(x0)``. ``mean_standard_error``: ``sqrt(g^T C g)``.
+    ``prediction_standard_error``: ``sqrt(s^2 + g^T C g)``. ``mean_lower`` /
+    ``mean_upper``: confidence interval of the fitted mean. ``lower`` /
+    ``upper``: prediction interval for a new observation. ``level``: the
+    confidence level; ``t_quantile``: ``t_{(1 + level)/2, dof}``;
+    ``degrees_of_freedom``: ``N - p``.
+    """
+
+    level: float
+    t_quantile: float
+    degrees_of_freedom: int
+    prediction: np.ndarray
+    mean_standard_error: np.ndarray
+    prediction_standard_error: np.ndarray
+    mean_lower: np.ndarray
+    mean_upper: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+
+    @property
+    def half_width(self) -> np.ndarray:
+        """Half-width of the prediction interval, ``t * sqrt(s^2 + g^T C g)``."""
+        return self.t_quantile * self.prediction_standard_error
+
+    def contains(self, y: Any) -> np.ndarray:
+        """Boolean ``(m, n_out)``: ``lower <= y <= upper`` (1-D ``y`` for one output)."""
+        m, n_out = self.prediction.shape
+        target = as_targets(y, "y", m, n_out, np.dtype(np.float64))
+        return (self.lower <= target) & (target <= self.upper)
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class ParameterUncertainty:
+    """What :func:`parameter_uncertainty` returns (formulas in the module docstring).
+
+    ``theta``: the float64 parameters (order of ``net.get_vector()``);
+    ``labels``: one label per parameter (:func:`parameter_labels`).
+    ``standard_errors``: ``sqrt(diag C)``; ``covariance``: ``C``;
+    ``correlation``: ``C`` scaled to unit diagonal.
+    ``residual_sd``: ``s``; ``residual_variance``: ``s^2``; ``rss``: ``r^T r``.
+    ``n_residuals``: ``N = n * n_out``; ``n_params``: ``p``;
+    ``degrees_of_freedom``: ``N - p``.
+    ``singular_values`` (descending) and ``right_singular_vectors`` (``V``,
+    columns) of the column-scaled Jacobian ``A = J D^-1``; ``column_norms``:
+    the diagonal of ``D``. ``condition_number``: ``sigma_max / sigma_min`` of
+    ``A``. ``gradient_cosine``: ``max_j |J_j^T r| / (||J_j|| ||r||)``, 0 at an
+    exact least-squares solution (MINPACK's ``gtol`` measure); a value far
+    from 0 means the network was not fitted to a least-squares minimum and the
+    formulas do not apply. ``network``: a float64 copy of the network at
+    ``theta``, used by :meth:`prediction_intervals`.
+    """
+
+    theta: np.ndarray = field(repr=False)
+    labels: tuple[str, ...] = field(repr=False)
+    standard_errors: np.ndarray = field(repr=False)
+    covariance: np.ndarray = field(repr=False)
+    correlation: np.ndarray = field(repr=False)
+    residual_sd: float
+    residual_variance: float
+    rss: float
+    n_residuals: int
+    n_params: int
+    degrees_of_freedom: int
+    singular_values: np.ndarray = field(repr=False)
+    right_singular_vectors: np.ndarray = field(repr=False)
+    column_norms: np.ndarray = field(repr=False)
+    condition_number: float
+    gradient_cosine: float
+    network: Network = field(repr=False)
+
+    def prediction_intervals(self, X: Any, *, level: float = 0.95) -> PredictionIntervals:
+        """Delta-method confidence and prediction intervals at new inputs ``X`` ``(m, n_in)``.
+
+        ``g^T C g`` is evaluated as ``s^2 ||diag(1/sigma) V^T D^-1 g||^2``,
+        which is never negative.
+        """
+        level = real_in_range(level, "level", low=0.0, high=1.0, low_open=True, high_open=True)
+        X64 = as_samples(X, "X", self.network.n_in, self.network.dtype)
+        out = self.network.predict(X64)
+        G = self.network.jacobian(X64)
+        B = (G / self.column_norms) @ self.right_singular_vectors / self.singular_values
+        mean_variance = self.residual_variance * np.einsum("ij,ij->i", B, B).reshape(out.shape)
+        mean_se = np.sqrt(mean_variance)
+        prediction_se = np.sqrt(self.residual_variance + mean_variance)
+        from scipy import stats  # here, not at import: importing tinyprop's core stays numpy-only
+
+        t = float(stats.t.ppf(0.5 + level / 2, self.degrees_of_freedom))
+        return PredictionIntervals(
+            level=level,
+            t_quantile=t,
+            degrees_of_freedom=self.degrees_of_freedom,
+            prediction=out,
+            mean_standard_error=mean_se,
+            prediction_standard_error=prediction_se,
+            mean_lower=out - t * mean_se,
+            mean_upper=out + t * mean_se,
+            lower=out - t * prediction_se,
+            upper=out + t * prediction_se,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able summary: scalars, and per parameter its value and standard error."""
+        return {
+            "rank_deficient": False,
+            "residual_sd": self.residual_sd,
+            "rss": self.rss,
+            "n_residuals": self.n_residuals,
+            "n_params": self.n_params,
+            "degrees_of_freedom": self.degrees_of_freedom,
+            "condition_number": self.condition_number,
+            "gradient_cosine": self.gradient_cosine,
+            "max_abs_correlation": _max_off_diagonal(self.correlation),
+            "parameters": [
+                {"label": label, "value": float(value), "standard_error": float(se)}
+                for label, value, se in zip(self.labels, self.theta, self.standard_errors)
+            ],
+        }
+
+
+def parameter_labels(net: Network) -> tuple[str, ...]:
+    """One label per parameter, in the order of ``net.get_vector()``.
+
+    ``"layer i weight[k, j]"`` or ``"layer i bias[k]"``, with ``i`` the
+    position of the :class:`~tinyprop.layers.Affine` layer in ``net.layers``.
+
+    >>> import tinyprop as tp
+    >>> parameter_labels(tp.Network([tp.Affine(2, 1), tp.Tanh()], seed=0))
+    ('layer 0 weight[0, 0]', 'layer 0 weight[0, 1]', 'layer 0 bias[0]')
+    """
+    labels: list[str] = []
+    for index, layer in enumerate(net.layers):
+        if not isinstance(layer, Affine):
+            continue
+        labels += [f"layer {index} weight[{k}, {j}]" for k in range(layer.n_out) for j in range(layer.n_in)]
+        if layer.bias is not None:
+            labels += [f"layer {index} bias[{k}]" for k in range(layer.n_out)]
+    return tuple(labels)
+
+
+def parameter_uncertainty(
+    net: Network, X: Any = None, y: Any = None, *, result: SolveResult | None = None
+) -> ParameterUncertainty:
+    """Parameter covariance and standard errors of a least-squares fitted network.
+
+    Give either ``X`` and ``y`` (the data the network was fitted to; the
+    Jacobian and residuals are computed at the network's current parameters)
+    or ``result``, the :class:`~tinyprop.solve.SolveResult` of
+    ``solve(net, X, y)`` (its float64 ``theta``, residuals and Jacobian are
+    used; ``net`` must be the network ``solve`` fitted, unchanged since).
+    ``net`` is not modified.
+
+    Raises :class:`RankDeficientError` (a ``ValueError``) when the Jacobian
+    is numerically rank-deficient, and ``ValueError`` when there are no
+    degrees of freedom left (``N <= p``).
+
+    >>> import numpy as np, tinyprop as tp
+    >>> x = np.array([[0.0], [1.0], [2.0], [3.0]])
+    >>> y = np.array([0.1, 0.9, 2.1, 2.9])           # synthetic
+    >>> net = tp.Network([tp.Affine(1, 1)], init=None)
+    >>> net.layers[0].weight[:], net.layers[0].bias[:] = 0.96, 0.06  # least-squares line
+    >>> u = parameter_uncertainty(net, x, y)
+    >>> u.degrees_of_freedom, round(u.residual_sd, 6), np.round(u.standard_errors, 6).tolist()
+    (2, 0.126491, [0.056569, 0.10583])
+
+    (Straight line: ``s / sqrt(Sxx) = s / sqrt(5)`` for the slope and
+    ``s * sqrt(1/4 + 1.5**2 / 5)`` for the intercept, the textbook values.)
+    """
+    if not isinstance(net, Network):
+        raise TypeError(f"net must be a tinyprop Network, got {type(net).__name__}")
+    if result is None:
+        if X is None or y is None:
+            raise TypeError("give the fitted data X and y, or result=<the SolveResult of solve(net, X, y)>")
+        work = net.copy(np.float64)
+        X64 = as_samples(X, "X", net.n_in, work.dtype)
+        y64 = as_targets(y, "y", X64.shape[0], net.n_out, work.dtype)
+        residuals = (work.predict(X64) - y64).ravel()
+        jacobian = work.jacobian(X64)
+    else:
+        if X is not None or y is not None:
+            raise TypeError("give either X and y or result, not both")
+        work = _network_at_solution(net, result)
+        residuals = np.asarray(result.residuals, dtype=np.float64)
+        jacobian = np.asarray(result.jacobian, dtype=np.float64)
+    require_finite(residuals, "the residual vector (network output - y)")
+    require_finite(jacobian, "the Jacobian at the network's parameters")
+    return _from_jacobian(work, jacobian, residuals)
+
+
+def _network_at_solution(net: Network, result: Any) -> Network:
+    """A float64 copy of ``net`` at ``result.theta``, after checking they belong together."""
+    try:
+        theta = np.asarray(result.theta, dtype=np.float64)
+        shapes = (np.shape(result.residuals), np.shape(result.jacobian))
+    except AttributeError:
+        raise TypeError(
+            f"result must be the SolveResult of solve(net, X, y), got {type(result).__name__}"
+        ) from None
+    if theta.shape != (net.n_params,) or shapes[1] != (shapes[0][0], net.n_params):
+        raise ValueError(
+            f"result does not belong to this network: it has {theta.size} parameters and a Jacobian of "
+            f"shape {shapes[1]}, the network has {net.n_params} parameters"
+        )
+    if not np.array_equal(net.get_vector(), theta.astype(net.dtype)):
+        raise ValueError(
+            "the network's parameters differ from result.theta; pass the network that solve fitted, unchanged since"
+        )
+    work = net.copy(np.float64)
+    work.set_vector(theta)
+    return work
+
+
+def _from_jacobian(work: Network, jacobian: np.ndarray, residuals: np.ndarray) -> ParameterUncertainty:
+    n_residuals, n_params = jacobian.shape
+    dof = n_residuals - n_params
+    if dof < 1:
+        raise ValueError(
+            f"no degrees of freedom for the residual variance: {n_residuals} residuals (samples x outputs) "
+            f"for {n_params} parameters; at least {n_params + 1} residuals are needed"
+        )
+    norms = np.linalg.norm(jacobian, axis=0)
+    inert = norms == 0  # parameters without any effect on the data
+    norms = np.where(inert, 1.0, norms)
+    _, sigma, Vt = np.linalg.svd(jacobian / norms, full_matrices=False)
+    V = Vt.T
+    labels = parameter_labels(work)
+    _require_full_rank(work, sigma, V, inert, labels, n_residuals)
+    rss = float(residuals @ residuals)
+    s2 = rss / dof
+    scaled = V / sigma / norms[:, None]  # D^-1 V diag(1/sigma): C = s^2 * scaled @ scaled.T
+    unscaled = scaled @ scaled.T  # (J^T J)^-1
+    diagonal = np.einsum("ij,ij->i", scaled, scaled)
+    root = np.sqrt(diagonal)
+    correlation = unscaled / root[:, None] / root[None, :]
+    np.fill_diagonal(correlation, 1.0)
+    return ParameterUncertainty(
+        theta=work.get_vector(),
+        labels=labels,
+        standard_errors=np.sqrt(s2 * diagonal),
+        covariance=s2 * unscaled,
+        correlation=correlation,
+        residual_sd=math.sqrt(s2),
+        residual_variance=s2,
+        rss=rss,
+        n_residuals=n_residuals,
+        n_params=n_params,
+        degrees_of_freedom=dof,
+        singular_values=sigma,
+        right_singular_vectors=V,
+        column_norms=norms,
+        condition_number=float(sigma[0] / sigma[-1]),
+        gradient_cosine=_gradient_cosine(jacobian, residuals, norms),
+        network=work,
+    )
+
+
+def _require_full_rank(
+    work: Network, sigma: np.ndarray, V: np.ndarray, inert: np.ndarray, labels: tuple[str, ...], n_residuals: int
+) -> None:
+    """Raise :class:`RankDeficientError` unless every ``sigma_i > max(N, p) eps sigma_max``."""
+    n_params = sigma.size
+    small = sigma <= max(n_residuals, n_params) * _EPS * sigma[0]
+    if not (small.any() or inert.any()):
+        return
+    rank = int(np.count_nonzero(~small))
+    # an exactly zero column makes the condition number infinite; its computed singular value need not be 0
+    condition = math.inf if inert.any() or sigma[-1] == 0 else float(sigma[0] / sigma[-1])
+    groups = tuple(dict.fromkeys(_involved(V[:, i], labels) for i in np.flatnonzero(small)))
+    listed = "; ".join(f"{{{', '.join(group)}}}" for group in groups[:_MAX_GROUPS])
+    if len(groups) > _MAX_GROUPS:
+        listed += f"; and {len(groups) - _MAX_GROUPS} more (see the error's .unidentifiable)"
+    raise RankDeficientError(
+        f"the Jacobian is rank-deficient: numerical rank {rank} of {n_params} parameters, condition number "
+        f"{condition:.3g} (column-scaled; rank-deficient above 1/(max(N, p) eps) = "
+        f"{1 / (max(n_residuals, n_params) * _EPS):.3g}). "
+        f"These parameters can change together without changing any output: {listed}. "
+        "Their covariance does not exist and no standard errors or intervals are given; remove the redundant "
+        "parameters (for example a duplicated hidden unit, or one that is saturated or inactive on all the data) "
+        f"or add data that separates them{_rescaling_hint(work)}",
+        condition_number=condition,
+        rank=rank,
+        n_params=n_params,
+        singular_values=sigma,
+        unidentifiable=groups,
+    )
+
+
+def _rescaling_hint(work: Network) -> str:
+    """A note when hidden units are (piecewise) linear, which makes J rank-deficient by construction.
+
+    For ``a = f(z)`` with ``f(c z) = c f(z)`` for ``c > 0`` (ReLU, LeakyReLU,
+    Identity), multiplying a hidden unit's incoming weights and bias by ``c``
+    and its outgoing weights by ``1/c`` leaves the network unchanged, so every
+    such unit adds a null direction to ``J`` (Euler's theorem on homogeneous
+    functions; Identity units, being linear, add more).
+    """
+    last_affine = max(i for i, layer in enumerate(work.layers) if isinstance(layer, Affine))
+    hidden = {type(layer).__name__ for layer in work.layers[:last_affine] if isinstance(layer, _HOMOGENEOUS)}
+    if not hidden:
+        return ""
+    return (
+        f". Note: this network has {', '.join(sorted(hidden))} hidden units; scaling such a unit's incoming "
+        "weights and bias by c > 0 and its outgoing weights by 1/c leaves the network unchanged, so each one "
+        "adds at least one null direction. Use a smooth activation (Tanh, Sigmoid, Softplus) when the uncertainty must be stated"
+    )
+
+
+def _involved(direction: np.ndarray, labels: tuple[str, ...]) -> tuple[str, ...]:
+    """Labels of the largest components (at least 10% of the largest) of a null direction."""
+    size = np.abs(direction)
+    order = np.argsort(-size, kind="stable")
+    keep = [i for i in order[:_MAX_NAMED] if size[i] >= 0.1 * size[order[0]]]
+    return tuple(labels[i] for i in sorted(keep))
+
+
+def _gradient_cosine(jacobian: np.ndarray, residuals: np.ndarray, norms: np.ndarray) -> float:
+    r_norm = float(np.linalg.norm(residuals))
+    if r_norm == 0.0:
+        return 0.0
+    return float(np.max(np.abs(jacobian.T @ residuals) / norms) / r_norm)
+
+
+# --------------------------------------------------------------------------- input sensitivities
+@dataclass(frozen=True, kw_only=True, eq=False)
+class SensitivityTable:
+    """Per-input summary of ``d output_k / d input_j`` over ``n_samples`` inputs.
+
+    Arrays have shape ``(n_out, n_in)``, in output units per input unit (the
+    derivative is taken through any fixed scaling layers, so the units are
+    those of the raw inputs and outputs). ``mean_abs``: mean of
+    ``|d output / d input|``; ``sd_abs``: its standard deviation over the
+    samples (population formula, ``ddof=0``: a description of this data set,
+    not an estimate); ``mean``: the signed mean (the direction of the effect).
+    """
+
+    input_names: tuple[str, ...]
+    output_names: tuple[str, ...]
+    n_samples: int
+    mean_abs: np.ndarray
+    sd_abs: np.ndarray
+    mean: np.ndarray
+
+    def __str__(self) -> str:
+        width = max(len("input"), *(len(name) for name in self.input_names))
+        lines = [f"input sensitivity d output / d input over {self.n_samples} samples (output units per input unit)"]
+        for k, output in enumerate(self.output_names):
+            lines.append(f"{output}:")
+            lines.append(f"  {'input':<{width}}  {'mean |d/dx|':>12}  {'sd |d/dx|':>12}  {'mean d/dx':>12}")
+            for j in np.argsort(-self.mean_abs[k], kind="stable"):
+                lines.append(
+                    f"  {self.input_names[j]:<{width}}  {self.mean_abs[k, j]:>12.4g}  "
+                    f"{self.sd_abs[k, j]:>12.4g}  {self.mean[k, j]:>+12.4g}"
+                )
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able: per output, per input the three statistics."""
+        return {
+            "n_samples": self.n_samples,
+            "outputs": {
+                output: {
+                    name: {
+                        "mean_abs": float(self.mean_abs[k, j]),
+                        "sd_abs": float(self.sd_abs[k, j]),
+                        "mean": float(self.mean[k, j]),
+                    }
+                    for j, name in enumerate(self.input_names)
+                }
+                for k, output in enumerate(self.output_names)
+            },
+        }
+
+
+def input_sensitivity(
+    net: Network,
+    X: Any,
+    *,
+    input_names: Sequence[str] | None = None,
+    output_names: Sequence[str] | None = None,
+) -> SensitivityTable:
+    """Which inputs drive the output: statistics of ``net.input_gradient(X)`` over the rows of ``X``.
+
+    ``input_names`` / ``output_names`` default to ``"input j"`` / ``"output k"``.
+
+    >>> import numpy as np, tinyprop as tp
+    >>> net = tp.Network([tp.Affine(2, 1)], init=None)
+    >>> net.layers[0].weight[:] = [[2.0, -0.5]]
+    >>> table = input_sensitivity(net, np.zeros((3, 2)), input_names=["voltage_V", "current_A"])
+    >>> table.mean_abs.tolist(), table.mean.tolist()
+    ([[2.0, 0.5]], [[2.0, -0.5]])
+    """
+    if not isinstance(net, Network):
+        raise TypeError(f"net must be a tinyprop Network, got {type(net).__name__}")
+    inputs = _names(input_names, "input_names", net.n_in, "input")
+    outputs = _names(output_names, "output_names", net.n_out, "output")
+    work = net.copy(np.float64)
+    G = work.input_gradient(as_samples(X, "X", net.n_in, work.dtype))
+    magnitude = np.abs(G)
+    return SensitivityTable(
+        input_names=inputs,
+        output_names=outputs,
+        n_samples=int(G.shape[0]),
+        mean_abs=magnitude.mean(axis=0),
+        sd_abs=magnitude.std(axis=0),
+        mean=G.mean(axis=0),
+    )
+
+
+def _names(names: Sequence[str] | None, what: str, count: int, default: str) -> tuple[str, ...]:
+    if names is None:
+        return tuple(f"{default} {i}" for i in range(count))
+    wrong = TypeError(f"{what} must be a sequence of {count} strings, got {names!r}")
+    if isinstance(names, str) or not isinstance(names, Iterable):
+        raise wrong
+    names = tuple(names)
+    if not all(isinstance(name, str) for name in names):
+        raise wrong
+    if len(names) != count:
+        raise ValueError(f"{what} must have {count} entries (one per network {default}), got {len(names)}")
+    return names
+
+
+# --------------------------------------------------------------------------- report
+def uncertainty_report(
+    net: Network,
+    X: Any,
+    y: Any,
+    *,
+    level: float = 0.95,
+    input_names: Sequence[str] | None = None,
+    output_names: Sequence[str] | None = None,
+) -> dict[str, Any]:
+    """Everything above for a fitted network, as a JSON-able dict (for reports and the command line).
+
+    Keys: ``"parameters"`` (:meth:`ParameterUncertainty.to_dict`, or
+    :meth:`RankDeficientError.to_dict` when the Jacobian is rank-deficient,
+    with ``"rank_deficient"`` telling which); ``"prediction_interval"``
+    (``None`` when rank-deficient, else the level and, per output, the mean
+    and largest prediction-interval half-width over the rows of ``X``);
+    ``"input_sensitivity"`` (:meth:`SensitivityTable.to_dict`). Only finite
+    floats, ints, strings, lists, dicts and ``None`` appear.
+    """
+    table = input_sensitivity(net, X, input_names=input_names, output_names=output_names)
+    try:
+        uncertainty = parameter_uncertainty(net, X, y)
+    except RankDeficientError as exc:
+        return {"parameters": exc.to_dict(), "prediction_interval": None, "input_sensitivity": table.to_dict()}
+    intervals = uncertainty.prediction_intervals(X, level=level)
+    half = intervals.half_width
+    return {
+        "parameters": uncertainty.to_dict(),
+        "prediction_interval": {
+            "level": intervals.level,
+            "t_quantile": intervals.t_quantile,
+            "half_width_on_data": {
+                output: {"mean": float(half[:, k].mean()), "max": float(half[:, k].max())}
+                for k, output in enumerate(table.output_names)
+            },
+        },
+        "input_sensitivity": table.to_dict(),
+    }
+
+
+def _max_off_diagonal(correlation: np.ndarray) -> float | None:
+    """Largest ``|correlation|`` between two different parameters (``None`` for one parameter)."""
+    if correlation.shape[0] < 2:
+        return None
+    off = np.abs(correlation[~np.eye(correlation.shape[0], dtype=bool)])
+    return float(off.max())
+
+
+def _json_float(value: float) -> float | None:
+    return value if math.isfinite(value) else None
