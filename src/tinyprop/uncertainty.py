@@ -65,8 +65,8 @@ All statistics are computed in float64 on a float64 copy of the network.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -216,9 +216,11 @@ class ParameterUncertainty:
     def prediction_intervals(self, X: Any, *, level: float = 0.95) -> PredictionIntervals:
         """Delta-method confidence and prediction intervals at new inputs ``X`` ``(m, n_in)``.
 
-        ``g^T C g`` is evaluated as ``s^2 ||diag(1/sigma) V^T D^-1 g||^2``,
-        which is never negative.
+        ``level`` is the confidence level, in (0, 1). ``g^T C g`` is evaluated
+        as ``s^2 ||diag(1/sigma) V^T D^-1 g||^2``, which is never negative.
         """
+        from scipy import stats  # imported on first use: scipy.stats is slow to import and only this needs it
+
         level = real_in_range(level, "level", low=0.0, high=1.0, low_open=True, high_open=True)
         X64 = as_samples(X, "X", self.network.n_in, self.network.dtype)
         out = self.network.predict(X64)
@@ -227,8 +229,6 @@ class ParameterUncertainty:
         mean_variance = self.residual_variance * np.einsum("ij,ij->i", B, B).reshape(out.shape)
         mean_se = np.sqrt(mean_variance)
         prediction_se = np.sqrt(self.residual_variance + mean_variance)
-        from scipy import stats  # here, not at import: importing tinyprop's core stays numpy-only
-
         t = float(stats.t.ppf(0.5 + level / 2, self.degrees_of_freedom))
         return PredictionIntervals(
             level=level,
