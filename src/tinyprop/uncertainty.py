@@ -445,7 +445,8 @@ def _rescaling_hint(work: Network) -> str:
     return (
         f". Note: this network has {', '.join(sorted(hidden))} hidden units; scaling such a unit's incoming "
         "weights and bias by c > 0 and its outgoing weights by 1/c leaves the network unchanged, so each one "
-        "adds at least one null direction. Use a smooth activation (Tanh, Sigmoid, Softplus) when the uncertainty must be stated"
+        "adds at least one null direction. Use a smooth activation (Tanh, Sigmoid, Softplus) when the "
+        "uncertainty must be stated"
     )
 
 
