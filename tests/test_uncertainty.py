@@ -316,3 +316,12 @@ def lre_table() -> str:
 
 if __name__ == "__main__":
     print(lre_table())
+
+
+def test_solve_result_exposes_the_uncertainty():
+    """SolveResult.uncertainty(net) is parameter_uncertainty(net, result=...)."""
+    problem = load_nist("Rat42")
+    net = build("Rat42", problem.start1)
+    result = tp.solve(net, problem.x, problem.y)
+    direct = tp.parameter_uncertainty(net, problem.x, problem.y)
+    np.testing.assert_allclose(result.uncertainty(net).standard_errors, direct.standard_errors, rtol=1e-10)

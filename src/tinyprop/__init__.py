@@ -26,6 +26,15 @@ from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
+from .uncertainty import (
+    ParameterUncertainty,
+    PredictionIntervals,
+    RankDeficientError,
+    SensitivityTable,
+    input_sensitivity,
+    parameter_uncertainty,
+    uncertainty_report,
+)
 from .train import EpochInfo, History, TrainingDiverged, TrainingResult, TrainingState, train
 from .workspace import Workspace
 
@@ -53,13 +62,17 @@ __all__ = [
     "Network",
     "Optimizer",
     "OptimizerState",
+    "ParameterUncertainty",
+    "PredictionIntervals",
     "RMSProp",
+    "RankDeficientError",
     "ReLU",
     "SGD",
     "Schedule",
+    "SensitivityTable",
     "Sigmoid",
-    "SolveResult",
     "Softplus",
+    "SolveResult",
     "SquaredError",
     "Standardize",
     "StepSchedule",
@@ -78,11 +91,14 @@ __all__ = [
     "export_c",
     "export_python",
     "fingerprint",
+    "input_sensitivity",
     "load",
     "load_model_file",
+    "parameter_uncertainty",
     "register_activation",
     "save",
     "solve",
     "train",
+    "uncertainty_report",
     "__version__",
 ]

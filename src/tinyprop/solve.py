@@ -44,6 +44,7 @@ from ._validate import as_samples, as_targets, positive_int
 from .losses import SquaredError
 from .network import Network
 from .schedules import real_in_range
+from .uncertainty import ParameterUncertainty, parameter_uncertainty
 
 __all__ = ["solve", "SolveResult", "METHODS"]
 
@@ -84,6 +85,10 @@ class SolveResult:
     iterations: int
     function_evaluations: int
     jacobian_evaluations: int
+
+    def uncertainty(self, net: Network) -> ParameterUncertainty:
+        """Standard errors and delta-method intervals at this solution: ``parameter_uncertainty(net, result=self)``."""
+        return parameter_uncertainty(net, result=self)
 
 
 def solve(
