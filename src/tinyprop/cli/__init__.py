@@ -1,0 +1,95 @@
+"""The ``tinyprop`` command (also ``python -m tinyprop``).
+
+Subcommands, one module each: ``demo``, ``train``, ``check``, ``inspect``,
+``export``, ``bench``. Every module has ``add_arguments(parser)`` and
+``run(args) -> int``; :func:`main` parses, dispatches and turns user mistakes
+and failures into one line on stderr:
+
+- exit status 0: done;
+- exit status 1: a file, the data or the computation failed (a missing or
+  malformed file, a non-numeric cell, a tampered model file, a failed
+  gradient check, diverged training);
+- exit status 2: the command line is wrong (an unknown option, a bad value, a
+  column name that is not in the file).
+
+No traceback is shown for these; one would mean a bug in tinyprop.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import NoReturn, Sequence
+
+from .. import __version__
+from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
+from ._common import USAGE, CommandError, describe_os_error
+
+__all__ = ["main"]
+
+COMMANDS = {
+    "demo": demo_cmd,
+    "train": train_cmd,
+    "check": check_cmd,
+    "inspect": inspect_cmd,
+    "export": export_cmd,
+    "bench": bench_cmd,
+}
+
+SHORT_HELP = f"""tinyprop {__version__}: verified multilayer perceptrons for controllers, instruments and test rigs
+
+Start here:   tinyprop demo        (the whole job on synthetic data in a few seconds)
+
+Commands:
+""" + "\n".join(f"  {name:<9}{module.HELP}" for name, module in COMMANDS.items()) + """
+
+'tinyprop <command> --help' shows a command's options. Documentation: docs/cli.md in the tinyprop source.
+"""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a mistake is reported in one line (no usage block) with exit status 2."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(USAGE, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+
+
+def build_parser() -> tuple[argparse.ArgumentParser, dict[str, argparse.ArgumentParser]]:
+    """The ``tinyprop`` parser and the parser of each subcommand."""
+    parser = _Parser(prog="tinyprop", description=SHORT_HELP.splitlines()[0],
+                     epilog="Start with 'tinyprop demo'.")
+    parser.add_argument("--version", action="version", version=f"tinyprop {__version__}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
+    subparsers = {}
+    for name, module in COMMANDS.items():
+        subparsers[name] = commands.add_parser(name, help=module.HELP, description=module.HELP,
+                                               epilog=getattr(module, "EPILOG", None),
+                                               formatter_class=argparse.RawDescriptionHelpFormatter)
+        module.add_arguments(subparsers[name])
+    return parser, subparsers
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``tinyprop`` command with ``argv`` (default ``sys.argv[1:]``); return the exit status."""
+    arguments = list(sys.argv[1:] if argv is None else argv)
+    if not arguments:
+        print(SHORT_HELP, end="")
+        return 0
+    parser, subparsers = build_parser()
+    args, unknown = parser.parse_known_args(arguments)
+    if args.command is None:
+        parser.error(f"unrecognized arguments: {' '.join(unknown)}" if unknown else "give a command, e.g. 'tinyprop demo'")
+    if unknown:
+        subparsers[args.command].error(f"unrecognized arguments: {' '.join(unknown)}")
+    prefix = f"tinyprop {args.command}: error:"
+    try:
+        return COMMANDS[args.command].run(args)
+    except CommandError as exc:
+        print(f"{prefix} {exc}", file=sys.stderr)
+        return exc.status
+    except OSError as exc:  # a file that could not be read or written, reported without a traceback
+        print(f"{prefix} {describe_os_error(exc)}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print(f"\ntinyprop {args.command}: interrupted", file=sys.stderr)
+        return 130

@@ -1,0 +1,80 @@
+"""argparse value types: each turns the text of one option into a value or names what is wrong."""
+
+from __future__ import annotations
+
+import argparse
+import math
+
+
+def positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive whole number, got {value}")
+    return value
+
+
+def seed(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, got {value}")
+    return value
+
+
+def positive_float(text: str) -> float:
+    value = _float(text)
+    if value <= 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+    return value
+
+
+def fraction(text: str) -> float:
+    """A number in ``[0, 1)``."""
+    value = _float(text)
+    if not 0.0 <= value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a fraction from 0 up to (not including) 1, got {text!r}")
+    return value
+
+
+def momentum(text: str) -> float:
+    value = _float(text)
+    if not 0.0 <= value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a momentum from 0 up to (not including) 1, got {text!r}")
+    return value
+
+
+def widths(text: str) -> tuple[int, ...]:
+    """Comma-separated hidden-layer widths, e.g. ``16,16``."""
+    parts = [part.strip() for part in text.split(",")]
+    try:
+        values = tuple(int(part) for part in parts)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected comma-separated positive whole numbers such as 16,16, got {text!r}"
+        ) from None
+    if any(v < 1 for v in values):
+        raise argparse.ArgumentTypeError(f"every hidden-layer width must be at least 1, got {text!r}")
+    return values
+
+
+def names(text: str) -> list[str]:
+    """Comma-separated column names; the option may also be repeated."""
+    parts = [part.strip() for part in text.split(",")]
+    if not all(parts):
+        raise argparse.ArgumentTypeError(f"expected comma-separated column names, got an empty name in {text!r}")
+    return parts
+
+
+def _float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
+    return value

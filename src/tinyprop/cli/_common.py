@@ -1,0 +1,163 @@
+"""Pieces every subcommand uses: the error type, model loading, JSON files, plots, progress lines."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import time
+from pathlib import Path
+from typing import Any, Callable, TextIO
+
+from ..io import ModelFile, load_model_file
+from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
+from ..train import EpochInfo
+
+USAGE = 2  # exit status: the command line is wrong
+FAILURE = 1  # exit status: a file, the data or the computation failed
+
+SAFETY = (
+    "tinyprop is not certified for safety functions; validating a network and any code generated from it "
+    "against the applicable functional-safety standards, local codes and qualified review is the user's "
+    "responsibility."
+)
+
+
+class CommandError(Exception):
+    """A user mistake or a failure, reported as one line on stderr with exit status ``status``."""
+
+    def __init__(self, message: str, status: int = FAILURE) -> None:
+        super().__init__(message)
+        self.status = status
+
+
+def describe_os_error(exc: OSError) -> str:
+    """``"cannot open 'x.csv': No such file or directory"`` rather than ``"[Errno 2] ..."``."""
+    if exc.filename is not None and exc.strerror:
+        return f"cannot open {os.fspath(exc.filename)!r}: {exc.strerror}"
+    return str(exc)
+
+
+def read_model(path: str) -> ModelFile:
+    """Load and verify a model file, turning every problem into a one-line :class:`CommandError`."""
+    if not Path(path).exists():
+        raise CommandError(f"model file {path!r} does not exist")
+    if Path(path).is_dir():
+        raise CommandError(f"{path!r} is a folder; give the path of a model file (.npz) written by tinyprop")
+    try:
+        return load_model_file(path)
+    except OSError as exc:
+        raise CommandError(describe_os_error(exc)) from None
+    except ValueError as exc:  # ModelFileError: unreadable, tampered or not a model file
+        raise CommandError(f"cannot use the model file: {exc}") from None
+
+
+def output_folder(path: str | os.PathLike[str]) -> Path:
+    """``path`` as a folder, created (with parents) if missing; refuse an existing file."""
+    folder = Path(path)
+    if folder.exists() and not folder.is_dir():
+        raise CommandError(f"output folder {os.fspath(folder)!r} is an existing file", USAGE)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise CommandError(f"cannot create the output folder: {describe_os_error(exc)}") from None
+    return folder
+
+
+def write_json(path: Path, document: dict[str, Any]) -> Path:
+    """Write ``document`` as indented UTF-8 JSON (strict: no NaN or infinity)."""
+    text = json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False)
+    path.write_text(text + "\n", encoding="utf-8")
+    return path
+
+
+def finite_or_none(value: float | None) -> float | None:
+    """JSON has no NaN or infinity: such values are written as ``null``."""
+    return value if value is not None and math.isfinite(value) else None
+
+
+def write_plots(
+    folder: Path,
+    history: Any,
+    actual: Any,
+    predicted: Any,
+    names: list[str],
+    title: str,
+    rows: str = "test rows",
+) -> tuple[list[Path], str | None]:
+    """Learning curves (when there is a per-epoch history) and the parity plot of ``actual`` vs ``predicted``.
+
+    ``rows`` says which rows ``actual`` and ``predicted`` belong to (for the title).
+    Returns the written paths and, when plots could not be drawn, a note saying why
+    and how to enable them. Plotting never makes the command fail.
+    """
+    written: list[Path] = []
+    try:
+        if history is not None:
+            written.append(
+                learning_curves(history.training, history.validation, folder / "learning_curves.png",
+                                title=f"{title}: loss per epoch", loss_name="mean squared error")
+            )
+        if actual is not None and len(actual):
+            written.append(parity_plot(actual, predicted, folder / "parity.png", names=names,
+                                       title=f"{title}: {rows}"))
+    except PlotsUnavailable:
+        return written, f"plots skipped: matplotlib is not installed (to enable plots: {PLOT_HINT})"
+    except ValueError as exc:
+        return written, f"plots skipped: {exc}"
+    return written, None
+
+
+class EpochProgress:
+    """The per-epoch callback of :func:`tinyprop.train.train` that prints progress on a stream.
+
+    On a terminal one line is rewritten in place (at most 10 times a second and
+    at the last epoch); elsewhere (a log file, a pipe) plain lines are printed
+    for the first epoch, every tenth of the run and the last epoch, with no
+    control characters.
+    """
+
+    def __init__(self, stream: TextIO = sys.stderr, clock: Callable[[], float] = time.monotonic) -> None:
+        self.stream = stream
+        self.clock = clock
+        self.terminal = _is_terminal(stream)
+        self.last_shown = -math.inf
+        self.open_line = False
+
+    def __call__(self, info: EpochInfo) -> None:
+        step = max(1, info.epochs // 10)
+        if self.terminal:
+            now = self.clock()
+            if now - self.last_shown < 0.1 and info.epoch < info.epochs:
+                return None
+            self.last_shown = now
+            self.stream.write("\r" + self.line(info) + "\033[K")
+            self.open_line = True
+        elif info.epoch == 1 or info.epoch % step == 0 or info.epoch == info.epochs:
+            self.stream.write(self.line(info) + "\n")
+        self.stream.flush()
+        return None
+
+    @staticmethod
+    def line(info: EpochInfo) -> str:
+        """``epoch 40/200  training loss 1.2e-05  validation loss 1.3e-05  elapsed 0.3 s  remaining ~1.2 s``."""
+        remaining = info.elapsed / info.epoch * (info.epochs - info.epoch)
+        text = f"epoch {info.epoch}/{info.epochs}  training loss {info.training_loss:.4g}"
+        if info.validation_loss is not None:
+            text += f"  validation loss {info.validation_loss:.4g}"
+        return text + f"  elapsed {info.elapsed:.1f} s  remaining ~{remaining:.1f} s"
+
+    def finish(self) -> None:
+        """End the rewritten line on a terminal."""
+        if self.open_line:
+            self.stream.write("\n")
+            self.stream.flush()
+            self.open_line = False
+
+
+def _is_terminal(stream: TextIO) -> bool:
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):
+        return False

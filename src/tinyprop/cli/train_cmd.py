@@ -1,0 +1,232 @@
+"""``tinyprop train``: fit a network to columns of a CSV file; write the model file and a JSON report."""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import os
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from ..csvdata import CsvError, CsvTable, read_csv
+from ..io import save
+from . import _args
+from ._common import USAGE, CommandError, EpochProgress, describe_os_error, output_folder, write_json, write_plots
+from ._fit import (
+    ACTIVATIONS,
+    architecture,
+    METHODS,
+    OPTIMIZERS,
+    SCHEDULES,
+    Dataset,
+    FitSettings,
+    build_network,
+    evaluate_all,
+    fit,
+    least_squares_uncertainty,
+    model_metadata,
+    report,
+    split_rows,
+)
+
+HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    defaults = FitSettings()
+    data = parser.add_argument_group("data")
+    data.add_argument("data", metavar="DATA.csv", help="CSV file with a header row of column names")
+    data.add_argument("--targets", type=_args.names, action="extend", required=True, metavar="NAMES",
+                      help="column(s) to predict, comma-separated (required)")
+    data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
+                      help="input columns, comma-separated (default: every column that is not a target)")
+    data.add_argument("--delimiter", default=",", help="field separator (default ',')")
+    data.add_argument("--validation-fraction", type=_args.fraction, default=defaults.validation_fraction,
+                      metavar="F", help=f"share of rows held out for validation (default {defaults.validation_fraction})")
+    data.add_argument("--test-fraction", type=_args.fraction, default=defaults.test_fraction,
+                      metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
+    network = parser.add_argument_group("network")
+    network.add_argument("--hidden", type=_args.widths, default=defaults.hidden, metavar="WIDTHS",
+                         help="hidden-layer widths, comma-separated (default 16,16)")
+    network.add_argument("--activation", choices=sorted(ACTIVATIONS), default=defaults.activation,
+                         help=f"hidden-layer activation (default {defaults.activation})")
+    network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
+                         help=f"number type of the network (default {defaults.dtype})")
+    fitting = parser.add_argument_group("fitting")
+    fitting.add_argument("--method", choices=METHODS, default=defaults.method,
+                         help="mini-batch gradient descent (default), or full-batch least squares by "
+                              "Levenberg-Marquardt or L-BFGS (small networks)")
+    fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS), default=defaults.optimizer,
+                         help=f"mini-batch optimizer (default {defaults.optimizer})")
+    fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
+                         help="step size (default: adam 0.001, rmsprop 0.001, sgd 0.01)")
+    fitting.add_argument("--schedule", choices=SCHEDULES, default=defaults.schedule,
+                         help="learning rate over the run: cosine (falls to 0 at the last epoch, the default) "
+                              "or constant")
+    fitting.add_argument("--momentum", type=_args.momentum, default=defaults.momentum,
+                         help="momentum of sgd (default 0)")
+    fitting.add_argument("--epochs", type=_args.positive_int, default=defaults.epochs,
+                         help=f"passes over the training rows (default {defaults.epochs})")
+    fitting.add_argument("--batch-size", type=_args.positive_int, default=defaults.batch_size, metavar="N",
+                         help=f"rows per update (default {defaults.batch_size})")
+    fitting.add_argument("--patience", type=_args.positive_int, metavar="EPOCHS",
+                         help="stop after this many epochs without a lower validation loss and keep the best "
+                              "weights (default: run all epochs)")
+    fitting.add_argument("--max-evaluations", type=_args.positive_int, default=defaults.max_evaluations,
+                         metavar="N", help=f"limit for the least-squares methods (default {defaults.max_evaluations})")
+    fitting.add_argument("--seed", type=_args.seed, default=defaults.seed,
+                         help=f"seed of the split, the initial weights and the shuffling (default {defaults.seed})")
+    output = parser.add_argument_group("output")
+    output.add_argument("--out", default="model.npz", metavar="MODEL.npz", help="model file to write (default model.npz)")
+    output.add_argument("--report", metavar="REPORT.json",
+                        help="JSON training report to write (default: next to the model, <model>.report.json)")
+    output.add_argument("--plots", metavar="DIR", help="also write learning_curves.png and parity.png into DIR "
+                                                       "(needs matplotlib)")
+    output.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+
+
+def run(args: argparse.Namespace) -> int:
+    settings = _settings(args)
+    model_path, report_path = _output_paths(args)
+    plots = output_folder(args.plots) if args.plots else None
+    started = time.perf_counter()
+    data = _dataset(args)
+    read_seconds = time.perf_counter() - started
+    split = split_rows(data.X.shape[0], settings)
+    net = build_network(data, split, settings)
+    print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
+          f"targets {', '.join(data.target_names)}")
+    sizes = split.sizes()
+    print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
+          f"{sizes['test']} test rows")
+    print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
+    print(f"fitting: {settings.describe_method()}", flush=True)
+    try:
+        outcome = fit(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
+    except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
+        raise CommandError(f"fitting failed: {exc}") from None
+    print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")
+    if outcome.summary.get("success") is False:
+        print("     the solver did not report convergence: raise --max-evaluations, or check the data and network size")
+    started = time.perf_counter()
+    metrics = evaluate_all(net, data, split)
+    extra: dict[str, Any] = {}
+    if settings.method != "mini-batch":
+        extra["uncertainty"] = least_squares_uncertainty(net, data, split)
+    evaluate_seconds = time.perf_counter() - started
+    _print_metrics(metrics)
+    if "uncertainty" in extra:
+        print(_uncertainty_line(extra["uncertainty"]))
+
+    started = time.perf_counter()
+    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}")
+    try:
+        digest = save(net, model_path, metadata=metadata)
+    except OSError as exc:
+        raise CommandError(f"cannot write the model file: {describe_os_error(exc)}") from None
+    save_seconds = time.perf_counter() - started
+    extra["model_file"] = os.fspath(model_path)
+    timings = {"read": read_seconds, "evaluate": evaluate_seconds, "save": save_seconds}
+    write_json(report_path, report("train", net, data, split, settings, outcome, metrics, timings, extra))
+    print(f"wrote {model_path} (fingerprint {digest})")
+    print(f"wrote {report_path}")
+    if plots is not None:
+        rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
+        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+                                    list(data.target_names), Path(args.data).name, label)
+        for path in written:
+            print(f"wrote {path}")
+        if note:
+            print(note, file=sys.stderr)
+    return 0
+
+
+def _settings(args: argparse.Namespace) -> FitSettings:
+    if args.validation_fraction + args.test_fraction >= 1.0:
+        raise CommandError(
+            f"--validation-fraction {args.validation_fraction} and --test-fraction {args.test_fraction} "
+            "leave no rows for training; their sum must be below 1", USAGE
+        )
+    if args.patience is not None and args.validation_fraction == 0:
+        raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
+    if args.momentum > 0 and args.optimizer != "sgd":
+        raise CommandError(f"--momentum applies to --optimizer sgd, not {args.optimizer}", USAGE)
+    if args.method != "mini-batch" and args.patience is not None:
+        raise CommandError(f"--patience applies to --method mini-batch, not {args.method}", USAGE)
+    return FitSettings(
+        hidden=args.hidden, activation=args.activation, method=args.method, optimizer=args.optimizer,
+        learning_rate=args.learning_rate, schedule=args.schedule, momentum=args.momentum, epochs=args.epochs, batch_size=args.batch_size,
+        patience=args.patience, seed=args.seed, validation_fraction=args.validation_fraction,
+        test_fraction=args.test_fraction, dtype=args.dtype, max_evaluations=args.max_evaluations,
+    )
+
+
+def _dataset(args: argparse.Namespace) -> Dataset:
+    try:
+        table = read_csv(args.data, delimiter=args.delimiter)
+    except OSError as exc:
+        raise CommandError(describe_os_error(exc)) from None
+    except ValueError as exc:  # CsvError, or a delimiter csv cannot use
+        raise CommandError(str(exc)) from None
+    targets, inputs = _columns(table, args.targets, args.inputs)
+    try:
+        X, Y = table.numeric(inputs), table.numeric(targets)
+    except CsvError as exc:
+        raise CommandError(str(exc)) from None
+    with open(args.data, "rb") as handle:
+        digest = hashlib.sha256(handle.read()).hexdigest()
+    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+
+
+def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
+    for option, names in (("--targets", targets), ("--inputs", inputs or [])):
+        repeated = sorted({n for n in names if names.count(n) > 1})
+        if repeated:
+            raise CommandError(f"{option} names {', '.join(map(repr, repeated))} more than once", USAGE)
+        try:
+            table.require_columns(names, option)
+        except CsvError as exc:
+            raise CommandError(str(exc), USAGE) from None
+    if inputs is None:
+        inputs = [name for name in table.columns if name not in targets]
+        if not inputs:
+            raise CommandError(f"{table.path}: every column is a target; no input column is left", USAGE)
+    both = [name for name in inputs if name in targets]
+    if both:
+        raise CommandError(f"{', '.join(map(repr, both))} cannot be both an input and a target", USAGE)
+    return targets, inputs
+
+
+def _output_paths(args: argparse.Namespace) -> tuple[Path, Path]:
+    model_path = Path(args.out)
+    report_path = Path(args.report) if args.report else model_path.with_name(model_path.stem + ".report.json")
+    for path in (model_path, report_path):
+        if path.is_dir():
+            raise CommandError(f"{os.fspath(path)!r} is a folder; give a file name", USAGE)
+        output_folder(path.parent)
+    return model_path, report_path
+
+
+def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
+    if "unavailable" in uncertainty:
+        return f"parameter uncertainty: not available ({uncertainty['unavailable']})"
+    parameters = uncertainty["parameters"]
+    if parameters["rank_deficient"]:
+        return (f"parameter uncertainty: not available, the Jacobian is rank-deficient (rank {parameters['rank']} of "
+                f"{parameters['n_params']}); see 'uncertainty' in the report")
+    interval = uncertainty["prediction_interval"]
+    widths = ", ".join(f"{name} +-{w['mean']:.4g}" for name, w in interval["half_width_on_data"].items())
+    return (f"parameter uncertainty: residual sd {parameters['residual_sd']:.4g}, condition number "
+            f"{parameters['condition_number']:.2g}; {100 * interval['level']:g}% prediction interval on the training "
+            f"rows {widths} (per-parameter standard errors and input sensitivities in the report)")
+
+
+def _print_metrics(metrics: dict[str, Any]) -> None:
+    for part in ("training", "validation", "test"):
+        result = metrics[part]
+        if result is None:
+            continue
+        values = ", ".join(f"{name} {m['rmse']:.4g}" for name, m in result["targets"].items())
+        print(f"{part} RMSE ({result['rows']} rows): {values}")
