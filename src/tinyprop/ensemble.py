@@ -1,0 +1,420 @@
+"""Ensembles: several networks with the same inputs and outputs, averaged.
+
+For members ``f_1 .. f_M`` and an input ``x``::
+
+    mean(x)   = (f_1(x) + f_2(x) + ... + f_M(x)) / M                  (summed in member order)
+    spread(x) = sqrt(((f_1(x) - mean(x))**2 + ... + (f_M(x) - mean(x))**2) / M)
+
+``spread`` is the standard deviation of the members' outputs with divisor
+``M`` (the spread of the equally weighted set of members itself); multiply by
+``sqrt(M / (M - 1))`` for the sample standard deviation. It measures how much
+networks trained alike disagree, not the noise in the targets.
+
+An ensemble is saved as one archive (:mod:`tinyprop.archive`): every member's
+model file (:func:`tinyprop.io.save`, ``docs/model-file.md``) with its arrays
+renamed ``member<k>/<name>`` and its manifest in the list ``"members"``; each
+member is verified on loading exactly as :func:`tinyprop.io.load_model_file`
+verifies a model file. ``docs/sweeps.md`` gives the layout.
+
+Exported inference code computes the mean: every member is exported with
+:func:`tinyprop.export.export_c` / :func:`tinyprop.export.export_python` under
+its own name, and a small generated wrapper adds the members' outputs in
+member order and divides by ``M``, as :meth:`Ensemble.predict` does.
+The networks are not merged into one: the mean of networks with a shared
+input layer is itself one network only for a single hidden layer, so the
+wrapper is the general form.
+
+Not certified for safety functions: validation against the applicable
+functional-safety standards, local codes and qualified review is the user's
+responsibility.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import sys
+import tempfile
+import textwrap
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ._validate import as_samples
+from .archive import ArchiveError, check_json, read_archive, write_archive
+from .export import agreement_bound, export_c, export_python
+from .export._header import CAUTION
+from .export._text import check_name, output_directory, write_source
+from .io import ModelFileError, fingerprint, load_model_file, save
+from .network import Network
+
+__all__ = ["Ensemble"]
+
+ENSEMBLE_FORMAT = "tinyprop-ensemble"
+ENSEMBLE_FORMAT_VERSION = 1
+FINGERPRINT_FORMAT = "tinyprop-ensemble-fingerprint"
+FINGERPRINT_VERSION = 1
+_MANIFEST_KEYS = ("format", "format_version", "tinyprop_version", "n_members", "fingerprint", "members", "metadata")
+_CTYPES = {"float32": "float", "float64": "double"}
+_WIDTH = 86
+
+
+class Ensemble:
+    """The mean and spread of several networks (see the module docstring for the formulas).
+
+    ``networks``: one or more :class:`~tinyprop.network.Network` with equal
+    ``n_in``, ``n_out`` and dtype; the ensemble keeps copies, so later changes
+    to them do not reach it. ``metadata``: a dict of JSON values kept with the
+    ensemble and saved in its file.
+
+    >>> import numpy as np, tinyprop as tp
+    >>> members = [tp.Network([tp.Affine(1, 1)], init=None) for _ in range(2)]
+    >>> members[0].set_vector([1.0, 0.0]); members[1].set_vector([3.0, 0.0])
+    >>> mean, spread = Ensemble(members).predict_with_spread([[2.0]])
+    >>> float(mean[0, 0]), float(spread[0, 0])  # outputs 2 and 6
+    (4.0, 2.0)
+    """
+
+    def __init__(self, networks: Sequence[Network], *, metadata: Mapping[str, Any] | None = None) -> None:
+        if isinstance(networks, Network) or not isinstance(networks, Sequence):
+            raise TypeError(f"networks must be a list of tinyprop Networks, got {type(networks).__name__}")
+        if len(networks) == 0:
+            raise ValueError("an ensemble needs at least one network, got an empty list")
+        for index, net in enumerate(networks):
+            if not isinstance(net, Network):
+                raise TypeError(f"networks[{index}] must be a tinyprop Network, got {type(net).__name__}")
+        first = networks[0]
+        for index, net in enumerate(networks[1:], 1):
+            if (net.n_in, net.n_out, net.dtype) != (first.n_in, first.n_out, first.dtype):
+                raise ValueError(
+                    f"every member must have the inputs, outputs and dtype of networks[0] ({first.n_in} -> "
+                    f"{first.n_out}, {first.dtype}); networks[{index}] has {net.n_in} -> {net.n_out}, {net.dtype}"
+                )
+        if metadata is not None and not isinstance(metadata, Mapping):
+            raise TypeError(f"metadata must be a dict of JSON values or None, got {type(metadata).__name__}")
+        try:
+            check_json(dict(metadata or {}), "metadata")
+        except ArchiveError as exc:
+            raise ValueError(str(exc)) from None
+        self.metadata: dict[str, Any] = json.loads(json.dumps(dict(metadata or {})))  # a copy
+        self.members: tuple[Network, ...] = tuple(net.copy() for net in networks)
+
+    @property
+    def n_members(self) -> int:
+        """``M``, the number of member networks."""
+        return len(self.members)
+
+    @property
+    def n_in(self) -> int:
+        """Inputs per sample."""
+        return self.members[0].n_in
+
+    @property
+    def n_out(self) -> int:
+        """Outputs per sample."""
+        return self.members[0].n_out
+
+    @property
+    def dtype(self) -> np.dtype:
+        """The members' dtype; predictions are in it."""
+        return self.members[0].dtype
+
+    def __repr__(self) -> str:
+        return f"Ensemble({self.n_members} members, {self.n_in} -> {self.n_out}, {self.dtype.name})"
+
+    # ------------------------------------------------------------ prediction
+    def member_predictions(self, X: Any) -> np.ndarray:
+        """Every member's output: an array ``(M, n, n_out)``, ``[k]`` from member ``k``."""
+        X = as_samples(X, "X", self.n_in, self.dtype)
+        return np.stack([net.predict(X) for net in self.members])
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The mean of the members' outputs, ``(n, n_out)``, summed in member order then divided by ``M``."""
+        return self.predict_with_spread(X)[0]
+
+    def predict_with_spread(self, X: Any) -> tuple[np.ndarray, np.ndarray]:
+        """``(mean, spread)``, each ``(n, n_out)``; spread is the standard deviation with divisor ``M``."""
+        outputs = self.member_predictions(X)
+        total = outputs[0].copy()
+        for output in outputs[1:]:
+            total += output
+        mean = total / self.n_members
+        deviation = outputs - mean
+        spread = np.sqrt(np.sum(deviation * deviation, axis=0) / self.n_members)
+        return mean, spread
+
+    def agreement_bound(self, X: Any, *, dtype: Any = None, function_ulps: float = 4.0) -> np.ndarray:
+        """Bound on ``|mean_a - mean_b|`` for two evaluations of the mean at ``X`` in ``dtype``.
+
+        With ``b_k`` the bound of member ``k``
+        (:func:`tinyprop.export.agreement_bound`), ``y_k`` its output, ``u``
+        the unit roundoff of ``dtype`` and ``gamma = (M-1) u / (1 - (M-1) u)``
+        (the ``M - 1`` rounded additions of a sum of ``M`` terms, Higham,
+        *Accuracy and Stability of Numerical Algorithms*, 2nd ed., section 3.1)::
+
+            (sum b_k + 2 gamma sum (|y_k| + b_k)) / M + 2 u (|mean| + sum b_k / M)
+
+        plus one smallest subnormal per rounding, times 1.01 for second-order
+        terms. This is the tolerance for comparing exported code with
+        :meth:`predict` of ``Ensemble([m.copy(dtype) for m in members])``.
+        """
+        dtype = np.dtype(self.dtype if dtype is None else dtype)
+        members = [net.copy(dtype=dtype) for net in self.members]
+        X = as_samples(X, "X", self.n_in, dtype)
+        bounds = np.stack([agreement_bound(net, X, dtype=dtype, function_ulps=function_ulps) for net in members])
+        outputs = np.abs(np.stack([net.predict(X) for net in members]).astype(np.float64))
+        u = float(np.finfo(dtype).eps) / 2
+        tiny = float(np.finfo(dtype).smallest_subnormal)
+        m = self.n_members
+        gamma = (m - 1) * u / (1 - (m - 1) * u)
+        mean = np.abs(np.sum(outputs, axis=0)) / m
+        summed = bounds.sum(axis=0)
+        bound = (summed + 2 * gamma * (outputs + bounds).sum(axis=0)) / m + 2 * u * (mean + summed / m)
+        return 1.01 * (bound + 2 * (m + 1) * tiny)
+
+    # ------------------------------------------------------------ identity and files
+    def fingerprint(self) -> str:
+        """SHA-256 hex digest of ``{"format", "version", "members": [member fingerprints in order]}``.
+
+        The canonical JSON (sorted keys, no spaces, ASCII) of
+        ``{"format": "tinyprop-ensemble-fingerprint", "version": 1, "members": [...]}``
+        with each member's :func:`tinyprop.io.fingerprint`. Metadata is not included.
+        """
+        description = {"format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION,
+                       "members": [fingerprint(net) for net in self.members]}
+        text = json.dumps(description, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+        return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+    def save(self, path: str | os.PathLike[str]) -> str:
+        """Write the ensemble (members and metadata) to one file, atomically; return its fingerprint.
+
+        Every member goes through :func:`tinyprop.io.save` (same checks, same
+        :class:`~tinyprop.io.ModelFileError`); the file is written by
+        :func:`tinyprop.archive.write_archive`, so a failure leaves an earlier
+        file at ``path`` as it was.
+        """
+        arrays: dict[str, np.ndarray] = {}
+        manifests = []
+        with tempfile.TemporaryDirectory(prefix="tinyprop-ensemble-") as scratch:
+            member_path = Path(scratch) / "member.npz"
+            for index, net in enumerate(self.members):
+                save(net, member_path)
+                member_arrays, manifest = read_archive(member_path)
+                arrays.update({f"member{index}/{name}": array for name, array in member_arrays.items()})
+                manifests.append(manifest)
+        digest = self.fingerprint()
+        manifest = {
+            "format": ENSEMBLE_FORMAT,
+            "format_version": ENSEMBLE_FORMAT_VERSION,
+            "tinyprop_version": manifests[0]["tinyprop_version"],
+            "n_members": self.n_members,
+            "fingerprint": digest,
+            "members": manifests,
+            "metadata": self.metadata,
+        }
+        try:
+            write_archive(path, arrays, manifest)
+        except ModelFileError:
+            raise
+        except ArchiveError as exc:
+            raise ModelFileError(str(exc)) from None
+        return digest
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> "Ensemble":
+        """Read an ensemble file, verify every member and the ensemble fingerprint, rebuild it.
+
+        Raises :class:`~tinyprop.io.ModelFileError` naming the file and what is
+        wrong, or ``OSError`` if it cannot be read.
+        """
+        try:
+            arrays, manifest = read_archive(path)
+            return cls._from_parts(arrays, manifest)
+        except ArchiveError as exc:  # ModelFileError included
+            raise ModelFileError(f"{os.fspath(path)}: {exc}") from None
+
+    @classmethod
+    def _from_parts(cls, arrays: dict[str, np.ndarray], manifest: dict[str, Any]) -> "Ensemble":
+        if sorted(manifest) != sorted(_MANIFEST_KEYS):
+            raise ModelFileError(f"manifest fields must be exactly {list(_MANIFEST_KEYS)}, found {sorted(manifest)}")
+        if manifest["format"] != ENSEMBLE_FORMAT or manifest["format_version"] != ENSEMBLE_FORMAT_VERSION:
+            raise ModelFileError(
+                f"not a version-{ENSEMBLE_FORMAT_VERSION} {ENSEMBLE_FORMAT} file: format {manifest['format']!r}, "
+                f"format_version {manifest['format_version']!r}"
+            )
+        members, count = manifest["members"], manifest["n_members"]
+        if not isinstance(members, list) or not members or count != len(members) or isinstance(count, bool):
+            raise ModelFileError(f"'n_members' ({count!r}) must equal the length of a non-empty 'members' list")
+        if not all(isinstance(member, dict) for member in members):
+            raise ModelFileError("every entry of 'members' must be a model-file manifest (a JSON object)")
+        if not isinstance(manifest["metadata"], dict):
+            raise ModelFileError(f"'metadata' must be an object, found {type(manifest['metadata']).__name__}")
+        grouped: list[dict[str, np.ndarray]] = [{} for _ in members]
+        for name, array in arrays.items():
+            head, _, rest = name.partition("/")
+            index = head[len("member"):]
+            if not head.startswith("member") or not index.isdigit() or str(int(index)) != index or int(index) >= count:
+                raise ModelFileError(f"array {name!r} belongs to no member (names are member<k>/..., k < {count})")
+            grouped[int(index)][rest] = array
+        networks = []
+        with tempfile.TemporaryDirectory(prefix="tinyprop-ensemble-") as scratch:
+            member_path = Path(scratch) / "member.npz"
+            for index, (member_arrays, member_manifest) in enumerate(zip(grouped, members)):
+                try:
+                    write_archive(member_path, member_arrays, member_manifest)
+                    networks.append(load_model_file(member_path).network)
+                except ArchiveError as exc:
+                    message = str(exc).replace(str(member_path), f"member {index}")
+                    raise ModelFileError(f"member {index}: {message}") from None
+        ensemble = cls(networks, metadata=manifest["metadata"])
+        if ensemble.fingerprint() != manifest["fingerprint"]:
+            raise ModelFileError(
+                f"ensemble fingerprint mismatch: the manifest lists {manifest['fingerprint']!r}, the members give "
+                f"{ensemble.fingerprint()}; members were reordered, added or removed after saving"
+            )
+        return ensemble
+
+    # ------------------------------------------------------------ inference code
+    def export_python(
+        self, path: str | os.PathLike[str], *, name: str = "ensemble", metadata: Mapping[str, Any] | None = None
+    ) -> Path:
+        """Write the Python package ``<path>/<name>/`` and return its folder.
+
+        ``member<k>.py`` is :func:`~tinyprop.export.export_python` of member
+        ``k`` (``metadata``, the exporters' input/output names and units, goes
+        into each); ``__init__.py`` defines ``predict(x)``, the mean of the
+        members' ``predict`` in member order, in Python floats, and the
+        constants ``FINGERPRINT`` (:meth:`fingerprint`), ``MEMBER_FINGERPRINTS``,
+        ``N_INPUTS``, ``N_OUTPUTS``, ``N_MEMBERS``. Standard library only;
+        ``from <name> import predict`` with ``<path>`` on ``sys.path``.
+        """
+        name = check_name(name)
+        if name in sys.stdlib_module_names:
+            raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
+        package = output_directory(path) / name
+        package.mkdir(exist_ok=True)
+        for index, net in enumerate(self.members):
+            export_python(net, package, name=f"member{index}", metadata=metadata)
+        m = self.n_members
+        comment = self._header_lines(
+            f"{name}: the mean of {m} neural networks (an ensemble) in plain Python, generated by tinyprop",
+            [f"member{k}.py" for k in range(m)],
+            ["Interface:", f"  from {name} import predict",
+             f"  y = predict(x)  # x: N_INPUTS = {self.n_in} numbers; y: a list of N_OUTPUTS = {self.n_out} floats",
+             "Arithmetic: Python float (IEEE 754 binary64): y[k] = (0.0 + y_0[k] + ... + y_M-1[k]) / M,",
+             "members in order. Needs only the standard library (math)."],
+        )
+        member_fingerprints = "".join(f"\n    {fingerprint(net)!r}," for net in self.members)
+        lines = [f"# {line}".rstrip() for line in comment] + [
+            '"""The mean of the member networks\' outputs: call predict(x). See the comment above."""',
+            "",
+            *[f"from .member{k} import predict as _predict_{k}" for k in range(m)],
+            "",
+            f"FINGERPRINT = {self.fingerprint()!r}",
+            f"MEMBER_FINGERPRINTS = ({member_fingerprints}\n)",
+            f"TINYPROP_VERSION = {_version()!r}",
+            f"N_INPUTS = {self.n_in}",
+            f"N_OUTPUTS = {self.n_out}",
+            f"N_MEMBERS = {m}",
+            "_MEMBERS = (" + ", ".join(f"_predict_{k}" for k in range(m)) + ",)",
+            "",
+            "",
+            'def predict(x: "list[float]") -> "list[float]":',
+            '    """The mean of the members\' outputs for one sample x (N_INPUTS numbers), as N_OUTPUTS floats."""',
+            "    total = [0.0] * N_OUTPUTS",
+            "    for member in _MEMBERS:",
+            "        for k, value in enumerate(member(x)):",
+            "            total[k] += value",
+            "    return [value / N_MEMBERS for value in total]",
+        ]
+        write_source(package, "__init__.py", "\n".join(lines) + "\n")
+        return package
+
+    def export_c(
+        self,
+        path: str | os.PathLike[str],
+        *,
+        name: str = "ensemble",
+        dtype: Any = "float32",
+        metadata: Mapping[str, Any] | None = None,
+        literals: str = "decimal",
+    ) -> tuple[Path, ...]:
+        """Write C99 code for the mean into the existing directory ``path``; return the files written.
+
+        Member ``k`` becomes ``<name>_member<k>.h/.c`` through
+        :func:`~tinyprop.export.export_c` (with ``dtype``, ``metadata`` and
+        ``literals``); ``<name>.h`` declares ``void <name>_predict(const T *x, T *y)``
+        and ``<name>.c`` calls the members in order, adds their outputs and
+        divides by ``M`` in ``T`` (``float`` or ``double``). Compile
+        ``<name>.c`` with the member sources. Returns the wrapper's header and
+        source, then each member's header and source.
+        """
+        name = check_name(name)
+        if name.startswith("_"):
+            raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
+        check_name(f"{name}_member{self.n_members - 1}")  # the longest member name must be a valid identifier too
+        try:
+            kind = np.dtype(dtype).name
+        except TypeError:
+            kind = None
+        if kind not in _CTYPES:
+            raise TypeError(f"dtype must be 'float32' or 'float64', got {dtype!r}")
+        directory = output_directory(path)
+        written: list[Path] = []
+        for index, net in enumerate(self.members):
+            written += export_c(net, directory, name=f"{name}_member{index}", dtype=kind, metadata=metadata,
+                                literals=literals)
+        ctype, m, macro = _CTYPES[kind], self.n_members, name.upper()
+        members = [f"{name}_member{k}" for k in range(m)]
+        comment = self._header_lines(
+            f"{name}.h / {name}.c: the mean of {m} neural networks (an ensemble) in C99, generated by tinyprop",
+            [f"{member}.c / {member}.h" for member in members],
+            [f"Interface (declared in {name}.h):", f"  void {name}_predict(const {ctype} *x, {ctype} *y);",
+             f"  x holds {macro}_N_INPUTS = {self.n_in} values, y receives {macro}_N_OUTPUTS = {self.n_out}, "
+             "the mean of the members' outputs;",
+             "  x and y may be the same array.",
+             f"Arithmetic: {ctype} throughout: y[k] = (0 + y_0[k] + ... + y_M-1[k]) / M, members in order.",
+             f"Build: compile {name}.c together with the member sources listed above."],
+        )
+        block = ["/*"] + [f" * {line}".rstrip() for line in comment] + [" */"]
+        signature = f"void {name}_predict(const {ctype} *x, {ctype} *y)"
+        header = block + [
+            "", f"#ifndef {macro}_H", f"#define {macro}_H", "",
+            f"#define {macro}_N_INPUTS {self.n_in}", f"#define {macro}_N_OUTPUTS {self.n_out}",
+            f"#define {macro}_N_MEMBERS {m}", f'#define {macro}_FINGERPRINT "{self.fingerprint()}"', "",
+            "#ifdef __cplusplus", 'extern "C" {', "#endif", "", f"{signature};", "",
+            "#ifdef __cplusplus", "}", "#endif", "", f"#endif /* {macro}_H */",
+        ]
+        suffix = "f" if ctype == "float" else ""
+        body = [f"    {ctype} out[{self.n_out}];", f"    {ctype} total[{self.n_out}];", "    int k;", "",
+                f"    for (k = 0; k < {self.n_out}; ++k) {{", f"        total[k] = 0.0{suffix};", "    }"]
+        for member in members:
+            body += ["", f"    {member}_predict(x, out);", f"    for (k = 0; k < {self.n_out}; ++k) {{",
+                     "        total[k] += out[k];", "    }"]
+        body += ["", "    /* every member has read x, so y may now be written even if it is x */",
+                 f"    for (k = 0; k < {self.n_out}; ++k) {{", f"        y[k] = total[k] / {m}.0{suffix};", "    }"]
+        source = block + ["", f'#include "{name}.h"', *[f'#include "{member}.h"' for member in members], "",
+                          signature, "{", *body, "}"]
+        paths = (write_source(directory, f"{name}.h", "\n".join(header) + "\n"),
+                 write_source(directory, f"{name}.c", "\n".join(source) + "\n"))
+        return paths + tuple(written)
+
+    def _header_lines(self, title: str, files: list[str], interface: list[str]) -> list[str]:
+        """The wrapper's explanatory comment (plain ASCII built from checked names and hex digests)."""
+        lines = [title, "", f"Generated by tinyprop {_version()}. Do not edit; regenerate it from the ensemble.",
+                 f"Ensemble fingerprint: {self.fingerprint()}",
+                 f"  (Ensemble.fingerprint of the {self.dtype.name} ensemble this code was generated from)",
+                 f"Members, averaged in this order (M = {self.n_members}); each file's header lists its",
+                 "inputs, outputs, layers and model fingerprint:"]
+        lines += [f"  {file}" for file in files]
+        lines += ["", *interface, ""] + textwrap.wrap(CAUTION, _WIDTH)
+        return lines
+
+
+def _version() -> str:
+    from . import __version__  # imported here: the package imports this module while it initialises
+
+    return __version__
