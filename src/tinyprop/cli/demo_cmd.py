@@ -33,7 +33,7 @@ HELP = "the whole job on a synthetic battery state-of-charge scenario: check, tr
 N_ROWS = 2000
 DATA_SEED = 0
 NAME = "battery_soc"
-CHECK_ROWS = 16
+CHECK_ROWS = 16  # training rows the gradient is checked on
 DEMO_SETTINGS = FitSettings(hidden=(16, 16), activation="tanh", optimizer="adam", learning_rate=0.01,
                             schedule="cosine", epochs=150, batch_size=32, seed=0, validation_fraction=0.15, test_fraction=0.15)
 UNITS = {"voltage_V": "V", "current_A": "A (positive = discharge)", "temperature_C": "degC", "soc": "fraction"}
@@ -85,11 +85,28 @@ def run(args: argparse.Namespace) -> int:
                      f"largest error {test['max_abs_error']:.4f}, on {sizes['test']} synthetic test rows")
 
     clock = time.perf_counter()
-    files, agreement = _write_files(out, net, data, split, metrics, outcome, gradient, timings)
+    files = _save_and_export(out, net, data)
+    agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
+    files["report"] = [out / "report.json"]
+    plots, plot_note = write_plots(out, outcome.history, data.Y[split.test], net.predict(data.X[split.test]),
+                                   [BATTERY_TARGET], "SYNTHETIC battery demo")
+    if plots:
+        files["plots"] = plots
     timings["write"] = time.perf_counter() - clock
+    extra = {
+        "model_file": os.fspath(files["model"][0]),
+        "gradient_check": {"passed": gradient.passed, "max_rel_error": gradient.max_rel_error,
+                           "tolerance": gradient.tolerance, "rows": int(rows.size), "reference": gradient.reference},
+        "exports": {"c": [os.fspath(p) for p in files["C code"]], "python": os.fspath(files["Python code"][0]),
+                    "python_agreement": agreement},
+    }
+    write_json(files["report"][0], report("demo", net, data, split, DEMO_SETTINGS, outcome, metrics, timings, extra))
+
     _step(6, "files", f"written to {out}{os.sep}")
     for label, paths in files.items():
         print(f"   {label:<13}{', '.join(os.fspath(p) for p in paths)}")
+    if plot_note:
+        print(f"   {plot_note}")
     print(f"   (the exported Python gives the network's outputs on the {agreement['rows']} test rows to within "
           f"the rounding bound; largest difference {agreement['max_abs_difference']:.1e})")
     model = files["model"][0]
@@ -106,45 +123,21 @@ def _step(number: int, label: str, text: str, flush: bool = False) -> None:
     print(f"{number}/6 {label:<9}{text}", flush=flush)
 
 
-def _write_files(
-    out: Path,
-    net: Network,
-    data: Dataset,
-    split: Any,
-    metrics: dict[str, Any],
-    outcome: Any,
-    gradient: Any,
-    timings: dict[str, float],
-) -> tuple[dict[str, list[Path]], dict[str, Any]]:
-    """Model, exports, data, report and plots; returns the paths by label and the export agreement check."""
+def _save_and_export(out: Path, net: Network, data: Dataset) -> dict[str, list[Path]]:
+    """The model file (with names, units and a description), C and Python code, and the data as CSV."""
     inputs = [{"name": name, "unit": UNITS[name]} for name in BATTERY_COLUMNS]
     outputs = [{"name": BATTERY_TARGET, "unit": UNITS[BATTERY_TARGET]}]
     description = f"tinyprop demo: battery state of charge. {SYNTHETIC}."
     metadata = {**model_metadata(data, DEMO_SETTINGS, description), "inputs": inputs, "outputs": outputs}
     export_metadata = {"inputs": inputs, "outputs": outputs, "description": description}
-
-    files: dict[str, list[Path]] = {"model": [out / f"{NAME}.npz"]}
-    save(net, files["model"][0], metadata=metadata)
-    files["C code"] = list(export_c(net, output_folder(out / "c"), name=NAME, metadata=export_metadata))
-    files["Python code"] = [export_python(net, output_folder(out / "python"), name=NAME, metadata=export_metadata)]
-    agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
-    files["data (CSV)"] = [write_battery_csv(out / "battery_synthetic.csv", N_ROWS, seed=DATA_SEED)]
-    files["report"] = [out / "report.json"]
-    extra = {
-        "model_file": os.fspath(files["model"][0]),
-        "gradient_check": {"passed": gradient.passed, "max_rel_error": gradient.max_rel_error,
-                           "tolerance": gradient.tolerance, "rows": CHECK_ROWS, "reference": gradient.reference},
-        "exports": {"c": [os.fspath(p) for p in files["C code"]], "python": os.fspath(files["Python code"][0]),
-                    "python_agreement": agreement},
+    model = out / f"{NAME}.npz"
+    save(net, model, metadata=metadata)
+    return {
+        "model": [model],
+        "C code": list(export_c(net, output_folder(out / "c"), name=NAME, metadata=export_metadata)),
+        "Python code": [export_python(net, output_folder(out / "python"), name=NAME, metadata=export_metadata)],
+        "data (CSV)": [write_battery_csv(out / "battery_synthetic.csv", N_ROWS, seed=DATA_SEED)],
     }
-    write_json(files["report"][0], report("demo", net, data, split, DEMO_SETTINGS, outcome, metrics, timings, extra))
-    plots, note = write_plots(out, outcome.history, data.Y[split.test], net.predict(data.X[split.test]),
-                              [BATTERY_TARGET], "SYNTHETIC battery demo")
-    if plots:
-        files["plots"] = plots
-    if note:
-        print(note)
-    return files, agreement
 
 
 def _check_python_export(path: Path, net: Network, X: np.ndarray) -> dict[str, Any]:

@@ -200,13 +200,13 @@ def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> t
 
 
 def _output_paths(args: argparse.Namespace) -> tuple[Path, Path]:
-    model_path = Path(args.out)
-    report_path = Path(args.report) if args.report else model_path.with_name(model_path.stem + ".report.json")
-    for path in (model_path, report_path):
-        if path.is_dir():
+    paths = [Path(args.out)] + ([Path(args.report)] if args.report else [])
+    for path in paths:
+        if path.is_dir() or not path.name:
             raise CommandError(f"{os.fspath(path)!r} is a folder; give a file name", USAGE)
         output_folder(path.parent)
-    return model_path, report_path
+    model_path = paths[0]
+    return model_path, paths[1] if args.report else model_path.with_name(model_path.stem + ".report.json")
 
 
 def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
