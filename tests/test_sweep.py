@@ -103,6 +103,12 @@ def test_table_rows(sequential):
             assert record.wall_time > 0 and record.epochs_run >= 1 and record.model_file is None
 
 
+def test_column_targets_are_accepted_like_flat_ones(sequential):
+    result = sweep(QUICK, SETTINGS[:1], X, Y, validation=(VALIDATION[0], VALIDATION[1][:, None]),
+                   test=(TEST[0], TEST[1][:, None]))
+    assert without_time(result.records) == without_time(sequential.records[:1])
+
+
 def test_divergent_setting_is_recorded_and_the_others_complete(sequential):
     failed = sequential.records[1]
     assert failed.status == "failed" and sequential.networks[1] is None
@@ -318,7 +324,8 @@ class FakeClient:
         ({"loss": "mse"}, TypeError, "loss must be a tinyprop Loss"),
         ({"executor": FakeClient()}, TypeError, "for Dask pass client.get_executor()"),
         ({"executor": lambda: None}, TypeError, "a factory accepting initializer= and initargs="),
-        ({"test": (X, Y[:10])}, ValueError, r"test y must have shape \(240,\)"),
+        ({"test": (X, Y[:10])}, ValueError, r"test y must have shape \(240,\) or \(240, 1\)"),
+        ({"test": (X, np.stack([Y, Y], axis=1))}, ValueError, r"as many targets as the training y"),
         ({"test": (X[:, :2], Y)}, ValueError, r"test X must have shape \(n, 3\)"),
         ({"validation": X}, TypeError, "validation must be a pair"),
         ({"y": Y[:-1]}, ValueError, r"y must have shape \(240,\)"),

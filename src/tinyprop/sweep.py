@@ -89,20 +89,26 @@ def _read_only_copy(value: Any, name: str) -> np.ndarray:
     return copied
 
 
-def _checked_pair(pair: Any, name: str, n_columns: int, target_shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, y)`` with ``X`` ``(n, n_columns)`` and ``y`` shaped like the training targets, as read-only copies."""
+def _checked_pair(pair: Any, name: str, n_columns: int, n_targets: int) -> tuple[np.ndarray, np.ndarray]:
+    """``(X, y)`` with ``X`` ``(n, n_columns)`` and ``y`` ``(n, n_targets)`` (or ``(n,)`` for one target), read-only copies."""
     if not isinstance(pair, (tuple, list)) or len(pair) != 2:
         raise TypeError(f"{name} must be a pair (X, y) or None, got {type(pair).__name__}")
     X = _read_only_copy(pair[0], f"{name} X")
     y = _read_only_copy(pair[1], f"{name} y")
     if X.ndim != 2 or X.shape[1] != n_columns:
         raise ValueError(f"{name} X must have shape (n, {n_columns}) like the training X, got shape {X.shape}")
-    if y.shape != (X.shape[0], *target_shape):
+    if y.ndim not in (1, 2) or y.shape[0] != X.shape[0] or _targets(y) != n_targets:
+        expected = f"({X.shape[0]},) or ({X.shape[0]}, 1)" if n_targets == 1 else f"({X.shape[0]}, {n_targets})"
         raise ValueError(
-            f"{name} y must have shape {(X.shape[0], *target_shape)} (one row per row of {name} X, "
-            f"columns like the training y), got shape {y.shape}"
+            f"{name} y must have shape {expected} (one row per row of {name} X, as many targets as the "
+            f"training y), got shape {y.shape}"
         )
     return X, y
+
+
+def _targets(y: np.ndarray) -> int:
+    """Number of target columns of a 1-D or 2-D target array."""
+    return 1 if y.ndim == 1 else int(y.shape[1])
 
 
 @dataclass(frozen=True, eq=False)
@@ -130,7 +136,7 @@ class TrainingData:
         object.__setattr__(self, "X", X)
         object.__setattr__(self, "y", y)
         if self.validation is not None:
-            object.__setattr__(self, "validation", _checked_pair(self.validation, "validation", X.shape[1], y.shape[1:]))
+            object.__setattr__(self, "validation", _checked_pair(self.validation, "validation", X.shape[1], _targets(y)))
 
     def __reduce__(self) -> tuple[Any, ...]:
         # rebuilt through __init__, so the copy a worker unpickles is read-only too
@@ -626,7 +632,8 @@ def sweep(
             raise TypeError(f"{name} must be True or False, got {flag!r}")
     keys = _keys_of(settings)
     training = TrainingData(X, y, validation)
-    data = _SweepData(training, None if test is None else _checked_pair(test, "test", training.X.shape[1], training.y.shape[1:]))
+    test_pair = None if test is None else _checked_pair(test, "test", training.X.shape[1], _targets(training.y))
+    data = _SweepData(training, test_pair)
 
     folder = None
     if results_path is not None:
