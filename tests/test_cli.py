@@ -243,3 +243,9 @@ def test_main_reports_help_for_each_subcommand(capsys):
             main([command, "--help"])
         assert stop.value.code == 0
         assert f"usage: tinyprop {command}" in capsys.readouterr().out
+
+
+def test_every_public_name_is_in_the_api_reference():
+    text = (Path(__file__).resolve().parents[1] / "docs" / "api.md").read_text(encoding="utf-8")
+    missing = [name for name in tp.__all__ if f"`{name}`" not in text]
+    assert not missing, f"docs/api.md does not describe {missing}"
