@@ -11,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import json
+import multiprocessing
 import pickle
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
@@ -154,13 +155,18 @@ def two_processes(**pool_options):
     return functools.partial(ProcessPoolExecutor, max_workers=2, **pool_options)
 
 
-@pytest.mark.parametrize("kind", ["process pool instance", "process pool factory", "thread pool instance"])
+@pytest.mark.parametrize(
+    "kind", ["process pool instance", "process pool factory", "spawned process pool factory", "thread pool instance"]
+)
 def test_executors_give_the_sequential_result(sequential, kind):
     if kind == "process pool instance":
         with ProcessPoolExecutor(max_workers=2) as pool:
             result = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST, executor=pool)
     elif kind == "process pool factory":
         result = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST, executor=two_processes())
+    elif kind == "spawned process pool factory":  # fresh interpreters: the data is pickled once per worker
+        spawn = two_processes(mp_context=multiprocessing.get_context("spawn"))
+        result = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST, executor=spawn)
     else:
         with ThreadPoolExecutor(max_workers=2) as pool:
             result = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST, executor=pool)

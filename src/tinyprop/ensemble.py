@@ -155,10 +155,11 @@ class Ensemble:
         (the ``M - 1`` rounded additions of a sum of ``M`` terms, Higham,
         *Accuracy and Stability of Numerical Algorithms*, 2nd ed., section 3.1)::
 
-            (sum b_k + 2 gamma sum (|y_k| + b_k)) / M + 2 u (|mean| + sum b_k / M)
+            (sum b_k + 2 (gamma + u) sum (|y_k| + b_k)) / M
 
-        plus one smallest subnormal per rounding, times 1.01 for second-order
-        terms. This is the tolerance for comparing exported code with
+        (``|y_k| + b_k`` bounds member ``k``'s output in either evaluation; the
+        ``u`` term is the rounding of the division), plus one smallest
+        subnormal per rounding, times 1.01 for second-order terms. This is the tolerance for comparing exported code with
         :meth:`predict` of ``Ensemble([m.copy(dtype) for m in members])``.
         """
         dtype = np.dtype(self.dtype if dtype is None else dtype)
@@ -170,9 +171,8 @@ class Ensemble:
         tiny = float(np.finfo(dtype).smallest_subnormal)
         m = self.n_members
         gamma = (m - 1) * u / (1 - (m - 1) * u)
-        mean = np.abs(np.sum(outputs, axis=0)) / m
-        summed = bounds.sum(axis=0)
-        bound = (summed + 2 * gamma * (outputs + bounds).sum(axis=0)) / m + 2 * u * (mean + summed / m)
+        magnitude = (outputs + bounds).sum(axis=0)
+        bound = (bounds.sum(axis=0) + 2 * (gamma + u) * magnitude) / m
         return 1.01 * (bound + 2 * (m + 1) * tiny)
 
     # ------------------------------------------------------------ identity and files

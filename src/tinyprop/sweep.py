@@ -42,11 +42,11 @@ already in the table and loads its network. The file layout is in
 
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import json
 import math
 import os
+import secrets
 import sys
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -388,8 +388,7 @@ _INSTALLED: dict[str, _SweepData] = {}
 
 
 def _install(token: str, data: _SweepData) -> None:
-    """Pool initializer: keep the sweep's data in this worker process for all its tasks."""
-    _INSTALLED.clear()
+    """Pool initializer: keep the sweep's data in this worker (process or thread) for all its tasks."""
     _INSTALLED[token] = data
 
 
@@ -420,9 +419,13 @@ def _train_one(recipe: Callable[..., Any], key: str, data: _SweepData | _DataRef
 def _network_and_result(produced: Any) -> tuple[Network, TrainingResult | None]:
     if isinstance(produced, Network):
         return produced, None
-    if isinstance(produced, tuple) and len(produced) == 2 and isinstance(produced[0], Network):
-        if isinstance(produced[1], TrainingResult):
-            return produced
+    if (
+        isinstance(produced, tuple)
+        and len(produced) == 2
+        and isinstance(produced[0], Network)
+        and isinstance(produced[1], TrainingResult)
+    ):
+        return produced
     raise TypeError(
         f"the recipe must return a Network or (Network, TrainingResult), got {type(produced).__name__}"
     )
@@ -459,7 +462,7 @@ def _outcomes(
         shipped = data if client is None else client.scatter(data, broadcast=True, hash=False)
         yield from _run_on(executor, pending, recipe, shipped, loss)
         return
-    token = data.digest()
+    token = secrets.token_hex(32)  # unique per call, so concurrent sweeps in one process never share an entry
     try:
         pool = executor(initializer=_install, initargs=(token, data))
     except TypeError as exc:
@@ -473,6 +476,7 @@ def _outcomes(
         yield from _run_on(pool, pending, recipe, _DataRef(token), loss)
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+        _INSTALLED.pop(token, None)  # a thread pool's workers installed it in this process
 
 
 def _run_on(
@@ -557,11 +561,17 @@ class _ResultsFolder:
         write_bytes_atomically(self.table, ("\n".join(lines) + "\n").encode("utf-8"))
 
 
-def _recipe_identity(recipe: Any) -> str:
-    """A dataclass recipe by its repr (fields included), any other by ``module.qualname``."""
-    if dataclasses.is_dataclass(recipe) and not isinstance(recipe, type):
-        return repr(recipe)
-    holder = recipe if hasattr(recipe, "__qualname__") else type(recipe)
+def _identity(value: Any) -> str:
+    """How a results folder recognises a recipe or a loss.
+
+    Its ``repr`` when that is stable (a dataclass's lists its fields, a
+    loss's its settings), else ``module.qualname`` of the function or class
+    (a ``repr`` holding a memory address, `` at 0x``, changes from run to run).
+    """
+    text = repr(value)
+    if " at 0x" not in text:
+        return text
+    holder = value if hasattr(value, "__qualname__") else type(value)
     return f"{holder.__module__}.{holder.__qualname__}"
 
 
@@ -637,8 +647,8 @@ def sweep(
 
     folder = None
     if results_path is not None:
-        header = {"format": TABLE_FORMAT, "format_version": TABLE_VERSION, "recipe": _recipe_identity(recipe),
-                  "loss": repr(loss), "data_sha256": data.digest()}
+        header = {"format": TABLE_FORMAT, "format_version": TABLE_VERSION, "recipe": _identity(recipe),
+                  "loss": _identity(loss), "data_sha256": data.digest()}
         folder = _ResultsFolder(results_path, header)
     records: dict[int, SweepRecord] = {}
     networks: dict[int, Network | None] = {}
