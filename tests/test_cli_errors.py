@@ -51,6 +51,7 @@ CASES = [
     ("empty-file", ["train", "empty.csv", "--targets", "y"], 1, ["empty.csv", "no header row"]),
     ("header-only", ["train", "header_only.csv", "--targets", "y"], 1, ["no data rows"]),
     ("duplicate-header", ["train", "duplicate.csv", "--targets", "y"], 1, ["'x1' more than once"]),
+    ("bad-delimiter", ["train", "good.csv", "--targets", "y", "--delimiter", "::"], 2, ["--delimiter", "'::'"]),
     ("missing-targets-option", ["train", "good.csv"], 2, ["--targets"]),
     ("zero-epochs", ["train", "good.csv", "--targets", "y", "--epochs", "0"], 2, ["--epochs", "got 0"]),
     ("bad-hidden", ["train", "good.csv", "--targets", "y", "--hidden", "16,x"], 2, ["--hidden", "'16,x'"]),

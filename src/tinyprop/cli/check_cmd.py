@@ -23,7 +23,7 @@ import sys
 import numpy as np
 
 from ..check import check_gradient
-from ..csvdata import read_csv
+from ..csvdata import CsvError, read_csv
 from ..layers import Standardize, Unstandardize
 from ..losses import MeanSquaredError
 from ..network import Network
@@ -115,8 +115,10 @@ def _rows_from_csv(
         return subset.numeric(inputs), subset.numeric(targets)
     except OSError as exc:
         raise CommandError(describe_os_error(exc)) from None
-    except ValueError as exc:
+    except CsvError as exc:
         raise CommandError(str(exc)) from None
+    except ValueError as exc:  # a --delimiter that cannot be used
+        raise CommandError(f"--delimiter: {exc}", USAGE) from None
 
 
 def _stored_names(metadata: dict, key: str) -> list[str] | None:

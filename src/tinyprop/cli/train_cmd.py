@@ -157,9 +157,10 @@ def _settings(args: argparse.Namespace) -> FitSettings:
         raise CommandError(f"--patience applies to --method mini-batch, not {args.method}", USAGE)
     return FitSettings(
         hidden=args.hidden, activation=args.activation, method=args.method, optimizer=args.optimizer,
-        learning_rate=args.learning_rate, schedule=args.schedule, momentum=args.momentum, epochs=args.epochs, batch_size=args.batch_size,
-        patience=args.patience, seed=args.seed, validation_fraction=args.validation_fraction,
-        test_fraction=args.test_fraction, dtype=args.dtype, max_evaluations=args.max_evaluations,
+        learning_rate=args.learning_rate, schedule=args.schedule, momentum=args.momentum, epochs=args.epochs,
+        batch_size=args.batch_size, patience=args.patience, seed=args.seed,
+        validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
+        max_evaluations=args.max_evaluations,
     )
 
 
@@ -168,8 +169,10 @@ def _dataset(args: argparse.Namespace) -> Dataset:
         table = read_csv(args.data, delimiter=args.delimiter)
     except OSError as exc:
         raise CommandError(describe_os_error(exc)) from None
-    except ValueError as exc:  # CsvError, or a delimiter csv cannot use
+    except CsvError as exc:
         raise CommandError(str(exc)) from None
+    except ValueError as exc:  # a --delimiter that cannot be used
+        raise CommandError(f"--delimiter: {exc}", USAGE) from None
     targets, inputs = _columns(table, args.targets, args.inputs)
     try:
         X, Y = table.numeric(inputs), table.numeric(targets)
