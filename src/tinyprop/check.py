@@ -55,7 +55,6 @@ from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 import numpy as np
-from scipy import differentiate
 
 from ._validate import as_samples, as_targets, kind_of
 from .activations import Activation
@@ -218,6 +217,8 @@ def _numerical_output_jacobian(net: Network, X: np.ndarray, step: float) -> np.n
             values[:, j] = reference.predict(X_ref).ravel() - out0
         return values.reshape((out0.size,) + theta.shape[1:])
 
+    from scipy import differentiate  # scipy is imported where it is used, keeping `import tinyprop` light
+
     return differentiate.jacobian(output_change, theta0, initial_step=step).df
 
 
@@ -234,6 +235,8 @@ def _numerical_loss_gradient(loss: Loss, out: np.ndarray, y: np.ndarray) -> np.n
         columns = flat.reshape(flat.shape[0], -1)
         values = [loss.value(columns[:, j].reshape(out.shape), y) - base for j in range(columns.shape[1])]
         return np.asarray(values).reshape(flat.shape[1:])
+
+    from scipy import differentiate
 
     return differentiate.jacobian(loss_change, out.ravel(), initial_step=step).df
 
@@ -382,6 +385,8 @@ def _numerical_derivative(activation: Activation, z: np.ndarray) -> tuple[np.nda
         on_kink |= distance == 0
         step = np.where(distance > 0, np.minimum(step, distance / 2), step)
     direction = np.where(on_kink, 1, 0)
+    from scipy import differentiate
+
     right = differentiate.derivative(f, z, initial_step=step, step_direction=direction).df
     left = differentiate.derivative(f, z, initial_step=step, step_direction=-direction).df
     return right, left

@@ -38,7 +38,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import optimize
 
 from ._validate import as_samples, as_targets, positive_int
 from .losses import SquaredError
@@ -189,6 +188,8 @@ def _levenberg_marquardt(
         work.set_vector(theta)
         return work.jacobian(X)
 
+    from scipy import optimize  # imported where used: `import tinyprop` stays numpy-only
+
     fit = optimize.least_squares(
         residuals, theta0, jac=jacobian, method="lm",
         xtol=tolerance, ftol=tolerance, gtol=tolerance, max_nfev=max_evaluations,
@@ -215,6 +216,8 @@ def _lbfgs(
         out, trace = work.forward(X)
         grads, _ = work.backward(trace, loss.gradient(out, target), need_input=False)
         return loss.value(out, target), np.concatenate([g.ravel() for g in grads])
+
+    from scipy import optimize
 
     fit = optimize.minimize(
         value_and_gradient, theta0, jac=True, method="L-BFGS-B",
