@@ -24,8 +24,10 @@ from .losses import (
 from .network import Network, Trace
 from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp
 from .registry import register_activation
+from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
+from .sweep import SweepRecord, SweepResult, TabularRegression, TrainingData, sweep
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
@@ -47,6 +49,7 @@ __all__ = [
     "CosineSchedule",
     "CrossEntropyOnSigmoid",
     "CrossEntropyOnSoftmax",
+    "Ensemble",
     "EpochInfo",
     "ExponentialSchedule",
     "GradientReport",
@@ -76,8 +79,12 @@ __all__ = [
     "SquaredError",
     "Standardize",
     "StepSchedule",
+    "SweepRecord",
+    "SweepResult",
+    "TabularRegression",
     "Tanh",
     "Trace",
+    "TrainingData",
     "TrainingDiverged",
     "TrainingResult",
     "TrainingState",
@@ -98,6 +105,7 @@ __all__ = [
     "register_activation",
     "save",
     "solve",
+    "sweep",
     "train",
     "uncertainty_report",
     "__version__",
