@@ -24,6 +24,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._settings import Configured
+
 __all__ = [
     "Activation",
     "Sigmoid",
@@ -35,7 +37,7 @@ __all__ = [
 ]
 
 
-class Activation:
+class Activation(Configured):
     """Base class of elementwise activations ``a = f(z)``.
 
     Subclasses implement :meth:`value` and :meth:`derivative`. Both take and
@@ -61,20 +63,6 @@ class Activation:
         raise NotImplementedError(
             f"{type(self).__name__} must implement derivative(z, a)"
         )
-
-    def settings(self) -> dict[str, float]:
-        """The constructor arguments that recreate this activation (for saving)."""
-        return {}
-
-    def __eq__(self, other: object) -> bool:
-        return type(self) is type(other) and self.settings() == other.settings()  # type: ignore[attr-defined]
-
-    def __hash__(self) -> int:
-        return hash((type(self).__name__, tuple(sorted(self.settings().items()))))
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.settings().items())
-        return f"{type(self).__name__}({args})"
 
 
 class Sigmoid(Activation):

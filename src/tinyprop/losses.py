@@ -15,6 +15,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._settings import Configured
+
 from .activations import Sigmoid, Softplus
 
 __all__ = [
@@ -27,7 +29,7 @@ __all__ = [
 ]
 
 
-class Loss:
+class Loss(Configured):
     """Base class: ``value(y_hat, y) -> float`` and ``gradient(y_hat, y) -> array``."""
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
@@ -36,25 +38,12 @@ class Loss:
     def gradient(self, y_hat: np.ndarray, y: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
-    def settings(self) -> dict[str, float]:
-        return {}
-
     def kink_distance(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         """Distance of the outputs from a point where the loss is not twice differentiable.
 
         Infinite for smooth losses; numerical checks keep their steps below it.
         """
         return float("inf")
-
-    def __eq__(self, other: object) -> bool:
-        return type(self) is type(other) and self.settings() == other.settings()  # type: ignore[attr-defined]
-
-    def __hash__(self) -> int:
-        return hash((type(self).__name__, tuple(sorted(self.settings().items()))))
-
-    def __repr__(self) -> str:
-        args = ", ".join(f"{k}={v!r}" for k, v in self.settings().items())
-        return f"{type(self).__name__}({args})"
 
 
 def _pair(y_hat: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

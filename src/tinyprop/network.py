@@ -284,12 +284,10 @@ class Network:
         sample, and each sample keeps its own outer product ``delta_i x_i^T``
         instead of the batch sum that :meth:`backward` forms.
         """
-        _, trace = self.forward(X)
-        n = trace.values[0].shape[0]
+        trace, n = self._trace_of(X)
         J = np.empty((n, self.n_out, self.n_params), dtype=self.dtype)
         for k in range(self.n_out):
-            seed = np.zeros((n, self.n_out), dtype=self.dtype)
-            seed[:, k] = 1.0
+            seed = self._output_seed(n, k)
             columns: list[np.ndarray] = []
 
             def per_sample(i: int, layer: Affine, x: np.ndarray, delta: np.ndarray) -> None:
@@ -303,14 +301,21 @@ class Network:
 
     def input_gradient(self, X: Any) -> np.ndarray:
         """``G[i, k, j] = d output[i, k] / d X[i, j]``, shape ``(n, n_out, n_in)``."""
-        _, trace = self.forward(X)
-        n = trace.values[0].shape[0]
+        trace, n = self._trace_of(X)
         G = np.empty((n, self.n_out, self.n_in), dtype=self.dtype)
         for k in range(self.n_out):
-            seed = np.zeros((n, self.n_out), dtype=self.dtype)
-            seed[:, k] = 1.0
-            G[:, k, :] = self._delta_recursion(trace, seed, True, lambda *_: None)
+            G[:, k, :] = self._delta_recursion(trace, self._output_seed(n, k), True, lambda *_: None)
         return G
+
+    def _trace_of(self, X: Any) -> tuple[Trace, int]:
+        _, trace = self.forward(X)
+        return trace, trace.values[0].shape[0]
+
+    def _output_seed(self, n: int, k: int) -> np.ndarray:
+        """``delta = e_k`` for every sample: the derivative of output ``k`` alone."""
+        seed = np.zeros((n, self.n_out), dtype=self.dtype)
+        seed[:, k] = 1.0
+        return seed
 
     # ----------------------------------------------------------------- utilities
     def copy(self, dtype: Any = None) -> "Network":
