@@ -332,3 +332,23 @@ def test_state_from_parts_reports_missing_pieces():
     arrays["surprise"] = np.zeros(2)
     with pytest.raises(ValueError, match="unexpected arrays"):
         TrainingState.from_parts(scalars, arrays)
+
+
+@pytest.mark.parametrize(
+    "key,value,text",
+    [
+        ("epoch", "4", "epoch must be an integer >= 0"),
+        ("training_loss", [0.1, float("nan")], "training_loss must be a list of finite numbers"),
+        ("rng", [1, 2], "rng must be a dict"),
+        ("best_epoch", -1, "best_epoch must be an integer >= 0"),
+        ("version", 2, "not a version-1 tinyprop training state"),
+    ],
+)
+def test_state_from_parts_refuses_ill_typed_scalars(key, value, text):
+    X, y = _regression(n=20)
+    result = train(_net(), X, y, loss=tp.MeanSquaredError(), optimizer=Adam(0.01), epochs=2, batch_size=8,
+                   validation=(X, y))
+    scalars, arrays = result.state.to_parts()
+    scalars[key] = value
+    with pytest.raises(ValueError, match=text):
+        TrainingState.from_parts(scalars, arrays)

@@ -255,7 +255,8 @@ class SGD(Optimizer):
 
     With learning rate ``lr_t = alpha * eta_{t-1}`` and momentum ``mu``:
 
-    - plain (``momentum=0``):   ``theta <- theta - lr_t g``
+    - plain (``momentum=0``):   ``theta <- theta - lr_t g`` (Robbins & Monro (1951),
+      "A Stochastic Approximation Method", Ann. Math. Statist. 22(3))
     - classical momentum (Polyak (1964), "Some methods of speeding up the
       convergence of iteration methods", USSR Comput. Math. & Math. Phys. 4(5)):
       ``v <- mu v - lr_t g``;  ``theta <- theta + v``

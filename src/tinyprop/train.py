@@ -133,40 +133,69 @@ class TrainingState:
 
     @classmethod
     def from_parts(cls, scalars: dict[str, Any], arrays: dict[str, np.ndarray]) -> "TrainingState":
-        """Rebuild a state from :meth:`to_parts` output; ``ValueError`` if anything is missing."""
+        """Rebuild a state from :meth:`to_parts` output.
+
+        Raises ``ValueError`` naming the first missing, unexpected or
+        ill-typed entry. Deeper consistency (shapes against the network,
+        settings against the run) is checked when :func:`train` resumes.
+        """
+        if not isinstance(scalars, dict) or not isinstance(arrays, dict):
+            raise TypeError(f"scalars and arrays must be dicts, got {type(scalars).__name__} and {type(arrays).__name__}")
         try:
             if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
                 raise ValueError(f"not a version-1 tinyprop training state: {scalars['format']!r} {scalars['version']!r}")
-            n = int(scalars["n_weights"])
+            n = _whole(scalars["n_weights"], "n_weights")
             weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
-            has_best = f"best_weights/0" in arrays
+            has_best = "best_weights/0" in arrays
             best = [np.asarray(arrays[f"best_weights/{i}"]) for i in range(n)] if has_best else None
             prefix = "optimizer/"
+            optimizer_scalars = _typed(scalars["optimizer"], "optimizer", dict)
             optimizer = OptimizerState(
-                kind=scalars["optimizer"]["kind"],
-                settings=scalars["optimizer"]["settings"],
-                steps=scalars["optimizer"]["steps"],
+                kind=_typed(optimizer_scalars["kind"], "optimizer kind", str),
+                settings=_typed(optimizer_scalars["settings"], "optimizer settings", dict),
+                steps=_whole(optimizer_scalars["steps"], "optimizer steps"),
                 arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
             )
             expected = {f"weights/{i}" for i in range(n)} | ({f"best_weights/{i}" for i in range(n)} if has_best else set())
             extra = {k for k in arrays if not k.startswith(prefix)} - expected
             if extra:
                 raise ValueError(f"unexpected arrays {sorted(extra)}")
+            validation = scalars["validation_loss"]
             return cls(
-                epoch=int(scalars["epoch"]),
+                epoch=_whole(scalars["epoch"], "epoch"),
                 weights=weights,
                 optimizer=optimizer,
-                rng=scalars["rng"],
-                training_loss=[float(v) for v in scalars["training_loss"]],
-                validation_loss=None if scalars["validation_loss"] is None else [float(v) for v in scalars["validation_loss"]],
-                best_epoch=scalars["best_epoch"],
-                best_loss=scalars["best_loss"],
+                rng=_typed(scalars["rng"], "rng", dict),
+                training_loss=_losses(scalars["training_loss"], "training_loss"),
+                validation_loss=None if validation is None else _losses(validation, "validation_loss"),
+                best_epoch=None if scalars["best_epoch"] is None else _whole(scalars["best_epoch"], "best_epoch"),
+                best_loss=None if scalars["best_loss"] is None else _losses([scalars["best_loss"]], "best_loss")[0],
                 best_weights=best,
-                epochs_since_best=int(scalars["epochs_since_best"]),
-                settings=scalars["settings"],
+                epochs_since_best=_whole(scalars["epochs_since_best"], "epochs_since_best"),
+                settings=_typed(scalars["settings"], "settings", dict),
             )
         except KeyError as exc:
             raise ValueError(f"training state is missing {exc}") from None
+
+
+def _whole(value: Any, name: str) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
+        raise ValueError(f"training state {name} must be an integer >= 0, got {value!r}")
+    return int(value)
+
+
+def _typed(value: Any, name: str, kind: type) -> Any:
+    if not isinstance(value, kind):
+        raise ValueError(f"training state {name} must be a {kind.__name__}, got {type(value).__name__}")
+    return value
+
+
+def _losses(values: Any, name: str) -> list[float]:
+    if not isinstance(values, list) or not all(
+        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in values
+    ):
+        raise ValueError(f"training state {name} must be a list of finite numbers, got {values!r}")
+    return [float(v) for v in values]
 
 
 @dataclass(frozen=True)
