@@ -9,6 +9,7 @@ __version__ = "0.1.0"
 
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
+from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import agreement_bound, export_c, export_python
 from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
@@ -22,7 +23,7 @@ from .losses import (
     SquaredError,
 )
 from .network import Network, Trace
-from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp
+from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp, optimizer_from_state
 from .registry import register_activation
 from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
@@ -37,7 +38,15 @@ from .uncertainty import (
     parameter_uncertainty,
     uncertainty_report,
 )
-from .train import EpochInfo, History, TrainingDiverged, TrainingResult, TrainingState, train
+from .train import (
+    EpochInfo,
+    History,
+    TrainingDiverged,
+    TrainingResult,
+    TrainingState,
+    fit_tabular_regression,
+    train,
+)
 from .workspace import Workspace
 
 __all__ = [
@@ -45,6 +54,7 @@ __all__ = [
     "ActivationReport",
     "Adam",
     "Affine",
+    "CheckpointError",
     "ColumnScaling",
     "CosineSchedule",
     "CrossEntropyOnSigmoid",
@@ -98,12 +108,16 @@ __all__ = [
     "export_c",
     "export_python",
     "fingerprint",
+    "fit_tabular_regression",
     "input_sensitivity",
     "load",
+    "load_checkpoint",
     "load_model_file",
+    "optimizer_from_state",
     "parameter_uncertainty",
     "register_activation",
     "save",
+    "save_checkpoint",
     "solve",
     "sweep",
     "train",

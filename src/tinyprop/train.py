@@ -38,6 +38,7 @@ reverses it.
 from __future__ import annotations
 
 import math
+import os
 import sys
 import time
 from dataclasses import dataclass, field
@@ -271,6 +272,8 @@ def train(
     l2: float = 0.0,
     callback: Callable[[EpochInfo], bool | None] | None = None,
     resume: TrainingState | None = None,
+    checkpoint: str | os.PathLike[str] | None = None,
+    checkpoint_every: int = 1,
 ) -> TrainingResult:
     """Train ``net`` in place by mini-batch gradient descent (see the module docstring).
 
@@ -314,7 +317,14 @@ def train(
         A :class:`TrainingState` to continue from; ``net``'s weights and the
         optimizer's state are replaced by the state's, and the settings
         (``batch_size``, ``seed``, ``l2``, ``patience``, ``loss``, data sizes)
-        must equal those of the run that produced it.
+        must equal those of the run that produced it. To continue from a
+        file: ``resume=tp.load_checkpoint(path)``.
+    checkpoint, checkpoint_every:
+        Write the :class:`TrainingState` to the file ``checkpoint`` after every
+        ``checkpoint_every``-th epoch and at the epoch limit, atomically
+        (:func:`tinyprop.save_checkpoint`), before the callback runs. A run
+        that dies can be continued from the last checkpoint with bit-identical
+        results.
 
     Raises
     ------
@@ -334,6 +344,7 @@ def train(
     ('epochs', True)
     """
     run = _Run(net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback)
+    run.checkpoint_to(checkpoint, checkpoint_every)
     if resume is not None:
         run.restore(resume)
     return run.execute()
@@ -464,6 +475,9 @@ class _Run:
         self.params = net.params
         self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
         self.backup = [np.empty_like(p) for p in self.params]
+        self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
+        self.checkpoint: str | os.PathLike[str] | None = None
+        self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
         self.epoch = 0
         self.training_loss: list[float] = []
@@ -475,6 +489,20 @@ class _Run:
         self.first_epoch_of_call = 1
 
     # ----------------------------------------------------------------- state
+    def checkpoint_to(self, path: str | os.PathLike[str] | None, every: int) -> None:
+        if path is not None and not isinstance(path, (str, os.PathLike)):
+            raise TypeError(f"checkpoint must be a file path or None, got {type(path).__name__}")
+        self.checkpoint = path
+        self.checkpoint_every = positive_int(every, "checkpoint_every")
+
+    def _write_checkpoint(self) -> None:
+        if self.checkpoint is None:
+            return
+        if self.epoch % self.checkpoint_every == 0 or self.epoch >= self.epochs:
+            from .checkpoint import save_checkpoint  # checkpoint.py builds on this module
+
+            save_checkpoint(self.checkpoint, self.capture())
+
     def capture(self) -> TrainingState:
         has_best = self.best_epoch is not None and self.best_weights is not None
         return TrainingState(
@@ -560,7 +588,7 @@ class _Run:
         return None
 
     def _step(self, xb: np.ndarray, yb: np.ndarray) -> str | None:
-        out, trace = self.net.forward(xb)
+        out, trace = self.net.forward(xb, workspace=self.work)
         batch_loss = self.loss.value(out, yb)
         if not math.isfinite(batch_loss):
             return f"the mini-batch loss is {batch_loss}"
@@ -589,6 +617,7 @@ class _Run:
             else:
                 self.epochs_since_best += 1
         self._show_progress()
+        self._write_checkpoint()
         stop_requested = False
         if self.callback is not None:
             info = EpochInfo(
