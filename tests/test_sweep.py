@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import inspect
 import json
 import multiprocessing
 import pickle
@@ -73,6 +74,25 @@ def test_recipe_defaults_reproduce_fit_tabular_regression():
     for p, q in zip(net.params, reference.params):
         assert np.array_equal(p, q)
     assert result.history == reference_result.history
+
+
+def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
+    # every default of the ready recipe is the library recipe's, including the
+    # patience: the run stops early, so a different patience would change it
+    defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
+    recipe = TabularRegression()
+    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"], defaults["seed"])
+    net, result = recipe({}, TrainingData(X, Y))
+    reference, reference_result = fit_tabular_regression(X, Y)
+    assert result.stop_reason == "early stopping" and result.epochs_run < recipe.max_epochs
+    assert [type(layer) for layer in net.layers] == [type(layer) for layer in reference.layers]
+    for p, q in zip(net.params, reference.params):
+        assert np.array_equal(p, q)
+    assert result.history == reference_result.history
+    assert (result.epochs_run, result.best_epoch) == (reference_result.epochs_run, reference_result.best_epoch)
+    # the comparison can fail: another patience gives another run
+    _, other = dataclasses.replace(recipe, patience=recipe.patience // 2)({}, TrainingData(X, Y))
+    assert other.epochs_run != reference_result.epochs_run and other.history != reference_result.history
 
 
 def test_recipe_refuses_unknown_keys_and_bad_values():

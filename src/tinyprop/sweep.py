@@ -58,15 +58,21 @@ from typing import Any
 import numpy as np
 
 from ._validate import as_float_array, as_samples, as_targets, positive_int, seed_value
-from .activations import Tanh
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
 from .io import fingerprint, load_model_file, save
-from .layers import Affine, Standardize, Unstandardize
 from .losses import Loss, MeanSquaredError
-from .network import Layer, Network
-from .optim import Adam
+from .network import Network
 from .schedules import real_in_range
-from .train import TrainingDiverged, TrainingResult, train
+from .train import (
+    RECIPE_BATCH_SIZE,
+    RECIPE_HIDDEN_UNITS,
+    RECIPE_LR,
+    RECIPE_MAX_EPOCHS,
+    RECIPE_PATIENCE,
+    TrainingDiverged,
+    TrainingResult,
+    _fit_tabular,
+)
 
 __all__ = ["sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "TabularRegression"]
 
@@ -297,18 +303,19 @@ class TabularRegression:
     validation rows of the sweep are not used for early stopping, so they
     stay an independent yardstick for choosing a setting.
 
-    With the defaults and one hidden layer it reproduces
+    Both recipes train through one implementation, so with the defaults
+    and one hidden layer it reproduces
     ``fit_tabular_regression(X, y, hidden_units=..., seed=..., max_epochs=...)``
     bit for bit (checked in ``tests/test_sweep.py``).
     """
 
-    hidden: tuple[int, ...] = (50,)
-    lr: float = 3e-3
+    hidden: tuple[int, ...] = (RECIPE_HIDDEN_UNITS,)
+    lr: float = RECIPE_LR
     decoupled_decay: float = 0.0
     l2: float = 0.0
-    batch_size: int = 64
-    max_epochs: int = 2000
-    patience: int = 30
+    batch_size: int = RECIPE_BATCH_SIZE
+    max_epochs: int = RECIPE_MAX_EPOCHS
+    patience: int = RECIPE_PATIENCE
     seed: int = 0
 
     def __post_init__(self) -> None:
@@ -336,30 +343,11 @@ class TabularRegression:
 
     def fit(self, X: Any, y: Any) -> tuple[Network, TrainingResult]:
         """Build and train one network on ``X`` ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``, ``n >= 2``."""
-        data = TrainingData(X, y)
-        X = data.X.astype(np.float64)
-        targets = data.y.reshape(-1, 1).astype(np.float64) if data.y.ndim == 1 else data.y.astype(np.float64)
-        if X.shape[0] < 2:
-            raise ValueError(f"need at least 2 rows (one is held out for early stopping), got {X.shape[0]}")
-        hold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(self.seed).generate_state(3))
-        order = np.random.default_rng(hold_seed).permutation(X.shape[0])
-        n_hold = max(1, X.shape[0] // 10)
-        held, kept = order[:n_hold], order[n_hold:]
-        widths = [X.shape[1], *self.hidden, targets.shape[1]]
-        layers: list[Layer] = [Standardize.from_data(X)]
-        for i, (n_in, n_out) in enumerate(zip(widths[:-1], widths[1:])):
-            layers.append(Affine(n_in, n_out))
-            if i < len(widths) - 2:
-                layers.append(Tanh())
-        layers.append(Unstandardize.from_data(targets))
-        net = Network(layers, seed=init_seed)
-        result = train(
-            net, X[kept], targets[kept], loss=MeanSquaredError(),
-            optimizer=Adam(lr=self.lr, decoupled_decay=self.decoupled_decay), epochs=self.max_epochs,
-            batch_size=self.batch_size, validation=(X[held], targets[held]), patience=self.patience,
-            seed=shuffle_seed, l2=self.l2,
+        return _fit_tabular(
+            X, y, hidden=self.hidden, lr=self.lr, decoupled_decay=self.decoupled_decay, l2=self.l2,
+            batch_size=self.batch_size, max_epochs=self.max_epochs, patience=self.patience, seed=int(self.seed),
+            progress=False,
         )
-        return net, result
 
 
 # ---------------------------------------------------------------- one task (runs in a worker)
