@@ -17,7 +17,16 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.archive import ArchiveError, array_record, read_archive, write_archive
-from tinyprop.io import ModelFileError, describe, fingerprint, load, load_model_file, save
+from tinyprop.io import (
+    ModelFileError,
+    describe,
+    fingerprint,
+    load,
+    load_model_file,
+    model_from_parts,
+    model_parts,
+    save,
+)
 from tinyprop.registry import activation_class, register_activation, registered_activations
 
 
@@ -349,6 +358,72 @@ def test_save_over_an_existing_file_replaces_it(saved):
     assert sorted(p.name for p in path.parent.iterdir()) == ["model.npz"]
 
 
+# ---------------------------------------------------------------- parts without a file
+def test_model_parts_are_exactly_what_save_writes(saved, tmp_path):
+    path, net = saved
+    arrays, manifest = model_parts(net, {"data": "synthetic"})
+    stored_arrays, stored_manifest = read_archive(path)
+    assert manifest == stored_manifest and "arrays" not in manifest
+    assert list(arrays) == list(stored_arrays)
+    for name, array in arrays.items():
+        assert array.dtype == stored_arrays[name].dtype and np.array_equal(array, stored_arrays[name])
+    write_archive(tmp_path / "from_parts.npz", arrays, manifest)
+    assert (tmp_path / "from_parts.npz").read_bytes() == path.read_bytes()
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_model_from_parts_round_trip_shares_nothing(dtype):
+    net = hand_set_network(dtype)
+    metadata = {"nested": {"list": [1, 2.5]}}
+    arrays, manifest = model_parts(net, metadata)
+    for array in arrays.values():  # copies: changing the parts leaves the network alone
+        assert not any(np.shares_memory(array, p) for p in net.params)
+    assert manifest["metadata"] == metadata and manifest["metadata"] is not metadata
+    kept_arrays = {name: array.copy() for name, array in arrays.items()}
+    kept_manifest = copy.deepcopy(manifest)
+    model = model_from_parts(arrays, manifest)
+    assert_same_network(model.network, net)
+    assert (model.metadata, model.fingerprint, model.format_version) == (metadata, fingerprint(net), 1)
+    for p in model.network.params:
+        p += 1.0  # training the rebuilt network must not reach the parts
+    model.metadata["nested"]["list"].append(3)
+    assert manifest == kept_manifest
+    assert all(np.array_equal(arrays[name], kept_arrays[name]) for name in arrays)
+
+
+def test_model_from_parts_accepts_big_endian_and_fortran_arrays():
+    net = hand_set_network()
+    arrays, manifest = model_parts(net)
+    swapped = {name: np.asfortranarray(array.astype(array.dtype.newbyteorder(">"))) for name, array in arrays.items()}
+    assert_same_network(model_from_parts(swapped, manifest).network, net)
+
+
+@pytest.mark.parametrize(
+    "change, error, message",
+    [
+        (lambda a, m: a["layer1.weight"].__setitem__((0, 0), 9.0), ModelFileError, "fingerprint mismatch"),
+        (lambda a, m: a.pop("layer3.weight"), ModelFileError, r"do not match the layers"),
+        (lambda a, m: a.update({"layer1.bias": [0.0, 0.0]}), ModelFileError, r"array 'layer1.bias' must be a numpy array, found list"),
+        (lambda a, m: a.update({"layer1.bias": np.array([0.0, np.nan])}), ModelFileError, r"layer1.bias holds a non-finite value"),
+        (lambda a, m: m.update(arrays=[]), ModelFileError, r"missing \[\], unknown \['arrays'\]"),
+        (lambda a, m: m.update(dtype="float16"), ModelFileError, r"manifest field 'dtype' is 'float16'"),
+        (lambda a, m: m["layers"][0].update(width=(2,)), ModelFileError, r"the manifest\['layers'\]\[0\]\['width'\] has type tuple"),
+    ],
+    ids=["changed-weight", "missing-array", "list-not-array", "nan", "arrays-field", "dtype", "tuple-in-manifest"],
+)
+def test_model_from_parts_refuses_what_load_refuses(change, error, message):
+    arrays, manifest = model_parts(hand_set_network())
+    change(arrays, manifest)
+    with pytest.raises(error, match=message):
+        model_from_parts(arrays, manifest)
+
+
+def test_model_from_parts_refuses_non_dicts():
+    arrays, manifest = model_parts(hand_set_network())
+    with pytest.raises(TypeError, match="arrays and manifest must be dicts, got list and dict"):
+        model_from_parts(list(arrays.values()), manifest)
+
+
 # ---------------------------------------------------------------- what save refuses
 class Forgetful(tp.Activation):
     """Its settings() omits the constructor argument, so a file could not rebuild it."""
@@ -389,6 +464,8 @@ def test_save_refuses_what_a_file_cannot_hold(tmp_path, make, metadata, message)
     with pytest.raises(ModelFileError, match=message):
         save(make(), path, metadata=metadata)
     assert list(tmp_path.iterdir()) == []
+    with pytest.raises(ModelFileError, match=message):
+        model_parts(make(), metadata)
 
 
 def test_save_refuses_self_containing_metadata(tmp_path):
@@ -403,6 +480,8 @@ def test_save_refuses_non_finite_weights(tmp_path):
     net.layers[3].weight[0, 1] = np.inf
     with pytest.raises(ModelFileError, match=r"array layer3.weight holds a non-finite value \(inf\) at index \(0, 1\)"):
         save(net, tmp_path / "m.npz")
+    with pytest.raises(ModelFileError, match=r"array layer3.weight holds a non-finite value \(inf\) at index \(0, 1\)"):
+        model_parts(net)
 
 
 # ---------------------------------------------------------------- tampering

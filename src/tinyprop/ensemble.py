@@ -35,7 +35,6 @@ import hashlib
 import json
 import os
 import sys
-import tempfile
 import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -48,7 +47,7 @@ from .archive import ArchiveError, check_json, read_archive, write_archive
 from .export import agreement_bound, export_c, export_python
 from .export._header import CAUTION
 from .export._text import check_name, output_directory, write_source
-from .io import ModelFileError, fingerprint, load_model_file, save
+from .io import ModelFileError, fingerprint, model_from_parts, model_parts
 from .network import Network
 
 __all__ = ["Ensemble"]
@@ -191,20 +190,18 @@ class Ensemble:
     def save(self, path: str | os.PathLike[str]) -> str:
         """Write the ensemble (members and metadata) to one file, atomically; return its fingerprint.
 
-        Every member goes through :func:`tinyprop.io.save` (same checks, same
+        Every member becomes what :func:`tinyprop.io.save` would write
+        (:func:`tinyprop.io.model_parts`: same checks, same
         :class:`~tinyprop.io.ModelFileError`); the file is written by
         :func:`tinyprop.archive.write_archive`, so a failure leaves an earlier
         file at ``path`` as it was.
         """
         arrays: dict[str, np.ndarray] = {}
         manifests = []
-        with tempfile.TemporaryDirectory(prefix="tinyprop-ensemble-") as scratch:
-            member_path = Path(scratch) / "member.npz"
-            for index, net in enumerate(self.members):
-                save(net, member_path)
-                member_arrays, manifest = read_archive(member_path)
-                arrays.update({f"member{index}/{name}": array for name, array in member_arrays.items()})
-                manifests.append(manifest)
+        for index, net in enumerate(self.members):
+            member_arrays, manifest = model_parts(net)
+            arrays.update({f"member{index}/{name}": array for name, array in member_arrays.items()})
+            manifests.append(manifest)
         digest = self.fingerprint()
         manifest = {
             "format": ENSEMBLE_FORMAT,
@@ -260,15 +257,11 @@ class Ensemble:
                 raise ModelFileError(f"array {name!r} belongs to no member (names are member<k>/..., k < {count})")
             grouped[int(index)][rest] = array
         networks = []
-        with tempfile.TemporaryDirectory(prefix="tinyprop-ensemble-") as scratch:
-            member_path = Path(scratch) / "member.npz"
-            for index, (member_arrays, member_manifest) in enumerate(zip(grouped, members)):
-                try:
-                    write_archive(member_path, member_arrays, member_manifest)
-                    networks.append(load_model_file(member_path).network)
-                except ArchiveError as exc:
-                    message = str(exc).replace(str(member_path), f"member {index}")
-                    raise ModelFileError(f"member {index}: {message}") from None
+        for index, (member_arrays, member_manifest) in enumerate(zip(grouped, members)):
+            try:
+                networks.append(model_from_parts(member_arrays, member_manifest).network)
+            except ArchiveError as exc:  # ModelFileError included
+                raise ModelFileError(f"member {index}: {exc}") from None
         ensemble = cls(networks, metadata=manifest["metadata"])
         if ensemble.fingerprint() != manifest["fingerprint"]:
             raise ModelFileError(

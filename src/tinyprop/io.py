@@ -27,6 +27,7 @@ import math
 import os
 import re
 import struct
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -38,7 +39,17 @@ from .layers import Affine, Standardize, Unstandardize
 from .network import Network
 from .registry import activation_class, activation_name, registered_activations
 
-__all__ = ["ModelFileError", "ModelFile", "fingerprint", "save", "load", "load_model_file", "describe"]
+__all__ = [
+    "ModelFileError",
+    "ModelFile",
+    "fingerprint",
+    "save",
+    "load",
+    "load_model_file",
+    "model_parts",
+    "model_from_parts",
+    "describe",
+]
 
 MODEL_FORMAT = "tinyprop-model"
 MODEL_FORMAT_VERSION = 1
@@ -235,7 +246,37 @@ def save(net: Network, path: str | os.PathLike[str], *, metadata: dict[str, Any]
     scalings, layer types a file cannot hold, and metadata that is not a dict
     of JSON values (see :func:`tinyprop.archive.check_json`). The write is
     atomic: a failure leaves an earlier file at ``path`` as it was. Neither
-    ``net`` nor ``metadata`` is modified.
+    ``net`` nor ``metadata`` is modified. The file is
+    ``write_archive(path, *model_parts(net, metadata))``.
+    """
+    arrays, manifest = model_parts(net, metadata)
+    try:
+        write_archive(path, arrays, manifest)
+    except ArchiveError as exc:
+        raise ModelFileError(str(exc)) from None
+    return manifest["fingerprint"]
+
+
+def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """What a model file holds, without the file: ``(arrays, manifest)``.
+
+    ``arrays`` maps the array names (``layer<i>.weight``, ...) to copies of
+    the network's arrays, in layer order; ``manifest`` is the model-file
+    manifest of ``docs/model-file.md`` without its ``"arrays"`` field (which
+    :func:`tinyprop.archive.write_archive` adds), with a copy of ``metadata``.
+    :func:`save` writes exactly these; :func:`model_from_parts` reverses them,
+    so other containers (an ensemble file, say) can embed model files
+    without temporary files. Refuses what :func:`save` refuses, with the same
+    :class:`ModelFileError`; neither ``net`` nor ``metadata`` is modified.
+
+    >>> import tinyprop as tp
+    >>> from tinyprop.io import model_from_parts, model_parts
+    >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
+    >>> arrays, manifest = model_parts(net, {"units": "V"})
+    >>> list(arrays), manifest["fingerprint"] == tp.fingerprint(net)
+    (['layer0.weight', 'layer0.bias'], True)
+    >>> model_from_parts(arrays, manifest).metadata
+    {'units': 'V'}
     """
     layers, arrays = _layer_records(net)
     for record, layer in zip(layers, net.layers):
@@ -248,25 +289,26 @@ def save(net: Network, path: str | os.PathLike[str], *, metadata: dict[str, Any]
     if not isinstance(metadata, dict):
         raise ModelFileError(f"metadata must be a dict of JSON values or None, got {type(metadata).__name__}")
     records = [array_record(name, array) for name, array in arrays]
-    digest = _fingerprint_of(net.dtype.name, layers, records)
+    try:
+        check_json(metadata, "metadata")
+    except ArchiveError as exc:
+        raise ModelFileError(str(exc)) from None
     manifest = {
         "format": MODEL_FORMAT,
         "format_version": MODEL_FORMAT_VERSION,
         "tinyprop_version": _tinyprop_version(),
         "dtype": net.dtype.name,
         "n_params": net.n_params,
-        "fingerprint": digest,
+        "fingerprint": _fingerprint_of(net.dtype.name, layers, records),
         "layers": layers,
-        "metadata": metadata,
+        "metadata": _json_copy(metadata),
     }
-    try:
-        check_json(metadata, "metadata")
-        write_archive(path, dict(arrays), manifest)
-    except ModelFileError:
-        raise
-    except ArchiveError as exc:
-        raise ModelFileError(str(exc)) from None
-    return digest
+    return {name: array.copy() for name, array in arrays}, manifest
+
+
+def _json_copy(value: Any) -> Any:
+    """A deep copy of a value that :func:`tinyprop.archive.check_json` accepted."""
+    return json.loads(json.dumps(value, allow_nan=False))
 
 
 def _check_rebuilds(record: dict[str, Any], activation: Activation) -> None:
@@ -336,6 +378,32 @@ def load_model_file(path: str | os.PathLike[str]) -> ModelFile:
         return _model_from(arrays, manifest)
     except ArchiveError as exc:
         raise ModelFileError(f"{os.fspath(path)}: {exc}") from None
+
+
+def model_from_parts(arrays: Mapping[str, np.ndarray], manifest: Mapping[str, Any]) -> ModelFile:
+    """Check ``(arrays, manifest)`` as :func:`load_model_file` checks a file, and rebuild the network.
+
+    The reverse of :func:`model_parts`: ``manifest`` is a model-file manifest
+    without its ``"arrays"`` field, ``arrays`` its arrays by name in layer
+    order (as :func:`tinyprop.archive.read_archive` returns them). Every field,
+    shape, dtype and value is checked and the fingerprint recomputed; the
+    network and metadata are built from copies, so nothing passed in is
+    modified or shared. Raises :class:`ModelFileError` naming what is wrong.
+    """
+    if not isinstance(arrays, Mapping) or not isinstance(manifest, Mapping):
+        raise TypeError(
+            f"arrays and manifest must be dicts, got {type(arrays).__name__} and {type(manifest).__name__}"
+        )
+    copies = {}
+    for name, array in arrays.items():
+        if not isinstance(array, np.ndarray):
+            raise ModelFileError(f"array {name!r} must be a numpy array, found {type(array).__name__}")
+        copies[name] = np.array(array, dtype=array.dtype.newbyteorder("="), order="C")
+    try:
+        check_json(dict(manifest), "the manifest")
+    except ArchiveError as exc:
+        raise ModelFileError(str(exc)) from None
+    return _model_from(copies, _json_copy(dict(manifest)))
 
 
 def _model_from(arrays: dict[str, np.ndarray], manifest: dict[str, Any]) -> ModelFile:
