@@ -105,6 +105,24 @@ def positive_int(value: Any, name: str) -> int:
     return int(value)
 
 
+def real_in_range(
+    value: Any, name: str, *, low: float, high: float = math.inf, low_open: bool = False, high_open: bool = False
+) -> float:
+    """``value`` as a finite ``float`` inside the stated interval, else ``TypeError``/``ValueError``."""
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = None
+    if number is None or isinstance(value, (bool, str, bytes)):
+        raise TypeError(f"{name} must be a real number, got {value!r}")
+    left = "(" if low_open else "["
+    right = ")" if high_open else "]"
+    inside = (number > low if low_open else number >= low) and (number < high if high_open else number <= high)
+    if not math.isfinite(number) or not inside:
+        raise ValueError(f"{name} must be a finite number in {left}{low}, {high}{right}, got {value!r}")
+    return number
+
+
 def seed_value(seed: Any, name: str = "seed") -> int | None:
     """``None`` or a non-negative integer seed for ``numpy.random.default_rng``."""
     if seed is None:

@@ -24,27 +24,9 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from ._validate import positive_int
+from ._validate import positive_int, real_in_range  # real_in_range: also imported from here by check.py and optim.py
 
 __all__ = ["Schedule", "StepSchedule", "ExponentialSchedule", "CosineSchedule", "LinearWarmUp"]
-
-
-def real_in_range(
-    value: Any, name: str, *, low: float, high: float = math.inf, low_open: bool = False, high_open: bool = False
-) -> float:
-    """``value`` as a finite ``float`` inside the stated interval, else ``TypeError``/``ValueError``."""
-    try:
-        number = float(value)
-    except (TypeError, ValueError):
-        number = None
-    if number is None or isinstance(value, (bool, str, bytes)):
-        raise TypeError(f"{name} must be a real number, got {value!r}")
-    left = "(" if low_open else "["
-    right = ")" if high_open else "]"
-    inside = (number > low if low_open else number >= low) and (number < high if high_open else number <= high)
-    if not math.isfinite(number) or not inside:
-        raise ValueError(f"{name} must be a finite number in {left}{low}, {high}{right}, got {value!r}")
-    return number
 
 
 class Schedule:

@@ -39,10 +39,9 @@ from typing import Any
 
 import numpy as np
 
-from ._validate import as_samples, as_targets, positive_int
+from ._validate import as_samples, as_targets, positive_int, real_in_range
 from .losses import SquaredError
 from .network import Network
-from .schedules import real_in_range
 from .uncertainty import ParameterUncertainty, parameter_uncertainty
 
 __all__ = ["solve", "SolveResult", "METHODS"]

@@ -57,12 +57,11 @@ from typing import Any
 
 import numpy as np
 
-from ._validate import as_float_array, as_samples, as_targets, positive_int, seed_value
+from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, seed_value
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
 from .io import fingerprint, load_model_file, save
 from .losses import Loss, MeanSquaredError
 from .network import Network
-from .schedules import real_in_range
 from .train import (
     RECIPE_BATCH_SIZE,
     RECIPE_HIDDEN_UNITS,

@@ -46,13 +46,12 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ._validate import as_float_array, as_samples, as_targets, positive_int, require_finite
+from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, require_finite
 from .activations import Tanh
 from .layers import Affine, Standardize, Unstandardize
 from .losses import Loss, MeanSquaredError
 from .network import Layer, Network
 from .optim import Adam, Optimizer, OptimizerState
-from .schedules import real_in_range
 
 __all__ = [
     "train",

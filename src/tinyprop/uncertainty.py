@@ -71,11 +71,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from ._validate import as_samples, as_targets, require_finite
+from ._validate import as_samples, as_targets, real_in_range, require_finite
 from .activations import Identity, LeakyReLU, ReLU
 from .layers import Affine
 from .network import Network
-from .schedules import real_in_range
 
 if TYPE_CHECKING:
     from .solve import SolveResult
