@@ -1,4 +1,4 @@
-"""Every ```python block in README.md and docs/*.md runs, so the docs cannot rot.
+"""Every ```python block in README.md, DEVELOPERS.md and docs/*.md runs, so the docs cannot rot.
 
 Blocks of one file run in order in one namespace (later blocks may use earlier
 names), in a temporary working directory.
@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
-DOCS = [ROOT / "README.md", *sorted((ROOT / "docs").glob("*.md"))]
+DOCS = [ROOT / "README.md", ROOT / "DEVELOPERS.md", *sorted((ROOT / "docs").glob("*.md"))]
 BLOCK = re.compile(r"^```python\n(.*?)^```", re.S | re.M)
 
 
