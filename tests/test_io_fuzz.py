@@ -13,7 +13,6 @@ import copy
 import json
 import shutil
 import tempfile
-import zipfile
 from pathlib import Path
 from typing import Any
 
@@ -23,8 +22,16 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
-from test_io import Cube, ScaledTanh, assert_same_network, hand_set_network, read_members, write_members
-from tinyprop.archive import ARRAY_DTYPES, ArchiveError, read_archive, write_archive
+from test_io import (
+    Cube,
+    ScaledTanh,
+    assert_archive_round_trip,
+    assert_same_network,
+    hand_set_network,
+    read_members,
+    write_members,
+)
+from tinyprop.archive import ARRAY_DTYPES, ArchiveError, read_archive
 from tinyprop.io import ModelFileError, _fingerprint_of, fingerprint, load, load_model_file, save
 
 GUARD = dict(deadline=5000, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -268,14 +275,7 @@ def named_arrays(draw) -> dict[str, np.ndarray]:
 @settings(max_examples=100, **GUARD)
 @given(named_arrays(), st.dictionaries(st.text(max_size=6).filter(lambda k: k != "arrays"), json_values, max_size=4))
 def test_archive_round_trips_any_allowed_arrays_bit_for_bit(arrays, manifest):
-    path = WORKDIR / "archive.npz"
-    write_archive(path, arrays, manifest)
-    read_arrays, read_manifest = read_archive(path)
-    assert read_manifest == manifest
-    assert list(read_arrays) == list(arrays)
-    for name, array in arrays.items():
-        assert read_arrays[name].dtype == array.dtype and read_arrays[name].shape == array.shape
-        assert read_arrays[name].tobytes() == array.tobytes()  # bit for bit, NaN payloads included
+    assert_archive_round_trip(WORKDIR / "archive.npz", arrays, manifest)  # bit for bit, NaN payloads included
 
 
 @FAST

@@ -66,14 +66,20 @@ def sequential():
 
 
 # ----------------------------------------------------------------------------- the recipe
-def test_recipe_defaults_reproduce_fit_tabular_regression():
-    # the ready recipe is tinyprop's documented default recipe, not a second one
-    net, result = TabularRegression(max_epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y))
-    reference, reference_result = fit_tabular_regression(X, Y, hidden_units=7, seed=3, max_epochs=40)
-    assert [type(layer) for layer in net.layers] == [type(layer) for layer in reference.layers]
-    for p, q in zip(net.params, reference.params):
+def assert_same_run(run, reference) -> None:
+    """Two ``(network, TrainingResult)`` pairs with the same layers, bit-identical weights and the same history."""
+    (net, result), (reference_net, reference_result) = run, reference
+    assert [type(layer) for layer in net.layers] == [type(layer) for layer in reference_net.layers]
+    for p, q in zip(net.params, reference_net.params):
         assert np.array_equal(p, q)
     assert result.history == reference_result.history
+    assert (result.epochs_run, result.best_epoch) == (reference_result.epochs_run, reference_result.best_epoch)
+
+
+def test_recipe_defaults_reproduce_fit_tabular_regression():
+    # the ready recipe is tinyprop's documented default recipe, not a second one
+    assert_same_run(TabularRegression(max_epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y)),
+                    fit_tabular_regression(X, Y, hidden_units=7, seed=3, max_epochs=40))
 
 
 def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
@@ -82,17 +88,12 @@ def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
     defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
     recipe = TabularRegression()
     assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"], defaults["seed"])
-    net, result = recipe({}, TrainingData(X, Y))
-    reference, reference_result = fit_tabular_regression(X, Y)
-    assert result.stop_reason == "early stopping" and result.epochs_run < recipe.max_epochs
-    assert [type(layer) for layer in net.layers] == [type(layer) for layer in reference.layers]
-    for p, q in zip(net.params, reference.params):
-        assert np.array_equal(p, q)
-    assert result.history == reference_result.history
-    assert (result.epochs_run, result.best_epoch) == (reference_result.epochs_run, reference_result.best_epoch)
+    run, reference = recipe({}, TrainingData(X, Y)), fit_tabular_regression(X, Y)
+    assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.max_epochs
+    assert_same_run(run, reference)
     # the comparison can fail: another patience gives another run
     _, other = dataclasses.replace(recipe, patience=recipe.patience // 2)({}, TrainingData(X, Y))
-    assert other.epochs_run != reference_result.epochs_run and other.history != reference_result.history
+    assert other.epochs_run != reference[1].epochs_run and other.history != reference[1].history
 
 
 def test_recipe_refuses_unknown_keys_and_bad_values():

@@ -289,10 +289,6 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     if not isinstance(metadata, dict):
         raise ModelFileError(f"metadata must be a dict of JSON values or None, got {type(metadata).__name__}")
     records = [array_record(name, array) for name, array in arrays]
-    try:
-        check_json(metadata, "metadata")
-    except ArchiveError as exc:
-        raise ModelFileError(str(exc)) from None
     manifest = {
         "format": MODEL_FORMAT,
         "format_version": MODEL_FORMAT_VERSION,
@@ -301,13 +297,17 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
         "n_params": net.n_params,
         "fingerprint": _fingerprint_of(net.dtype.name, layers, records),
         "layers": layers,
-        "metadata": _json_copy(metadata),
+        "metadata": _json_copy(metadata, "metadata"),
     }
     return {name: array.copy() for name, array in arrays}, manifest
 
 
-def _json_copy(value: Any) -> Any:
-    """A deep copy of a value that :func:`tinyprop.archive.check_json` accepted."""
+def _json_copy(value: Any, where: str) -> Any:
+    """A deep copy of a JSON value; :class:`ModelFileError` naming ``where`` if it is not one (:func:`check_json`)."""
+    try:
+        check_json(value, where)
+    except ArchiveError as exc:
+        raise ModelFileError(str(exc)) from None
     return json.loads(json.dumps(value, allow_nan=False))
 
 
@@ -399,11 +399,7 @@ def model_from_parts(arrays: Mapping[str, np.ndarray], manifest: Mapping[str, An
         if not isinstance(array, np.ndarray):
             raise ModelFileError(f"array {name!r} must be a numpy array, found {type(array).__name__}")
         copies[name] = np.array(array, dtype=array.dtype.newbyteorder("="), order="C")
-    try:
-        check_json(dict(manifest), "the manifest")
-    except ArchiveError as exc:
-        raise ModelFileError(str(exc)) from None
-    return _model_from(copies, _json_copy(dict(manifest)))
+    return _model_from(copies, _json_copy(dict(manifest), "the manifest"))
 
 
 def _model_from(arrays: dict[str, np.ndarray], manifest: dict[str, Any]) -> ModelFile:

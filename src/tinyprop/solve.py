@@ -193,15 +193,7 @@ def _levenberg_marquardt(
         residuals, theta0, jac=jacobian, method="lm",
         xtol=tolerance, ftol=tolerance, gtol=tolerance, max_nfev=max_evaluations,
     )
-    counts = {
-        "success": bool(fit.success),
-        "status": int(fit.status),
-        "message": str(fit.message),
-        "iterations": int(fit.njev),
-        "function_evaluations": int(fit.nfev),
-        "jacobian_evaluations": int(fit.njev),
-    }
-    return np.asarray(fit.x, dtype=np.float64), counts
+    return np.asarray(fit.x, dtype=np.float64), _counts(fit, iterations=fit.njev, jacobian_evaluations=fit.njev)
 
 
 def _lbfgs(
@@ -222,12 +214,17 @@ def _lbfgs(
         value_and_gradient, theta0, jac=True, method="L-BFGS-B",
         options={"ftol": 0.0, "gtol": tolerance, "maxfun": max_evaluations, "maxiter": max_evaluations},
     )
-    counts = {
+    # L-BFGS evaluates the gradient with every function value
+    return np.asarray(fit.x, dtype=np.float64), _counts(fit, iterations=fit.nit, jacobian_evaluations=fit.nfev)
+
+
+def _counts(fit: Any, *, iterations: int, jacobian_evaluations: int) -> dict[str, Any]:
+    """scipy's verdict and the evaluation counts of an ``OptimizeResult``, as :class:`SolveResult` fields."""
+    return {
         "success": bool(fit.success),
         "status": int(fit.status),
         "message": str(fit.message),
-        "iterations": int(fit.nit),
+        "iterations": int(iterations),
         "function_evaluations": int(fit.nfev),
-        "jacobian_evaluations": int(fit.nfev),
+        "jacobian_evaluations": int(jacobian_evaluations),
     }
-    return np.asarray(fit.x, dtype=np.float64), counts

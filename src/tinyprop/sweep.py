@@ -350,18 +350,8 @@ class TabularRegression:
 
 
 # ---------------------------------------------------------------- one task (runs in a worker)
-@dataclass(frozen=True)
-class _Outcome:
-    """What one task sends back: the network (``None`` if failed) and the row's numbers."""
-
-    network: Network | None
-    error: str | None
-    validation_loss: float | None
-    test_loss: float | None
-    test_rmse: float | None
-    epochs_run: int | None
-    stop_reason: str | None
-    wall_time: float
+_Outcome = tuple[Network | None, SweepRecord]
+"""What one task sends back: the network (``None`` if failed) and its row, still without fingerprint and model file."""
 
 
 @dataclass(frozen=True)
@@ -385,7 +375,7 @@ def _train_one(recipe: Callable[..., Any], key: str, data: _SweepData | _DataRef
         if data.token not in _INSTALLED:
             raise RuntimeError("this worker holds no sweep data: the pool's initializer did not run in it")
         data = _INSTALLED[data.token]
-    epochs_run = stop_reason = None
+    net = error = epochs_run = stop_reason = validation_loss = test_loss = test_rmse = None
     started = time.perf_counter()
     try:
         net, result = _network_and_result(recipe(json.loads(key), data.training))
@@ -397,10 +387,16 @@ def _train_one(recipe: Callable[..., Any], key: str, data: _SweepData | _DataRef
         test_rmse = None if data.test is None else _rmse(net, data.test)
     except Exception as exc:  # the recipe is user code: anything it raises is this setting's failure
         wall_time = time.perf_counter() - started
+        net, error = None, f"{type(exc).__name__}: {exc}"
+        validation_loss = test_loss = test_rmse = None
         if isinstance(exc, TrainingDiverged):
             epochs_run, stop_reason = exc.result.epochs_run, exc.result.stop_reason
-        return _Outcome(None, f"{type(exc).__name__}: {exc}", None, None, None, epochs_run, stop_reason, wall_time)
-    return _Outcome(net, None, validation_loss, test_loss, test_rmse, epochs_run, stop_reason, wall_time)
+    record = SweepRecord(
+        setting=json.loads(key), key=key, status=STATUS_FAILED if error else STATUS_OK, error=error,
+        validation_loss=validation_loss, test_loss=test_loss, test_rmse=test_rmse, epochs_run=epochs_run,
+        stop_reason=stop_reason, wall_time=wall_time, fingerprint=None, model_file=None,
+    )
+    return net, record
 
 
 def _network_and_result(produced: Any) -> tuple[Network, TrainingResult | None]:
@@ -651,7 +647,7 @@ def sweep(
     results = _outcomes(pending, recipe, data, loss, executor)
     try:
         for done, (index, outcome) in enumerate(results, 1):
-            records[index], networks[index] = _finish(keys[index], outcome, folder)
+            records[index], networks[index] = _finish(outcome, folder)
             if progress:
                 print(f"sweep: {done}/{len(pending)} trained  {_progress_line(records[index])}", file=sys.stderr, flush=True)
     finally:
@@ -681,18 +677,13 @@ def _keys_of(settings: Sequence[Mapping[str, Any]]) -> list[str]:
     return keys
 
 
-def _finish(key: str, outcome: _Outcome, folder: _ResultsFolder | None) -> tuple[SweepRecord, Network | None]:
-    """The row of a finished task; with a folder, its network and then the row are written."""
-    net, error, digest = outcome.network, outcome.error, None
+def _finish(outcome: _Outcome, folder: _ResultsFolder | None) -> tuple[SweepRecord, Network | None]:
+    """The task's row with its network's fingerprint; with a folder, the network is written, then the row."""
+    net, record = outcome
     if net is not None:
         digest = fingerprint(net)
-    model_file = None if folder is None or net is None else folder.save_model(net, key)
-    record = SweepRecord(
-        setting=json.loads(key), key=key, status=STATUS_FAILED if error else STATUS_OK, error=error,
-        validation_loss=outcome.validation_loss, test_loss=outcome.test_loss, test_rmse=outcome.test_rmse,
-        epochs_run=outcome.epochs_run, stop_reason=outcome.stop_reason, wall_time=outcome.wall_time,
-        fingerprint=digest, model_file=model_file,
-    )
+        model_file = None if folder is None else folder.save_model(net, record.key)
+        record = replace(record, fingerprint=digest, model_file=model_file)
     if folder is not None:
         folder.add(record)
     return record, net

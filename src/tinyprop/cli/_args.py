@@ -7,23 +7,13 @@ import math
 
 
 def positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a positive whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a positive whole number, got {value}")
-    return value
+    """A whole number >= 1."""
+    return _whole(text, 1, "a positive whole number")
 
 
 def seed(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, got {value}")
-    return value
+    """A whole number >= 0."""
+    return _whole(text, 0, "a whole number >= 0")
 
 
 def positive_float(text: str) -> float:
@@ -35,17 +25,12 @@ def positive_float(text: str) -> float:
 
 def fraction(text: str) -> float:
     """A number in ``[0, 1)``."""
-    value = _float(text)
-    if not 0.0 <= value < 1.0:
-        raise argparse.ArgumentTypeError(f"expected a fraction from 0 up to (not including) 1, got {text!r}")
-    return value
+    return _below_one(text, "a fraction")
 
 
 def momentum(text: str) -> float:
-    value = _float(text)
-    if not 0.0 <= value < 1.0:
-        raise argparse.ArgumentTypeError(f"expected a momentum from 0 up to (not including) 1, got {text!r}")
-    return value
+    """A number in ``[0, 1)``."""
+    return _below_one(text, "a momentum")
 
 
 def widths(text: str) -> tuple[int, ...]:
@@ -77,4 +62,21 @@ def _float(text: str) -> float:
         raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
     if not math.isfinite(value):
         raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
+    return value
+
+
+def _whole(text: str, lowest: int, expected: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected {expected}, got {text!r}") from None
+    if value < lowest:
+        raise argparse.ArgumentTypeError(f"expected {expected}, got {value}")
+    return value
+
+
+def _below_one(text: str, expected: str) -> float:
+    value = _float(text)
+    if not 0.0 <= value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected {expected} from 0 up to (not including) 1, got {text!r}")
     return value

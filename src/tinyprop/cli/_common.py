@@ -1,4 +1,4 @@
-"""Pieces every subcommand uses: the error type, model loading, JSON files, plots, progress lines."""
+"""Pieces every subcommand uses: the error type, model and CSV loading, JSON files, plots, progress lines."""
 
 from __future__ import annotations
 
@@ -10,9 +10,12 @@ import time
 from pathlib import Path
 from typing import Any, Callable, TextIO
 
+import numpy as np
+
+from ..csvdata import CsvError, CsvTable, read_csv
 from ..io import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
-from ..train import EpochInfo
+from ..train import EpochInfo, _is_terminal  # the training loop's own test for a terminal
 
 USAGE = 2  # exit status: the command line is wrong
 FAILURE = 1  # exit status: a file, the data or the computation failed
@@ -51,6 +54,34 @@ def read_model(path: str) -> ModelFile:
         raise CommandError(describe_os_error(exc)) from None
     except ValueError as exc:  # ModelFileError: unreadable, tampered or not a model file
         raise CommandError(f"cannot use the model file: {exc}") from None
+
+
+def read_table(path: str, delimiter: str) -> CsvTable:
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`), turning every problem into a one-line :class:`CommandError`."""
+    try:
+        return read_csv(path, delimiter=delimiter)
+    except OSError as exc:
+        raise CommandError(describe_os_error(exc)) from None
+    except CsvError as exc:
+        raise CommandError(str(exc)) from None
+    except ValueError as exc:  # a --delimiter that cannot be used
+        raise CommandError(f"--delimiter: {exc}", USAGE) from None
+
+
+def require_columns(table: CsvTable, names: list[str], what: str) -> None:
+    """:meth:`CsvTable.require_columns`, a missing column being a command-line mistake."""
+    try:
+        table.require_columns(names, what)
+    except CsvError as exc:
+        raise CommandError(str(exc), USAGE) from None
+
+
+def numeric_columns(table: CsvTable, inputs: list[str], targets: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """``(X, Y)``: the input and target columns as float64 arrays; a cell that is not a number fails the command."""
+    try:
+        return table.numeric(inputs), table.numeric(targets)
+    except CsvError as exc:
+        raise CommandError(str(exc)) from None
 
 
 def output_folder(path: str | os.PathLike[str]) -> Path:
@@ -154,10 +185,3 @@ class EpochProgress:
             self.stream.write("\n")
             self.stream.flush()
             self.open_line = False
-
-
-def _is_terminal(stream: TextIO) -> bool:
-    try:
-        return bool(stream.isatty())
-    except (AttributeError, ValueError):
-        return False

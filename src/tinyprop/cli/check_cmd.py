@@ -23,12 +23,11 @@ import sys
 import numpy as np
 
 from ..check import check_gradient
-from ..csvdata import CsvError, read_csv
 from ..layers import Standardize, Unstandardize
 from ..losses import MeanSquaredError
 from ..network import Network
 from . import _args
-from ._common import USAGE, CommandError, describe_os_error, read_model
+from ._common import USAGE, CommandError, numeric_columns, read_model, read_table, require_columns
 
 HELP = "check a saved model's gradient against numerical differentiation (exit 1 if it fails)"
 EPILOG = """rows without --data, drawn with numpy.random.default_rng(SEED):
@@ -103,22 +102,11 @@ def _rows_from_csv(
         if len(names) != width:
             raise CommandError(f"the model has {width} {option[2:]}, but {labels[option]} name {len(names)} "
                                f"columns: {', '.join(names)}", USAGE)
-    try:
-        table = read_csv(args.data, delimiter=args.delimiter)
-        for option, names in (("--inputs", inputs), ("--targets", targets)):
-            try:
-                table.require_columns(names, labels[option])
-            except ValueError as exc:
-                raise CommandError(str(exc), USAGE) from None
-        chosen = np.sort(rng.choice(len(table.rows), size=min(args.rows, len(table.rows)), replace=False))
-        subset = table.subset(chosen.tolist())
-        return subset.numeric(inputs), subset.numeric(targets)
-    except OSError as exc:
-        raise CommandError(describe_os_error(exc)) from None
-    except CsvError as exc:
-        raise CommandError(str(exc)) from None
-    except ValueError as exc:  # a --delimiter that cannot be used
-        raise CommandError(f"--delimiter: {exc}", USAGE) from None
+    table = read_table(args.data, args.delimiter)
+    for option, names in (("--inputs", inputs), ("--targets", targets)):
+        require_columns(table, names, labels[option])
+    chosen = np.sort(rng.choice(len(table.rows), size=min(args.rows, len(table.rows)), replace=False))
+    return numeric_columns(table.subset(chosen.tolist()), inputs, targets)
 
 
 def _stored_names(metadata: dict, key: str) -> list[str] | None:

@@ -10,10 +10,21 @@ import time
 from pathlib import Path
 from typing import Any
 
-from ..csvdata import CsvError, CsvTable, read_csv
+from ..csvdata import CsvTable
 from ..io import save
 from . import _args
-from ._common import USAGE, CommandError, EpochProgress, describe_os_error, output_folder, write_json, write_plots
+from ._common import (
+    USAGE,
+    CommandError,
+    EpochProgress,
+    describe_os_error,
+    numeric_columns,
+    output_folder,
+    read_table,
+    require_columns,
+    write_json,
+    write_plots,
+)
 from ._fit import (
     ACTIVATIONS,
     architecture,
@@ -165,19 +176,9 @@ def _settings(args: argparse.Namespace) -> FitSettings:
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
-    try:
-        table = read_csv(args.data, delimiter=args.delimiter)
-    except OSError as exc:
-        raise CommandError(describe_os_error(exc)) from None
-    except CsvError as exc:
-        raise CommandError(str(exc)) from None
-    except ValueError as exc:  # a --delimiter that cannot be used
-        raise CommandError(f"--delimiter: {exc}", USAGE) from None
+    table = read_table(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
-    try:
-        X, Y = table.numeric(inputs), table.numeric(targets)
-    except CsvError as exc:
-        raise CommandError(str(exc)) from None
+    X, Y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
     return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
@@ -188,10 +189,7 @@ def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> t
         repeated = sorted({n for n in names if names.count(n) > 1})
         if repeated:
             raise CommandError(f"{option} names {', '.join(map(repr, repeated))} more than once", USAGE)
-        try:
-            table.require_columns(names, option)
-        except CsvError as exc:
-            raise CommandError(str(exc), USAGE) from None
+        require_columns(table, names, option)
     if inputs is None:
         inputs = [name for name in table.columns if name not in targets]
         if not inputs:
