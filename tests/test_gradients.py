@@ -186,3 +186,20 @@ def test_workspace_trace_serves_one_backward_and_is_invalidated_by_the_next_forw
         net.forward(np.ones((5, 3)), workspace=work)
     with pytest.raises(TypeError, match="this network"):
         tp.build_mlp([3, 5, 1]).forward(X, workspace=work)
+
+
+@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.Sigmoid(), tp.ReLU(), tp.LeakyReLU(0.1), tp.Softplus(), tp.Identity()], ids=repr)
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_workspace_row_blocks_cover_large_batches(hidden, dtype):
+    """A batch spanning many ~256 KiB row blocks gives the plain path's gradients."""
+    net = tp.build_mlp([5, 96, 64, 2], hidden=hidden, seed=1, dtype=dtype)
+    X = np.random.default_rng(2).normal(size=(2500, 5))
+    work = net.workspace(2500)
+    assert len(work.row_blocks(2500, 96)) > 3
+    out, trace = net.forward(X)
+    grads, _ = net.backward(trace, out)
+    out_w, trace_w = net.forward(X, workspace=work)
+    grads_w, _ = net.backward(trace_w, out_w)
+    tol = 1e-12 if dtype == np.float64 else 1e-5
+    for g, g_w in zip(grads, grads_w):
+        np.testing.assert_allclose(g_w, g, rtol=tol, atol=tol * np.abs(g).max())

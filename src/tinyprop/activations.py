@@ -16,7 +16,9 @@ Every built-in derivative is written in terms of the output ``a`` alone. That
 lets a training workspace (:class:`tinyprop.Workspace`) evaluate a built-in
 activation in place over its pre-activation buffer and, in the backward
 pass, turn the stored output into ``f'(z) * delta`` in that same buffer
-(``_value_in_place`` / ``_delta_in_place``, same formulas, no new arrays).
+(``_value_in_place`` / ``_delta_in_place``, same formulas, no new arrays;
+``_delta_in_place(a, delta)`` leaves ``f'(z) * delta`` in ``a`` and may
+overwrite ``delta``).
 Custom activations keep ``z`` and ``a`` in separate arrays and need neither.
 """
 
@@ -225,7 +227,8 @@ class Identity(Activation):
         return z
 
     def _delta_in_place(self, a: np.ndarray, delta: np.ndarray) -> np.ndarray:
-        return delta
+        np.copyto(a, delta)
+        return a
 
 
 _IN_PLACE = (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity)

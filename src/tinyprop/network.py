@@ -250,7 +250,10 @@ class Network:
                 out = None if work is None else work.scratch(delta.shape[0], layer.n_in)
                 delta = np.matmul(delta, layer.weight, out=out)  # delta_x = delta_z W
             elif kind is _ACTIVATION_IN_PLACE and work is not None:
-                delta = layer._delta_in_place(values[i + 1], delta)  # f'(z) * delta, in a's memory
+                a = values[i + 1]
+                for rows in work.row_blocks(*a.shape):
+                    layer._delta_in_place(a[rows], delta[rows])  # f'(z) * delta, into a's memory
+                delta = a
             elif kind is _SCALING:
                 delta = layer.input_gradient(delta)
             else:

@@ -11,7 +11,9 @@ the same size. A :class:`Workspace` holds, allocated once:
 With it, a training step allocates no large arrays: the backward pass turns
 each stored activation ``a`` into ``f'(z) * delta`` in its own memory (the
 built-in derivatives need only ``a``) once the affine layer above has used
-``a`` for its weight gradient. The price is that a trace made with a
+``a`` for its weight gradient. That derivative takes several elementwise
+passes; they run over row blocks of about 256 KiB (:meth:`Workspace.row_blocks`)
+so that a large batch goes through memory once instead of once per pass. The price is that a trace made with a
 workspace serves exactly one ``backward`` call, and the next ``forward`` with
 the same workspace overwrites it; both misuses raise an error.
 
@@ -39,6 +41,8 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = ["Workspace"]
 
+_BLOCK_BYTES = 256 * 1024
+
 
 class Workspace:
     """Arrays for batches of up to ``max_rows`` samples of ``network``; see the module docstring."""
@@ -60,6 +64,11 @@ class Workspace:
     def output(self, layer_index: int, rows: int, width: int) -> np.ndarray:
         """The ``(rows, width)`` output array of affine layer ``layer_index`` (contiguous)."""
         return self._outputs[layer_index][: rows * width].reshape(rows, width)
+
+    def row_blocks(self, rows: int, width: int) -> list[slice]:
+        """Row ranges of about 256 KiB each, for elementwise passes that stay in cache."""
+        step = max(1, _BLOCK_BYTES // (width * self.network.dtype.itemsize))
+        return [slice(start, start + step) for start in range(0, rows, step)]
 
     def scratch(self, rows: int, width: int) -> np.ndarray:
         """A ``(rows, width)`` array for the delta passed down through an affine layer."""
