@@ -56,12 +56,11 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ._validate import as_samples, as_targets, kind_of
+from ._validate import as_samples, as_targets, kind_of, real_in_range
 from .activations import Activation
 from .layers import Affine
 from .losses import Loss
 from .network import Network, Trace
-from .schedules import real_in_range
 
 __all__ = [
     "check_gradient",

@@ -33,14 +33,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .schedules import (
-    CosineSchedule,
-    ExponentialSchedule,
-    LinearWarmUp,
-    Schedule,
-    StepSchedule,
-    real_in_range,
-)
+from ._validate import real_in_range
+from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 
 __all__ = ["Optimizer", "OptimizerState", "SGD", "RMSProp", "Adam", "optimizer_from_state"]
 

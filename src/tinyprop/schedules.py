@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from ._validate import positive_int, real_in_range  # real_in_range: also imported from here by check.py and optim.py
+from ._validate import positive_int, real_in_range
 
 __all__ = ["Schedule", "StepSchedule", "ExponentialSchedule", "CosineSchedule", "LinearWarmUp"]
 
