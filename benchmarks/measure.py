@@ -53,14 +53,19 @@ def _synthetic(rows: int, n_in: int, dtype: Any, seed: int = 0) -> tuple[np.ndar
 
 
 def _training_step(net: tp.Network, optimizer: Any, X: np.ndarray, y: np.ndarray) -> Callable[[], None]:
-    """tinyprop's public-API step: forward, loss gradient, backward, update."""
+    """tinyprop's public-API step: forward, loss gradient, backward, update.
+
+    The optimizer updates the network's flat parameter vector from the
+    workspace's flat gradient vector (every array at once), as ``tp.train`` does.
+    """
     loss = tp.MeanSquaredError()
     work = net.workspace(X.shape[0])
+    params, grads = [net.vector], [work.grad_vector]
 
     def step() -> None:
         out, trace = net.forward(X, workspace=work)
-        grads, _ = net.backward(trace, loss.gradient(out, y), need_input=False)
-        optimizer.update(net.params, grads)
+        net.backward(trace, loss.gradient(out, y), need_input=False)
+        optimizer.update(params, grads)
 
     return step
 

@@ -203,3 +203,22 @@ def test_workspace_row_blocks_cover_large_batches(hidden, dtype):
     tol = 1e-12 if dtype == np.float64 else 1e-5
     for g, g_w in zip(grads, grads_w):
         np.testing.assert_allclose(g_w, g, rtol=tol, atol=tol * np.abs(g).max())
+
+
+def test_params_are_views_of_the_flat_vector_and_relink_after_assignment():
+    net = tp.build_mlp([3, 4, 2], seed=1)
+    vector = net.vector
+    assert all(p.base is vector for p in net.params)
+    vector[0] = 7.0
+    assert net.layers[0].weight[0, 0] == 7.0
+    net.layers[2].weight = np.full((2, 4), 0.5)  # replaced by assignment, not in place
+    np.testing.assert_array_equal(net.get_vector()[-10:-2], 0.5)
+    assert all(p.base is net.vector for p in net.params)
+    work = net.workspace(5)
+    assert all(g.base is work.grad_vector for g in work.grads)
+    opt = tp.SGD(0.1)
+    before = net.get_vector()
+    out, trace = net.forward(np.ones((5, 3)), workspace=work)
+    grads, _ = net.backward(trace, out, need_input=False)
+    opt.update([net.vector], [work.grad_vector])  # one update of every array
+    np.testing.assert_allclose(net.get_vector(), before - 0.1 * np.concatenate([g.ravel() for g in grads]), rtol=1e-15)

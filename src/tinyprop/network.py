@@ -112,6 +112,8 @@ class Network:
                 layer.gain = layer.gain.astype(self.dtype)
                 layer.offset = layer.offset.astype(self.dtype)
         self._affine = [layer for layer in self.layers if isinstance(layer, Affine)]
+        self._vector = np.empty(sum(p.size for p in self.params), dtype=self.dtype)
+        self._link_vector()
         self._first_affine = next(i for i, layer in enumerate(self.layers) if isinstance(layer, Affine))
         self._plan = tuple(
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
@@ -129,21 +131,43 @@ class Network:
 
     @property
     def n_params(self) -> int:
-        return sum(p.size for p in self.params)
+        return int(self._vector.size)
+
+    @property
+    def vector(self) -> np.ndarray:
+        """All parameters as one live flat array; :attr:`params` are views into it.
+
+        An optimizer can update it in one go, ``opt.update([net.vector],
+        [work.grad_vector])``, instead of array by array. (If a layer's array
+        was replaced by assignment, the vector is re-linked to it first.)
+        """
+        if not all(p.base is self._vector for p in self.params):
+            self._link_vector()
+        return self._vector
+
+    def _link_vector(self) -> None:
+        """Copy every parameter array into ``_vector`` and make the layers hold views of it."""
+        start = 0
+        for layer in self._affine:
+            for name in ("weight", "bias"):
+                array = getattr(layer, name)
+                if array is None:
+                    continue
+                view = self._vector[start:start + array.size].reshape(array.shape)
+                view[...] = array
+                setattr(layer, name, view)
+                start += array.size
 
     def get_vector(self) -> np.ndarray:
         """All parameters as one new flat vector, in the order of :attr:`params`."""
-        return np.concatenate([p.ravel() for p in self.params])
+        return self.vector.copy()
 
     def set_vector(self, theta: Any) -> None:
         """Copy a flat vector into the live parameter arrays (which keep their identity)."""
         theta = as_float_array(theta, "theta", self.dtype)
         if theta.shape != (self.n_params,):
             raise ValueError(f"theta must have shape ({self.n_params},), got shape {theta.shape}")
-        start = 0
-        for p in self.params:
-            p[...] = theta[start:start + p.size].reshape(p.shape)
-            start += p.size
+        self.vector[...] = theta
 
     # ----------------------------------------------------------------- forward
     def predict(self, X: Any) -> np.ndarray:

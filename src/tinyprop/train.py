@@ -7,7 +7,9 @@ One epoch of :func:`train`:
    forward pass, loss ``E_batch``, backward pass (``need_input=False``), the
    optional L2 term ``l2 * W`` added to every weight-matrix gradient (the
    gradient of ``l2/2 * sum ||W||_F**2``; biases are not penalised), then
-   ``optimizer.update(net.params, grads)``;
+   one optimizer update of all parameters at once,
+   ``optimizer.update([net.vector], [workspace.grad_vector])`` (the flat
+   vectors of which ``net.params`` and the gradients are views);
 3. record the training loss (``loss`` over all training rows, with the
    weights at the end of the epoch, without the L2 term) and, when given,
    the validation loss on the validation rows;
@@ -509,7 +511,7 @@ class _Run:
         }
         self.params = net.params
         self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
-        self.backup = [np.empty_like(p) for p in self.params]
+        self.backup = np.empty_like(net.vector)
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
@@ -632,14 +634,14 @@ class _Run:
             for g, p, is_weight in zip(grads, self.params, self.is_weight):
                 if is_weight:
                     g += self.l2 * p
-        squared_norm = sum(float(np.vdot(g, g)) for g in grads)
+        vector, grad_vector = self.net.vector, self.work.grad_vector  # grads are views of grad_vector
+        squared_norm = float(np.vdot(grad_vector, grad_vector))
         if not math.isfinite(squared_norm):
             return f"the squared gradient norm is {squared_norm}"
-        for saved, p in zip(self.backup, self.params):
-            np.copyto(saved, p)
-        self.optimizer.update(self.params, grads)
-        if not all(np.isfinite(p).all() for p in self.params):
-            _copy_into(self.params, self.backup, "backup")
+        np.copyto(self.backup, vector)
+        self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
+        if not np.isfinite(vector).all():
+            np.copyto(vector, self.backup)
             return "the update made a weight non-finite (the weights before it were restored)"
         return None
 

@@ -6,7 +6,9 @@ the same size. A :class:`Workspace` holds, allocated once:
 - one output array per affine layer (a built-in activation then overwrites
   its input with its output, in place, so ``z`` and ``a`` share memory);
 - one scratch array for ``delta W``, the delta handed to the layer below;
-- one gradient array per parameter array.
+- one gradient array per parameter array, all views into one flat
+  ``grad_vector`` aligned with ``network.vector`` (so an optimizer can update
+  every parameter with one call per operation).
 
 With it, a training step allocates no large arrays: the backward pass turns
 each stored activation ``a`` into ``f'(z) * delta`` in its own memory (the
@@ -58,7 +60,14 @@ class Workspace:
         }
         widest_input = max(layer.n_in for layer in network.layers if isinstance(layer, Affine))
         self._scratch = np.empty(self.max_rows * widest_input, dtype)
-        self.grads = [np.empty_like(p) for p in network.params]
+        self.grad_vector = np.empty(network.n_params, dtype)
+        """All gradients as one flat array, aligned with ``network.vector``."""
+        self.grads = []
+        """The gradient arrays, aligned with ``network.params`` (views into :attr:`grad_vector`)."""
+        start = 0
+        for p in network.params:
+            self.grads.append(self.grad_vector[start:start + p.size].reshape(p.shape))
+            start += p.size
         self.generation = 0
 
     def output(self, layer_index: int, rows: int, width: int) -> np.ndarray:
