@@ -9,12 +9,17 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
+import subprocess
 import sys
 from typing import Any
 
 import numpy as np
 
 from . import measure
+
+_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+_THREADS_SET = "TINYPROP_BENCH_THREADS"
 
 BARS = {
     "floor": 1.20,
@@ -52,7 +57,8 @@ def table(results: dict[str, Any]) -> str:
     m = results["machine"]
     lines = [
         f"tinyprop {m['tinyprop']} benchmark{' (quick smoke run: figures not meaningful)' if results['quick'] else ''}",
-        f"machine: {m['cpu']}, {m['cores']} cores, Python {m['python']}, numpy {m['numpy']}, BLAS {m['blas']}",
+        f"machine: {m['cpu']}, {m['cores']} cores, Python {m['python']}, numpy {m['numpy']}, BLAS {m['blas']}"
+        f", BLAS threads: {m.get('blas_threads', 'default')}",
         "",
         f"{'figure':<46} {'measured':>12} {'ratio':>8} {'bar':>10}",
     ]
@@ -88,8 +94,20 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="tinyprop bench", description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="seconds-long smoke run (figures not meaningful)")
     parser.add_argument("--json", metavar="PATH", help="also write the results as JSON to PATH")
+    parser.add_argument(
+        "--threads", type=int, metavar="N",
+        help="BLAS threads (set before numpy starts, so the benchmark runs in a fresh process); default: BLAS's own choice",
+    )
     args = parser.parse_args(argv)
+    if args.threads is not None and os.environ.get(_THREADS_SET) != str(args.threads):
+        if args.threads < 1:
+            parser.error(f"--threads must be a positive integer, got {args.threads}")
+        variables = {name: str(args.threads) for name in _THREAD_VARIABLES}
+        env = {**os.environ, **variables, _THREADS_SET: str(args.threads)}
+        again = [sys.executable, "-m", "tinyprop.benchmarks", *(argv if argv is not None else sys.argv[1:])]
+        return subprocess.run(again, env=env, check=False).returncode
     results = run(quick=args.quick)
+    results["machine"]["blas_threads"] = os.environ.get(_THREADS_SET, "default")
     print(table(results))
     if args.json:
         with open(args.json, "w", encoding="utf-8") as handle:

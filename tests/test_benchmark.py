@@ -24,3 +24,9 @@ def test_table_marks_a_missing_compiler():
     results = run(quick=True)
     results["inference"]["c_s"] = None
     assert "no compiler" in table(results)
+
+
+def test_threads_option_reruns_with_the_blas_thread_count(tmp_path):
+    path = tmp_path / "bench.json"
+    assert main(["--quick", "--threads", "1", "--json", str(path)]) == 0
+    assert json.loads(path.read_text())["machine"]["blas_threads"] == "1"

@@ -10,10 +10,12 @@ HELP = "run the bundled speed and memory benchmark (a few minutes; --quick for a
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--quick", action="store_true", help="seconds-long smoke run (figures not meaningful)")
     parser.add_argument("--json", metavar="PATH", help="also write the results as JSON to PATH")
+    parser.add_argument("--threads", type=int, metavar="N", help="BLAS threads (default: BLAS's own choice)")
 
 
 def run(args: argparse.Namespace) -> int:
     from ..benchmarks import main
 
     argv = (["--quick"] if args.quick else []) + (["--json", args.json] if args.json else [])
+    argv += ["--threads", str(args.threads)] if args.threads is not None else []
     return int(main(argv))
