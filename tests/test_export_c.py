@@ -135,10 +135,10 @@ BUILT_IN = st.one_of(
 
 
 @st.composite
-def networks(draw, max_depth: int = 5) -> tuple[tp.Network, np.ndarray]:
+def networks(draw, max_depth: int = 5, max_width: int = 7) -> tuple[tp.Network, np.ndarray]:
     """Synthetic: 1-5 affine layers of width 1-7, any built-in activations, optional scalings."""
     depth = draw(st.integers(1, max_depth))
-    widths = draw(st.lists(st.integers(1, 7), min_size=depth + 1, max_size=depth + 1))
+    widths = draw(st.lists(st.integers(1, max_width), min_size=depth + 1, max_size=depth + 1))
     rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
 
     def scaling(kind, width):
@@ -178,6 +178,18 @@ def test_compiled_export_matches_predict(dtype, case):
 @settings(max_examples=200, deadline=None)
 @given(case=networks())
 def test_compiled_export_matches_predict_many(dtype, case):
+    net, X = case
+    check_agreement(net, X, dtype)
+
+
+@needs_cc
+@pytest.mark.parametrize("dtype", ["float64", "float32"])
+@settings(max_examples=6, deadline=None)
+@given(case=networks(max_depth=3, max_width=40))
+def test_wide_layers_match_predict(dtype, case):
+    # Widths up to 40 reach every shape of the generated sums (one to three statements
+    # of up to four products, and the loop over j from 13 inputs on) and pre-activations
+    # far beyond the float tanh's clamp at 9.5.
     net, X = case
     check_agreement(net, X, dtype)
 
@@ -230,6 +242,126 @@ def test_float32_export_of_cancelling_standardize(dtype):
     check_agreement(net, X, dtype)
 
 
+@needs_cc
+@pytest.mark.parametrize("n_in", [1, 3, 4, 5, 8, 9, 12, 13, 16, 17])
+def test_affine_sums_in_index_order(tmp_path, n_in):
+    # The generated sum for unit k is 0 + w[0] x[0] + w[1] x[1] + ... + b, in this order,
+    # whatever the grouping of its statements. Inputs 1, 2^-24, 2^-24, ... (float32):
+    # in order, each 1 + 2^-24 rounds back to 1 (ties to even), so the sum stays 1 and
+    # the bias -1 gives exactly 0; any other order would first add the small terms.
+    weight = np.ones((2, n_in))
+    net = tp.Network([tp.Affine(n_in, 2)], init=None)
+    net.set_vector(np.concatenate([weight.ravel(), [-1.0, 0.0]]))
+    x = np.full((1, n_in), 2.0 ** -24)
+    x[0, 0] = 1.0
+    in_order = np.float32(1.0)
+    for value in x[0, 1:].astype(np.float32):
+        in_order = np.float32(in_order + value)
+    y, _ = run_c(net, x, tmp_path, dtype="float32")
+    assert y[0, 0] == np.float32(in_order - np.float32(1.0)) == 0.0
+    assert y[0, 1] == in_order  # the unit without the -1 bias: the same sum, bias 0
+
+
+# ----------------------------------------------------------------------------- float tanh
+TANH_DRIVER = r"""
+#include <math.h>
+#include <stdio.h>
+#include <string.h>
+#include "model.c"
+
+/* float ulp of t > 0 (round to nearest): 2^(e - 24) for t in [2^(e-1), 2^e), 2^-149 below 2^-126 */
+static double float_ulp(double t)
+{
+    int e;
+    if (t < 0x1p-126) {
+        return 0x1p-149;
+    }
+    (void)frexp(t, &e);
+    return ldexp(1.0, e - 24);
+}
+
+int main(void)
+{
+    unsigned long bits;
+    double worst = 0.0, worst_at = 0.0;
+    long above_two = 0, broken = 0;
+    const float inf = (float)HUGE_VAL;
+    float x, y, y_minus, minus_x, special;
+    for (bits = 0; bits < 0x7f800000ul; bits += STRIDE) {
+        const unsigned int pattern = (unsigned int)bits;
+        double error;
+        memcpy(&x, &pattern, sizeof x);
+        model_predict(&x, &y);
+        error = fabs((double)y - tanh((double)x)) / float_ulp(tanh((double)x));
+        if (error > worst) {
+            worst = error;
+            worst_at = x;
+        }
+        above_two += error > 2.0;
+        minus_x = -x;
+        model_predict(&minus_x, &y_minus);
+        broken += (x > 0.0f && y_minus != -y) || y > 1.0f || (x >= 9.5f && y != 1.0f);
+    }
+    x = inf;
+    model_predict(&x, &y);
+    broken += y != 1.0f;
+    x = -inf;
+    model_predict(&x, &y);
+    broken += y != -1.0f;
+    special = (float)(HUGE_VAL - HUGE_VAL);
+    model_predict(&special, &y);
+    broken += y == y;
+    printf("%.6f %a %ld %ld\n", worst, worst_at, above_two, broken);
+    return 0;
+}
+"""
+
+
+def float_tanh_errors(directory: Path, stride: int) -> tuple[float, float, int, int]:
+    """Run the float32 export of tanh at every ``stride``-th float >= 0 (all bit patterns in order).
+
+    Returns the largest error in ulps against the C library's double ``tanh``,
+    where it occurs, the number of inputs with an error above 2 ulp, and the
+    number of failed exact checks (odd symmetry, |tanh| <= 1, exactly 1 from the clamp at 9.5
+    on, +-inf -> +-1, NaN -> NaN).
+    """
+    net = tp.Network([tp.Affine(1, 1), tp.Tanh()], init=None)
+    net.set_vector([1.0, 0.0])  # z = 0 + 1 * x + 0 = x exactly
+    export_c(net, directory, dtype="float32")
+    build = subprocess.run([CC, *CFLAGS, f"-DSTRIDE={stride}ul", "-x", "c", "-", "-o", "tanh_check", "-lm"],
+                           input=TANH_DRIVER, cwd=directory, capture_output=True, text=True)
+    assert build.returncode == 0, build.stderr
+    out = subprocess.run([str(directory / "tanh_check")], capture_output=True, text=True, check=True).stdout
+    worst, at, above_two, broken = out.split()
+    return float(worst), float.fromhex(at), int(above_two), int(broken)
+
+
+@needs_cc
+def test_float_tanh_on_a_sample_of_all_inputs(tmp_path):
+    # Reference: the C library's double tanh, whose own error (a few units of 2^-53) is
+    # negligible against a float ulp. Every 4093rd bit pattern: about 520,000 inputs.
+    worst, _, above_two, broken = float_tanh_errors(tmp_path, 4093)
+    assert broken == 0
+    assert worst <= 2.06 and above_two <= 2  # the claim in the generated code and the docs
+
+
+@needs_cc
+@pytest.mark.slow
+def test_float_tanh_at_every_input(tmp_path):
+    # All 2^31 - 2^23 finite floats >= 0 (and their negatives); about two and a half minutes.
+    worst, at, above_two, broken = float_tanh_errors(tmp_path, 1)
+    assert broken == 0
+    assert worst <= 2.06 and above_two <= 2, (worst, float(at).hex(), above_two)  # measured: 2.055 at 1.4018
+
+
+def test_float_code_calls_no_tanhf_and_double_code_calls_tanh(tmp_path):
+    net = tp.build_mlp([3, 5, 1], seed=0)
+    export_c(net, tmp_path, dtype="float32")
+    assert "tanhf(" not in (tmp_path / "model.c").read_text()
+    export_c(net, tmp_path, dtype="float64")
+    assert "return tanh(z);" in (tmp_path / "model.c").read_text()
+
+
 # ----------------------------------------------------------------------------- constants
 @needs_cc
 @pytest.mark.parametrize("literals", ["decimal", "hex"])
@@ -243,7 +375,8 @@ def test_every_constant_converts_exactly(tmp_path, dtype, literals):
     net.set_vector(values[: net.n_params])
     export_c(net, tmp_path, dtype=dtype, literals=literals)
     ctype = CTYPE[dtype]
-    # Including model.c gives the driver the static arrays; it prints them back bit-exactly.
+    # Including model.c gives the driver the static arrays; it prints them back bit-exactly,
+    # unit by unit as in Affine.weight (the C array is stored transposed: weight[j][k]).
     driver = """#include <stdio.h>
 #include "model.c"
 int main(void)
@@ -251,7 +384,7 @@ int main(void)
     int j, k;
     for (k = 0; k < 7; ++k) {
         for (j = 0; j < 7; ++j) {
-            printf("%a\\n", (double)model_weight_0[k][j]);
+            printf("%a\\n", (double)model_weight_0[j][k]);
         }
     }
     for (k = 0; k < 7; ++k) {
@@ -403,7 +536,7 @@ def test_custom_activation_with_expression(tmp_path, dtype):
     u = np.finfo(dtype).eps / 2
     bound = agreement_bound(inner, X, dtype=dtype) + 2 * 2 * u * np.abs(reference)
     assert np.all(np.abs(y - reference) <= 1.01 * bound)
-    assert "static " + CTYPE[dtype] + " model_custom(" in (tmp_path / "model.c").read_text()
+    assert "static inline " + CTYPE[dtype] + " model_custom(" in (tmp_path / "model.c").read_text()
 
 
 def test_custom_activation_without_expression_is_refused(tmp_path):

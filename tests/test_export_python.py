@@ -105,6 +105,19 @@ def test_python_and_c_float64_exports_agree_bit_for_bit(case):
     np.testing.assert_array_equal(y_python, y_c)
 
 
+@needs_cc
+@settings(max_examples=5, deadline=None)
+@given(case=networks(max_depth=3, max_width=40))
+def test_wide_python_and_c_float64_exports_agree_bit_for_bit(case):
+    # Widths up to 40: the C sums are split into statements of four products and a loop
+    # over j, still in index order, so they must still match Python's running sum exactly.
+    net, X = case
+    with tempfile.TemporaryDirectory() as tmp:
+        y_c, _ = run_c(net, X, Path(tmp), dtype="float64")
+    y_python = check_python_agreement(net, X)
+    np.testing.assert_array_equal(y_python, y_c)
+
+
 def test_float32_network_is_computed_in_binary64(tmp_path):
     net = tp.build_mlp([3, 4, 2], hidden=tp.Sigmoid(), seed=1, dtype=np.float32)
     X = np.random.default_rng(2).normal(size=(5, 3))

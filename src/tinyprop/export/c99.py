@@ -10,7 +10,21 @@ The generated code:
 - reads ``x`` only before it writes ``y``, so ``x`` and ``y`` may be the same array;
 - performs the operations of ``Network.predict`` in the same form (see
   :mod:`tinyprop.export._plan` and :mod:`tinyprop.export._activations`), each
-  affine sum in index order with the bias added last;
+  affine sum in index order with the bias added last, except that ``float``
+  code evaluates tanh with arithmetic alone, to within 2.06 ulp, instead of
+  calling ``tanhf``;
+- is laid out so that a compiler can vectorise it without reordering any
+  floating-point operation: each weight matrix is stored transposed
+  (``weight[j][k]`` connects input ``j`` to unit ``k``) and the loops over the
+  units ``k`` are innermost, so unit ``k``'s sum still runs over ``j = 0, 1,
+  ...`` in order while consecutive units sit side by side in memory; each
+  statement adds four terms (in order) to cut the round trips through memory;
+  loop bounds are constants; activation functions are ``static inline``. GCC 12
+  at ``-O2`` (x86-64) vectorises a loop over a layer's units when the width is a
+  multiple of the vector length (4 floats or 2 doubles) and the body calls no
+  library function and computes nothing conditionally (LeakyReLU's ``z *
+  slope`` is conditional); for example every 32-unit loop of an 8-32-32-1 tanh
+  network in float;
 - writes every constant so that it converts back to exactly the stored value:
   ``repr`` (shortest round trip) for double and 9 significant digits for float
   (decimal, the default, exact with any correctly rounding compiler such as
@@ -26,7 +40,7 @@ from typing import Any, Callable, Mapping
 import numpy as np
 
 from ..network import Network
-from ._activations import activation_kind, c_body, function_names
+from ._activations import activation_kind, c_body, c_input_limit, function_names
 from ._header import Provenance, header_lines, provenance
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan
 from ._text import check_metadata, check_name, comment_text, output_directory, write_source
@@ -37,6 +51,7 @@ _CTYPES = {np.dtype(np.float32): "float", np.dtype(np.float64): "double"}
 _LITERALS = ("decimal", "hex")
 _INT_MAX = 32767  # the least INT_MAX a C99 compiler may have (5.2.4.2.1): loop indices are int
 _PER_LINE = 4
+_TERMS = 4  # products added per statement of an affine sum
 
 
 def export_c(
@@ -149,6 +164,8 @@ class _Writer:
         }
         self.functions = function_names(name, list(coded.values()))
         self.function_of_layer = {layer: self.functions[entry] for layer, entry in coded.items()}
+        self.limit_of_layer = {step.layer: c_input_limit(step.activation, ctype)
+                               for step in plan.steps if isinstance(step, ActivationStep)}
         self.steps = [step for step in plan.steps
                       if not isinstance(step, ActivationStep) or step.layer in coded]
 
@@ -210,7 +227,7 @@ class _Writer:
         for step in self.plan.steps:
             lines += self._constants(step)
         for (kind, body), function in self.functions.items():
-            lines += ["", f"static {self.ctype} {function}({self.ctype} z)", "{"]
+            lines += ["", f"static inline {self.ctype} {function}({self.ctype} z)", "{"]
             lines += [f"    {statement}" for statement in body.split("\n")] + ["}"]
         lines += ["", self.signature, "{"] + self._function_body() + ["}"]
         return "\n".join(lines) + "\n"
@@ -219,10 +236,11 @@ class _Writer:
         prefix, layer = self.name, step.layer
         if isinstance(step, AffineStep):
             n_out, n_in = step.weight.shape
-            lines = ["", f"/* layer {layer}: {step.describe()}; weight[k][j] connects input j to unit k */",
-                     f"static const {self.ctype} {prefix}_weight_{layer}[{n_out}][{n_in}] = {{"]
-            for k, row in enumerate(step.weight):
-                lines += self._numbers(row, "    {", "}" + ("," if k < n_out - 1 else ""))
+            lines = ["", f"/* layer {layer}: {step.describe()}; weight[j][k] connects input j to unit k",
+                     " * (the transpose of Affine.weight: one row per input) */",
+                     f"static const {self.ctype} {prefix}_weight_{layer}[{n_in}][{n_out}] = {{"]
+            for j, row in enumerate(step.weight.T):
+                lines += self._numbers(row, "    {", "}" + ("," if j < n_in - 1 else ""))
             lines.append("};")
             if step.bias is not None:
                 lines += [f"static const {self.ctype} {prefix}_bias_{layer}[{n_out}] = {{"]
@@ -275,30 +293,83 @@ class _Writer:
 
     def _function_body(self) -> list[str]:
         widths = self._buffer_widths()
-        zero = self.literal(0.0)
         lines = [f"    {self.ctype} {buffer}[{width}];" for buffer, width in sorted(widths.items())]
-        if any(isinstance(step, AffineStep) for step in self.plan.steps):
+        if any(isinstance(group, tuple) for step in self.steps if isinstance(step, AffineStep)
+               for group in _groups(step.weight.shape[1])):
             lines.append("    int j;")
         lines.append("    int k;")
         for step, (source, target, width) in zip(self.steps, self._routing()):
             layer = step.layer
-            lines += ["", f"    /* layer {layer}: {comment_text(step.describe())} */",
-                      f"    for (k = 0; k < {width}; ++k) {{"]
+            lines += ["", f"    /* layer {layer}: {comment_text(step.describe())} */"]
             if isinstance(step, AffineStep):
-                n_in = step.weight.shape[1]
-                bias = f" + {self.name}_bias_{layer}[k]" if step.bias is not None else ""
-                lines += [f"        {self.ctype} s = {zero};",
-                          f"        for (j = 0; j < {n_in}; ++j) {{",
-                          f"            s += {self.name}_weight_{layer}[k][j] * {source}[j];",
-                          "        }",
-                          f"        {target}[k] = s{bias};"]
+                lines += self._affine(step, source, target)
             elif isinstance(step, ScalingStep):
-                lines.append(f"        {target}[k] = {source}[k] * {self.name}_gain_{layer}[k]"
-                             f" + {self.name}_offset_{layer}[k];")
+                gain, offset = f"{self.name}_gain_{layer}[k]", f"{self.name}_offset_{layer}[k]"
+                lines += _loop(width, [f"{target}[k] = {source}[k] * {gain} + {offset};"])
             else:
-                lines.append(f"        {target}[k] = {self.function_of_layer[layer]}({source}[k]);")
-            lines.append("    }")
+                limit = self.limit_of_layer[layer]
+                if limit is not None:
+                    f, bound, z = "f" if self.ctype == "float" else "", self.literal(limit), f"{source}[k]"
+                    lines += _loop(width, [f"{target}[k] = fabs{f}({z}) > {bound} ? copysign{f}({bound}, {z}) : {z};"])
+                    source = target
+                lines += _loop(width, [f"{target}[k] = {self.function_of_layer[layer]}({source}[k]);"])
         final = self._routing()[-1][1]
-        lines += ["", "    /* result */", f"    for (k = 0; k < {self.plan.n_out}; ++k) {{",
-                  f"        y[k] = {final}[k];", "    }"]
+        lines += ["", "    /* result */"] + _loop(self.plan.n_out, [f"y[k] = {final}[k];"])
         return lines
+
+    def _affine(self, step: AffineStep, source: str, target: str) -> list[str]:
+        """``target[k] = 0 + weight[0][k] * source[0] + weight[1][k] * source[1] + ... + bias[k]``.
+
+        The sum runs in order over ``j`` and is written ``_TERMS`` products per
+        statement, left to right (C's ``+`` associates to the left, so splitting
+        it does not change the order): the first statement starts from zero,
+        the last one adds the bias, and the groups between them become a loop
+        over ``j`` when there are two or more.
+        """
+        n_in, n_out = step.weight.shape[1], step.width
+        weight = f"{self.name}_weight_{step.layer}"
+        groups = _groups(n_in)
+        lines = []
+        for number, group in enumerate(groups):
+            first, last = number == 0, number == len(groups) - 1
+            bias = f"{self.name}_bias_{step.layer}[k]" if last and step.bias is not None else None
+            start = self.literal(0.0) if first else f"{target}[k]"
+            if isinstance(group, range):
+                indices = [str(j) for j in group]
+                lines += _loop(n_out, _sum(target, start, weight, source, indices, bias))
+            else:
+                begin, end = group
+                indices = ["j"] + [f"j + {i}" for i in range(1, _TERMS)]
+                lines.append(f"    for (j = {begin}; j < {end}; j += {_TERMS}) {{")
+                lines += _loop(n_out, _sum(target, start, weight, source, indices, bias), indent="        ")
+                lines.append("    }")
+        return lines
+
+
+def _groups(n_in: int) -> list[range | tuple[int, int]]:
+    """The statements of an affine sum over ``n_in`` inputs, ``_TERMS`` products each.
+
+    A ``range`` of inputs becomes a statement with literal indices; ``(begin,
+    end)`` stands for the full groups ``begin .. end - 1`` written as one loop
+    over ``j``. At most one loop, always between the first and the last group.
+    """
+    groups = [range(j, min(j + _TERMS, n_in)) for j in range(0, n_in, _TERMS)]
+    if len(groups) < 4:
+        return list(groups)
+    return [groups[0], (groups[1].start, groups[-1].start), groups[-1]]
+
+
+def _loop(count: int, statements: list[str], indent: str = "    ") -> list[str]:
+    """``for (k = 0; k < count; ++k) { statements }`` indented by ``indent``."""
+    return ([f"{indent}for (k = 0; k < {count}; ++k) {{"]
+            + [f"{indent}    {statement}" for statement in statements]
+            + [f"{indent}}}"])
+
+
+def _sum(target: str, start: str, weight: str, source: str, indices: list[str], bias: str | None) -> list[str]:
+    """``target[k] = start + weight[i][k] * source[i] + ... (+ bias)``, two terms per line."""
+    terms = [f"{weight}[{i}][k] * {source}[{i}]" for i in indices] + ([bias] if bias else [])
+    pairs = [" + ".join(terms[i:i + 2]) for i in range(0, len(terms), 2)]
+    lines = [f"{target}[k] = {start} + {pairs[0]}"] + [f"    + {pair}" for pair in pairs[1:]]
+    lines[-1] += ";"
+    return lines
