@@ -44,6 +44,7 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = ["Workspace"]
 
 _BLOCK_BYTES = 256 * 1024
+_ALL_ROWS = [slice(None)]
 
 
 class Workspace:
@@ -77,6 +78,8 @@ class Workspace:
     def row_blocks(self, rows: int, width: int) -> list[slice]:
         """Row ranges of about 256 KiB each, for elementwise passes that stay in cache."""
         step = max(1, _BLOCK_BYTES // (width * self.network.dtype.itemsize))
+        if rows <= step:
+            return _ALL_ROWS
         return [slice(start, start + step) for start in range(0, rows, step)]
 
     def scratch(self, rows: int, width: int) -> np.ndarray:
