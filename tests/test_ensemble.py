@@ -37,6 +37,9 @@ from tinyprop.ensemble import Ensemble
 from tinyprop.io import ModelFileError
 from tinyprop.sweep import TabularRegression, sweep
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from test_export_c import run_predict_driver  # noqa: E402  (the export tests' exact-input C driver)
+
 CC = shutil.which("gcc") or shutil.which("cc")
 needs_cc = pytest.mark.skipif(CC is None, reason="no C compiler: neither gcc nor cc is on PATH")
 
@@ -221,43 +224,10 @@ def test_python_export_is_the_mean_of_the_member_exports(tmp_path):
 
 
 def compile_and_run(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int, sources: list[str]) -> np.ndarray:
-    """Compile the exported files with a driver that runs ``<name>_predict`` normally and in place."""
-    rows = ",\n    ".join("{" + ", ".join(float(v).hex() + ("f" if ctype == "float" else "") for v in row) + "}"
-                           for row in X)
-    macro = name.upper()
-    driver = f"""#include <stdio.h>
-#include "{name}.h"
-
-static const {ctype} inputs[{len(X)}][{macro}_N_INPUTS] = {{
-    {rows}
-}};
-
-int main(void)
-{{
-    {ctype} y[{macro}_N_OUTPUTS];
-    {ctype} shared[{max(X.shape[1], n_out)}];
-    int i, k;
-    for (i = 0; i < {len(X)}; ++i) {{
-        {name}_predict(inputs[i], y);
-        for (k = 0; k < {macro}_N_INPUTS; ++k) {{
-            shared[k] = inputs[i][k];
-        }}
-        {name}_predict(shared, shared);
-        for (k = 0; k < {macro}_N_OUTPUTS; ++k) {{
-            printf("%.17g %.17g\\n", (double)y[k], (double)shared[k]);
-        }}
-    }}
-    return 0;
-}}
-"""
-    (directory / "driver.c").write_text(driver, encoding="ascii")
-    build = subprocess.run([CC, "-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic", "-O2", "driver.c", *sources,
-                            "-o", "driver", "-lm"], cwd=directory, capture_output=True, text=True)
-    assert build.returncode == 0, build.stderr
-    out = subprocess.run([str(directory / "driver")], capture_output=True, text=True, check=True).stdout
-    values = np.array([[float(t) for t in line.split()] for line in out.splitlines()])
-    assert np.array_equal(values[:, 0], values[:, 1])  # x and y may be the same array
-    return values[:, 0].reshape(len(X), n_out)
+    """Compile the exported files with the export tests' driver, run ``<name>_predict`` normally and in place."""
+    y, y_in_place = run_predict_driver(directory, name, ctype, X, n_out, sources)
+    assert np.array_equal(y, y_in_place)  # x and y may be the same array
+    return y
 
 
 @needs_cc

@@ -77,8 +77,17 @@ def run_c(net: tp.Network, X: np.ndarray, directory: Path, *, dtype: str = "floa
     ``predict(buffer, buffer)`` with the input copied into the output buffer.
     """
     export_c(net, directory, name=name, dtype=dtype, **options)
-    ctype, macro = CTYPE[dtype], name.upper()
     X = np.asarray(X, dtype=dtype)
+    return run_predict_driver(directory, name, CTYPE[dtype], X, net.n_out, [f"{name}.c"])
+
+
+def run_predict_driver(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int,
+                       sources: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Compile ``sources`` with a driver calling ``<name>_predict`` on the rows of ``X``, embedded exactly.
+
+    Returns ``(y, y_in_place)`` as :func:`run_c` does; shared with the ensemble tests.
+    """
+    macro = name.upper()
     rows = ",\n    ".join("{" + ", ".join(c_hex(v, ctype) for v in row) + "}" for row in X)
     driver = f"""#include <stdio.h>
 #include "{name}.h"
@@ -90,7 +99,7 @@ static const {ctype} inputs[{len(X)}][{macro}_N_INPUTS] = {{
 int main(void)
 {{
     {ctype} y[{macro}_N_OUTPUTS];
-    {ctype} shared[{max(net.n_in, net.n_out)}];
+    {ctype} shared[{max(X.shape[1], n_out)}];
     int i, k;
     for (i = 0; i < {len(X)}; ++i) {{
         {name}_predict(inputs[i], y);
@@ -105,10 +114,9 @@ int main(void)
     return 0;
 }}
 """
-    out = compile_and_run(directory, sources=[f"{name}.c"], driver=driver)
+    out = compile_and_run(directory, sources=sources, driver=driver)
     values = np.array([[float(t) for t in line.split()] for line in out.splitlines()])
-    y = values[:, 0].reshape(len(X), net.n_out)
-    return y, values[:, 1].reshape(len(X), net.n_out)
+    return values[:, 0].reshape(len(X), n_out), values[:, 1].reshape(len(X), n_out)
 
 
 def check_agreement(net: tp.Network, X: np.ndarray, dtype: str, **options) -> np.ndarray:
