@@ -162,7 +162,10 @@ def test_workspace_passes_equal_the_allocating_passes(case, spare_rows):
     for _ in range(2):  # a second step reuses the same arrays
         out_w, trace_w = net.forward(X, workspace=work)
         np.testing.assert_array_equal(out_w, out)
-        grads_w, d_input_w = net.backward(trace_w, loss.gradient(out_w, y))
+        d_out = loss.gradient(out_w, y)
+        d_out_before = d_out.copy()
+        grads_w, d_input_w = net.backward(trace_w, d_out)
+        np.testing.assert_array_equal(d_out, d_out_before)  # the caller's d_out is never overwritten
         tol = 1e-12 if net.dtype == np.float64 else 1e-5
         for g, g_w in zip(grads, grads_w):
             np.testing.assert_allclose(g_w, g, rtol=tol, atol=tol * max(1.0, np.abs(g).max()))

@@ -237,6 +237,8 @@ class Network:
         """
         d_out = self._check_d_out(trace, d_out)
         work = trace.workspace
+        if work is not None and self._plan[-1][0] is _ACTIVATION_IN_PLACE:
+            d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
         grads: list[np.ndarray] = [] if work is None else work.grads
         if work is None:
             grads.extend([np.empty(0)] * len(self.params))
@@ -288,18 +290,18 @@ class Network:
         if not isinstance(trace, Trace) or len(trace.values) != len(self.layers) + 1:
             raise TypeError("trace must be the Trace returned by this network's forward()")
         work = trace.workspace
-        if work is not None:
-            if trace.generation != work.generation:
-                raise ValueError(
-                    "this trace's workspace arrays were overwritten by a later forward() or used by "
-                    "an earlier backward(); run forward() again"
-                )
-            work.generation += 1  # the backward pass below consumes the trace
+        if work is not None and trace.generation != work.generation:
+            raise ValueError(
+                "this trace's workspace arrays were overwritten by a later forward() or used by "
+                "an earlier backward(); run forward() again"
+            )
         expected = trace.values[-1].shape
         if not (type(d_out) is np.ndarray and d_out.dtype == self.dtype):
             d_out = as_float_array(d_out, "d_out", self.dtype)
         if d_out.shape != expected:
             raise ValueError(f"d_out must have the output's shape {expected}, got shape {d_out.shape}")
+        if work is not None:
+            work.generation += 1  # the backward pass about to run consumes the trace
         return d_out
 
     # ----------------------------------------------------------------- derivatives per sample
