@@ -98,11 +98,13 @@ def test_python_export_matches_predict_many(case):
 def test_python_and_c_float64_exports_agree_bit_for_bit(case):
     # Same operations, same order, same libm (CPython's math calls the C library's
     # exp, tanh and log1p): the two exports must give identical doubles.
-    net, X = case
+    assert_c_and_python_identical(*case)
+
+
+def assert_c_and_python_identical(net: tp.Network, X: np.ndarray) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         y_c, _ = run_c(net, X, Path(tmp), dtype="float64")
-    y_python = check_python_agreement(net, X)
-    np.testing.assert_array_equal(y_python, y_c)
+    np.testing.assert_array_equal(check_python_agreement(net, X), y_c)
 
 
 @needs_cc
@@ -111,11 +113,7 @@ def test_python_and_c_float64_exports_agree_bit_for_bit(case):
 def test_wide_python_and_c_float64_exports_agree_bit_for_bit(case):
     # Widths up to 40: the C sums are split into statements of four products and a loop
     # over j, still in index order, so they must still match Python's running sum exactly.
-    net, X = case
-    with tempfile.TemporaryDirectory() as tmp:
-        y_c, _ = run_c(net, X, Path(tmp), dtype="float64")
-    y_python = check_python_agreement(net, X)
-    np.testing.assert_array_equal(y_python, y_c)
+    assert_c_and_python_identical(*case)
 
 
 def test_float32_network_is_computed_in_binary64(tmp_path):
