@@ -97,7 +97,9 @@ class MeanSquaredError(Loss):
 
     def gradient(self, y_hat: np.ndarray, y: np.ndarray) -> np.ndarray:
         y_hat, y = _pair(y_hat, y)
-        return (y_hat - y) * y_hat.dtype.type(2.0 / y_hat.shape[0])
+        r = np.subtract(y_hat, y)
+        r *= 2.0 / y_hat.shape[0]  # a Python float keeps the array's dtype
+        return r
 
 
 class CrossEntropyOnSigmoid(Loss):

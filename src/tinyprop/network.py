@@ -118,6 +118,7 @@ class Network:
         self._plan = tuple(
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
         )
+        self._backward_plan = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._plan))))
         self._grad_slot = {}  # affine layer index -> index of its weight in params
         for i, layer in enumerate(self.layers):
             if isinstance(layer, Affine):
@@ -189,20 +190,18 @@ class Network:
         for NaN and infinity: training checks its data once before the first
         epoch, and its divergence guard catches non-finite results.
         """
-        if workspace is not None and _is_batch(X, self.n_in, self.dtype):
-            x = X  # the training fast path: see the docstring
-        else:
-            x = as_samples(X, "X", self.n_in, self.dtype)
-        generation = 0
-        if workspace is not None:
-            generation = self._claim(workspace, x.shape[0])
+        if workspace is None:
+            values = [as_samples(X, "X", self.n_in, self.dtype)]
+            for _, layer in self._plan:
+                values.append(layer.value(values[-1]))
+            return values[-1], Trace(tuple(values))
+        x = X if _is_batch(X, self.n_in, self.dtype) else as_samples(X, "X", self.n_in, self.dtype)
+        generation = self._claim(workspace, x.shape[0])
         values = [x]
         v = x
-        for i, (kind, layer) in enumerate(self._plan):
-            if workspace is None:
-                v = layer.value(v)
-            elif kind is _AFFINE:
-                v = layer.value(v, out=workspace.output(i, v.shape[0], layer.n_out))
+        for (kind, layer), out in zip(self._plan, workspace.outputs(x.shape[0])):
+            if kind is _AFFINE:
+                v = layer.value(v, out=out)
             elif kind is _ACTIVATION_IN_PLACE:
                 v = layer._value_in_place(v)  # overwrites the affine output it reads
             else:
@@ -239,15 +238,17 @@ class Network:
         work = trace.workspace
         if work is not None and self._plan[-1][0] is _ACTIVATION_IN_PLACE:
             d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
-        grads: list[np.ndarray] = [] if work is None else work.grads
+        rows = d_out.shape[0]
         if work is None:
-            grads.extend([np.empty(0)] * len(self.params))
+            grads, ones = [np.empty(0)] * len(self.params), np.ones(rows, self.dtype)
+        else:
+            grads, ones = work.grads, work.ones(rows)
 
         def gradient_of(i: int, layer: Affine, x: np.ndarray, delta: np.ndarray) -> None:
             k = self._grad_slot[i]
             grads[k] = np.matmul(delta.T, x, out=None if work is None else grads[k])  # delta^T x
-            if layer.bias is not None:
-                grads[k + 1] = np.add.reduce(delta, axis=0, out=None if work is None else grads[k + 1])
+            if layer.bias is not None:  # sum_i delta[i], as the product 1^T delta
+                grads[k + 1] = np.matmul(ones, delta, out=None if work is None else grads[k + 1])
 
         d_input = self._delta_recursion(trace, d_out, need_input, gradient_of)
         return grads, d_input
@@ -267,8 +268,7 @@ class Network:
         right after).
         """
         values, work = trace.values, trace.workspace
-        for i in range(len(self._plan) - 1, -1, -1):
-            kind, layer = self._plan[i]
+        for i, kind, layer in self._backward_plan:
             if kind is _AFFINE:
                 on_affine(i, layer, values[i], delta)
                 if i == self._first_affine and not need_input:

@@ -413,20 +413,25 @@ class Adam(Optimizer):
         }
 
     def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
+        """Algorithm 1 in 12 elementwise passes (no pass divides by the bias corrections).
+
+        ``m + (1 - beta1)(g - m)`` is the moment update rearranged, and with
+        ``c1 = 1 - beta1**t``, ``c2 = 1 - beta2**t``:
+        ``m_hat / (sqrt(v_hat) + epsilon) = (sqrt(c2) / c1) m / (sqrt(v) + epsilon sqrt(c2))``.
+        """
         m, v, work = self._slots["first_moment"][i], self._slots["second_moment"][i], self._work[i]
-        t = self.steps
-        np.multiply(g, 1.0 - self.beta1, out=work)
-        m *= self.beta1
-        m += work
+        root_c2 = math.sqrt(1.0 - self.beta2**self.steps)
+        np.subtract(g, m, out=work)
+        work *= 1.0 - self.beta1
+        m += work  # m <- beta1 m + (1 - beta1) g
         np.multiply(g, g, out=work)
+        work -= v
         work *= 1.0 - self.beta2
-        v *= self.beta2
-        v += work
-        np.divide(v, 1.0 - self.beta2**t, out=work)  # v_hat
-        np.sqrt(work, out=work)
-        work += self.epsilon
-        np.divide(m, work, out=work)  # m / (sqrt(v_hat) + epsilon)
-        work *= multiplier * self.lr / (1.0 - self.beta1**t)
+        v += work  # v <- beta2 v + (1 - beta2) g**2
+        np.sqrt(v, out=work)
+        work += self.epsilon * root_c2
+        np.divide(m, work, out=work)
+        work *= multiplier * self.lr * root_c2 / (1.0 - self.beta1**self.steps)
         if self.decoupled_decay:
             p *= 1.0 - multiplier * self.decoupled_decay
         p -= work
