@@ -69,6 +69,8 @@ def table(results: dict[str, Any]) -> str:
 
     for r in results["floor"]:
         row(f"floor ratio, batch {r['batch']} {r['dtype']}", f"{r['step_s'] * 1e3:.3f} ms", r["ratio"], f"<= {BARS['floor']}")
+    for r in results["floor"]:
+        row(f"  step / (floor + Adam update), {r['batch']} {r['dtype']}", f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], "")
     for r in results["tax"]:
         row(f"abstraction tax, {r['network']} batch {r['batch']}", f"{r['step_s'] * 1e6:.1f} us", r["ratio"], f"<= {BARS['tax']}")
     for r in results["memory"]:

@@ -16,8 +16,10 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
         assert key in results
     for row in results["floor"] + results["tax"] + results["memory"]:
         assert row["ratio"] > 0
+    for row in results["floor"]:  # the step is timed against the floor alone and the floor plus the update
+        assert row["floor_update_s"] > 0 and row["ratio_floor_update"] > 0
     assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
-    assert "floor ratio" in printed and "abstraction tax" in printed and "scaling exponent" in printed
+    assert "floor ratio" in printed and "floor + Adam update" in printed and "abstraction tax" in printed and "scaling exponent" in printed
 
 
 def test_table_marks_a_missing_compiler():
