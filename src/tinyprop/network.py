@@ -172,8 +172,20 @@ class Network:
 
     # ----------------------------------------------------------------- forward
     def predict(self, X: Any) -> np.ndarray:
-        """Network output ``(n, n_out)`` for inputs ``X`` ``(n, n_in)``; keeps no trace."""
-        v = as_samples(X, "X", self.n_in, self.dtype)
+        """Network output ``(n, n_out)`` for inputs ``X`` ``(n, n_in)``; keeps no trace.
+
+        Rows are independent, so a large ``X`` is evaluated in blocks of
+        4096 rows: the memory for the hidden layers stays that of one block.
+        """
+        x = as_samples(X, "X", self.n_in, self.dtype)
+        if x.shape[0] <= _PREDICT_ROWS:
+            return self._predict_rows(x)
+        out = np.empty((x.shape[0], self.n_out), self.dtype)
+        for start in range(0, x.shape[0], _PREDICT_ROWS):
+            out[start:start + _PREDICT_ROWS] = self._predict_rows(x[start:start + _PREDICT_ROWS])
+        return out
+
+    def _predict_rows(self, v: np.ndarray) -> np.ndarray:
         for kind, layer in self._plan:
             if kind is _ACTIVATION_IN_PLACE:
                 v = layer._value_in_place(v)  # v is the affine output this call made
@@ -356,6 +368,8 @@ class Network:
         inner = ", ".join(repr(layer) for layer in self.layers)
         return f"Network([{inner}], dtype={self.dtype.name})"
 
+
+_PREDICT_ROWS = 4096  # rows per block in predict
 
 # np.longdouble (x86 extended precision, no BLAS, slow) is accepted for the
 # numerical references in tinyprop.check; float32 and float64 are the working dtypes.

@@ -283,7 +283,9 @@ def train(
     net, X, y:
         The network and its training data: ``X`` ``(n, n_in)``, ``y``
         ``(n, n_out)`` (1-D allowed for one output). Converted once to the
-        network's dtype; the caller's arrays are not modified.
+        network's dtype; the caller's arrays are not modified. Memory: one
+        shuffled copy of ``X`` and ``y``, refilled every epoch, plus the
+        network's workspace for one mini-batch.
     loss:
         A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
         losses (``MeanSquaredError``, the cross-entropies) make the step size
@@ -513,6 +515,7 @@ class _Run:
         self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
         self.backup = np.empty_like(net.vector)
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
+        self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
@@ -609,7 +612,9 @@ class _Run:
     def _epoch(self) -> str | None:
         """Run one epoch; return a description of a divergence, or ``None``."""
         order = self.rng.permutation(self.X.shape[0])
-        X, y = self.X[order], self.y[order]
+        X, y = self.shuffled
+        np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
+        np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
         for start in range(0, X.shape[0], self.batch_size):
             problem = self._step(X[start:start + self.batch_size], y[start:start + self.batch_size])
             if problem is not None:
