@@ -30,24 +30,36 @@ BARS = {
 }
 
 
-def run(quick: bool = False) -> dict[str, Any]:
-    """All measurements as one JSON-able dict."""
+def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
+    """All measurements as one JSON-able dict; ``progress`` names each part on stderr as it starts."""
     calls, rounds = (2, 1) if quick else (20, 15)
     small_calls = 5 if quick else 500
     batches = (64,) if quick else (256, 4096)
+    parts = ("floor", "tax", "memory", "scaling", "second_order", "inference")
+
+    def starting(part: str) -> None:
+        if progress:
+            print(f"[{parts.index(part) + 1}/{len(parts)}] measuring {part.replace('_', '-')} ...", file=sys.stderr, flush=True)
+
     results: dict[str, Any] = {"machine": measure.machine(), "quick": quick}
+    starting("floor")
     results["floor"] = [
         measure.floor_ratio(b, dtype, calls=calls if b < 4096 else max(2, calls // 4), rounds=rounds)
         for dtype in (np.float32, np.float64)
         for b in batches
     ]
+    starting("tax")
     results["tax"] = [
         measure.abstraction_tax([4, 8, 1], 16, calls=small_calls, rounds=rounds),
         measure.abstraction_tax([8, 32, 32, 1], 32, calls=small_calls, rounds=rounds),
     ]
+    starting("memory")
     results["memory"] = [measure.memory_ratio(64 if quick else 4096, dtype) for dtype in (np.float32, np.float64)]
+    starting("scaling")
     results["scaling"] = measure.scaling([300, 1000] if quick else [1000, 10000, 100000, 1000000])
+    starting("second_order")
     results["second_order"] = measure.second_order()
+    starting("inference")
     results["inference"] = measure.inference(calls=small_calls, rounds=rounds, c_calls=1000 if quick else 2000000)
     return results
 
@@ -108,7 +120,7 @@ def main(argv: list[str] | None = None) -> int:
         env = {**os.environ, **variables, _THREADS_SET: str(args.threads)}
         again = [sys.executable, "-m", "tinyprop.benchmarks", *(argv if argv is not None else sys.argv[1:])]
         return subprocess.run(again, env=env, check=False).returncode
-    results = run(quick=args.quick)
+    results = run(quick=args.quick, progress=True)
     results["machine"]["blas_threads"] = os.environ.get(_THREADS_SET, "default")
     print(table(results))
     if args.json:

@@ -10,7 +10,7 @@ from tinyprop.benchmarks import main, run, table
 def test_quick_run_produces_every_figure(tmp_path, capsys):
     path = tmp_path / "bench.json"
     assert main(["--quick", "--json", str(path)]) == 0
-    printed = capsys.readouterr().out
+    printed, progress = capsys.readouterr()
     results = json.loads(path.read_text())
     for key in ("machine", "floor", "tax", "memory", "scaling", "second_order", "inference"):
         assert key in results
@@ -19,6 +19,7 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
     for row in results["floor"]:  # the step is timed against the floor alone and the floor plus the update
         assert row["floor_update_s"] > 0 and row["ratio_floor_update"] > 0
     assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
+    assert progress.splitlines()[0] == "[1/6] measuring floor ..." and "[6/6] measuring inference" in progress
     assert "floor ratio" in printed and "floor + Adam update" in printed and "abstraction tax" in printed and "scaling exponent" in printed
 
 
