@@ -8,6 +8,8 @@ floor = max(1e-3 * max|r|, 1e-5 * max(1, |E|)).
 
 from __future__ import annotations
 
+import pickle
+
 import numpy as np
 import pytest
 from hypothesis import assume, given, reject, settings
@@ -225,3 +227,33 @@ def test_params_are_views_of_the_flat_vector_and_relink_after_assignment():
     grads, _ = net.backward(trace, out, need_input=False)
     opt.update([net.vector], [work.grad_vector])  # one update of every array
     np.testing.assert_allclose(net.get_vector(), before - 0.1 * np.concatenate([g.ravel() for g in grads]), rtol=1e-15)
+
+
+@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.ReLU()], ids=repr)
+@pytest.mark.parametrize("with_workspace", [False, True])
+def test_a_pickled_network_backpropagates_like_the_original(hidden, with_workspace):
+    """Process pools (tp.sweep) move networks by pickle; the copy must run the same passes."""
+    net = tp.build_mlp([3, 6, 5, 2], hidden=hidden, seed=3)
+    X = np.random.default_rng(4).normal(size=(7, 3))
+    results = []
+    for network in (net, pickle.loads(pickle.dumps(net))):
+        work = network.workspace(7) if with_workspace else None
+        out, trace = network.forward(X, workspace=work)
+        grads, _ = network.backward(trace, out, need_input=False)
+        results.append((out.copy(), [g.copy() for g in grads], network.predict(X)))
+    (out, grads, predicted), (out_copy, grads_copy, predicted_copy) = results
+    assert np.array_equal(out, out_copy) and np.array_equal(predicted, predicted_copy)
+    assert all(np.array_equal(g, g_copy) for g, g_copy in zip(grads, grads_copy))
+
+
+def test_a_residual_near_the_huber_threshold_shortens_only_its_own_rows_steps():
+    """One residual 3e-5 from |r| = c: the check still reaches 1e-6 (a batch-wide short step gave 1.4e-5)."""
+    net = tp.build_mlp([3, 6, 4], seed=5)
+    X = np.random.default_rng(6).normal(size=(6, 3))
+    loss = tp.HuberError(0.5)
+    out = net.predict(X)
+    y = out - np.random.default_rng(7).uniform(-1.5, 1.5, size=out.shape)
+    y[2, 1] = out[2, 1] - (0.5 + 3e-5)  # this residual sits 3e-5 beyond the threshold
+    report = tp.check_gradient(net, X, y, loss)
+    assert report.kink_margin == pytest.approx(3e-5, rel=1e-6)
+    assert report.max_rel_error <= 1e-6, str(report)

@@ -21,6 +21,7 @@ and how they collect the per-layer terms.
 from __future__ import annotations
 
 import copy
+import enum
 from dataclasses import dataclass
 from typing import Any, Callable, Sequence
 
@@ -36,8 +37,21 @@ __all__ = ["Network", "Trace"]
 
 Layer = Affine | Activation | ColumnScaling
 
-# what the forward and backward passes do with each layer (fixed at construction)
-_AFFINE, _ACTIVATION, _ACTIVATION_IN_PLACE, _SCALING = "affine", "activation", "in place", "scaling"
+
+class _Kind(enum.Enum):
+    """What the forward and backward passes do with a layer (fixed at construction).
+
+    Enum members stay identical through pickling (a network sent to a worker
+    process and back), so the passes can compare them with ``is``.
+    """
+
+    AFFINE = "affine"
+    ACTIVATION = "activation"
+    ACTIVATION_IN_PLACE = "in place"
+    SCALING = "scaling"
+
+
+_AFFINE, _ACTIVATION, _ACTIVATION_IN_PLACE, _SCALING = _Kind
 
 
 @dataclass(slots=True)
@@ -381,7 +395,7 @@ def _is_batch(X: Any, n_in: int, dtype: np.dtype) -> bool:
     return type(X) is np.ndarray and X.dtype == dtype and X.ndim == 2 and X.shape[1] == n_in and X.shape[0] > 0
 
 
-def _kind(layer: Layer, previous: Layer | None) -> str:
+def _kind(layer: Layer, previous: Layer | None) -> _Kind:
     """A built-in activation right after an affine layer may overwrite that layer's output."""
     if isinstance(layer, Affine):
         return _AFFINE
