@@ -42,9 +42,12 @@ would be far too coarse.
 **Steps.** Differences start from a step ``h = 0.05`` and shrink by halves.
 A difference that straddles a kink (ReLU at 0) is meaningless, so when an
 activation with ``kinks`` sees a pre-activation within ``m`` of a kink, the
-starting step becomes ``0.1 m / max(1, max |layer input|)``; the report records
-``m`` and ``h``. The loss gradient is treated alike where the loss's second
-derivative jumps (Huber at ``|r| = c``, see :meth:`tinyprop.Loss.kink_distance`).
+starting step becomes ``0.1 m / max(1, max |layer input|)``. The loss gradient
+is treated alike, row by row, where the loss's second derivative jumps (Huber
+at ``|r| = c``, see :meth:`tinyprop.Loss.kink_distance`). The report records
+``h`` and, as ``kink_margin``, the smallest distance from any kink (of an
+activation or of the loss); below about ``1e-4`` the differences carry enough
+rounding noise that a float64 comparison at ``1e-6`` is no longer meaningful.
 A pre-activation *exactly* on a kink (``m = 0``) cannot be checked by
 differences; the check refuses it and asks for other points.
 """
@@ -192,7 +195,7 @@ def check_gradient(
         analytic=analytic,
         numerical=numerical,
         initial_step=step,
-        kink_margin=margin,
+        kink_margin=min(margin, loss.kink_distance(out, y)),
     )
 
 
@@ -222,12 +225,19 @@ def _numerical_output_jacobian(net: Network, X: np.ndarray, step: float) -> np.n
 
 
 def _numerical_loss_gradient(loss: Loss, out: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """``dE / d output`` by ``scipy.differentiate.jacobian``, flattened like the output."""
-    step = min(_INITIAL_STEP, _KINK_FRACTION * loss.kink_distance(out, y))
-    if step == 0.0:
+    """``dE / d output`` by ``scipy.differentiate.jacobian``, flattened like the output.
+
+    Each row (sample) gets its own step, short of that row's distance from a
+    kink of the loss: one residual near Huber's threshold then shortens the
+    steps of its own row only, not (with rounding noise growing like
+    ``eps |E| / h``) those of every output.
+    """
+    distance = np.array([loss.kink_distance(out[i:i + 1], y[i:i + 1]) for i in range(out.shape[0])])
+    if np.any(distance == 0.0):
         raise ValueError(
             f"an output sits exactly where {loss!r} switches form; check the gradient on other X"
         )
+    step = np.repeat(np.minimum(_INITIAL_STEP, _KINK_FRACTION * distance), out.shape[1])  # like out.ravel()
     base = loss.value(out, y)
 
     def loss_change(flat: np.ndarray) -> np.ndarray:

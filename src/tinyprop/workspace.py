@@ -64,8 +64,8 @@ class Workspace:
         widest_input = max(layer.n_in for layer in network.layers if isinstance(layer, Affine))
         self._scratch = np.empty(self.max_rows * widest_input, dtype)
         self._ones = np.ones(self.max_rows, dtype)
-        self._views: dict[tuple[int, int], np.ndarray] = {}  # (array, rows) -> shaped view, made once
         self._outputs_for: dict[int, tuple[np.ndarray | None, ...]] = {}  # rows -> outputs(rows)
+        self._scratch_for: dict[tuple[int, int], np.ndarray] = {}  # (rows, width) -> scratch(rows, width)
         self.grad_vector = np.empty(network.n_params, dtype)
         """All gradients as one flat array, aligned with ``network.vector``."""
         self.grads = []
@@ -79,10 +79,10 @@ class Workspace:
     def outputs(self, rows: int) -> tuple[np.ndarray | None, ...]:
         """Per layer of the network: the ``(rows, n_out)`` output array of an affine layer, else ``None``."""
         try:
-            return self._outputs_for[rows]
+            return self._outputs_for[rows]  # steps repeat the same shapes: build the views once
         except KeyError:
             arrays = self._outputs_for[rows] = tuple(
-                self._view(i, self._outputs[i], rows, layer.n_out) if i in self._outputs else None
+                self._outputs[i][: rows * layer.n_out].reshape(rows, layer.n_out) if i in self._outputs else None
                 for i, layer in enumerate(self.network.layers)
             )
             return arrays
@@ -90,14 +90,6 @@ class Workspace:
     def ones(self, rows: int) -> np.ndarray:
         """A vector of ``rows`` ones (read only by convention)."""
         return self._ones[:rows]
-
-    def _view(self, key: int, flat: np.ndarray, rows: int, width: int) -> np.ndarray:
-        """``flat[:rows * width]`` as a ``(rows, width)`` array; cached, since steps repeat the same shapes."""
-        try:
-            return self._views[key, rows]
-        except KeyError:
-            view = self._views[key, rows] = flat[: rows * width].reshape(rows, width)
-            return view
 
     def row_blocks(self, rows: int, width: int) -> list[slice]:
         """Row ranges of about 256 KiB each, for elementwise passes that stay in cache."""
@@ -108,7 +100,11 @@ class Workspace:
 
     def scratch(self, rows: int, width: int) -> np.ndarray:
         """A ``(rows, width)`` array for the delta passed down through an affine layer."""
-        return self._view(-width, self._scratch, rows, width)
+        try:
+            return self._scratch_for[rows, width]
+        except KeyError:
+            view = self._scratch_for[rows, width] = self._scratch[: rows * width].reshape(rows, width)
+            return view
 
     def __repr__(self) -> str:
         return f"Workspace(max_rows={self.max_rows}, dtype={self.network.dtype.name})"
