@@ -12,9 +12,11 @@ from typing import Any, Callable, TextIO
 
 import numpy as np
 
+from ..archive import read_archive
 from ..csvdata import CsvError, CsvTable, read_csv
 from ..io import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
+from ..registry import activation_class
 from ..train import EpochInfo, _is_terminal  # the training loop's own test for a terminal
 
 USAGE = 2  # exit status: the command line is wrong
@@ -53,7 +55,22 @@ def read_model(path: str) -> ModelFile:
     except OSError as exc:
         raise CommandError(describe_os_error(exc)) from None
     except ValueError as exc:  # ModelFileError: unreadable, tampered or not a model file
-        raise CommandError(f"cannot use the model file: {exc}") from None
+        unknown = _unregistered_activations(path)
+        hint = (f"; with the tinyprop command, name the module or .py file that registers "
+                f"{', '.join(map(repr, unknown))} with --import" if unknown else "")
+        raise CommandError(f"cannot use the model file: {exc}{hint}") from None
+
+
+def _unregistered_activations(path: str) -> list[str]:
+    """The activation names the file's manifest lists that no class is registered under (none if unreadable)."""
+    try:
+        _, manifest = read_archive(path)
+    except (OSError, ValueError):
+        return []
+    layers = manifest.get("layers")
+    records = layers if isinstance(layers, list) else []
+    names = {r.get("name") for r in records if isinstance(r, dict) and r.get("kind") == "activation"}
+    return sorted(name for name in names if isinstance(name, str) and activation_class(name) is None)
 
 
 def read_table(path: str, delimiter: str) -> CsvTable:

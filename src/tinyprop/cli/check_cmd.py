@@ -28,6 +28,7 @@ from ..losses import MeanSquaredError
 from ..network import Network
 from . import _args
 from ._common import USAGE, CommandError, numeric_columns, read_model, read_table, require_columns
+from ._imports import add_import_option, import_modules
 
 HELP = "check a saved model's gradient against numerical differentiation (exit 1 if it fails)"
 EPILOG = """rows without --data, drawn with numpy.random.default_rng(SEED):
@@ -51,9 +52,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--seed", type=_args.seed, default=0, help="seed for choosing or generating rows (default 0)")
     parser.add_argument("--tolerance", type=_args.positive_float,
                         help="largest accepted relative error (default 1e-6 for float64 models, 1e-3 for float32)")
+    add_import_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:
+    import_modules(args.imports)
     model = read_model(args.model)
     net = model.network
     rng = np.random.default_rng(args.seed)

@@ -13,6 +13,7 @@ from typing import Any
 from ..export import export_c, export_python
 from ..export._text import check_name
 from ._common import USAGE, CommandError, describe_os_error, output_folder, read_model
+from ._imports import add_import_option, import_modules
 
 HELP = "write C99 and/or plain-Python inference code for a model file"
 
@@ -32,6 +33,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="number type of the C code (default float)")
     parser.add_argument("--no-metadata", action="store_true",
                         help="leave the model's names, units and description out of the code")
+    add_import_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -39,6 +41,7 @@ def run(args: argparse.Namespace) -> int:
         check_name(args.name)
     except ValueError as exc:
         raise CommandError(f"--name: {exc}", USAGE) from None
+    import_modules(args.imports)
     model = read_model(args.model)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
