@@ -6,6 +6,7 @@ import argparse
 import hashlib
 import os
 import sys
+import textwrap
 import time
 from pathlib import Path
 from typing import Any
@@ -44,6 +45,14 @@ from ._fit import (
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 
+# (option, the option it depends on, the values of that option it applies to), checked in this order
+_APPLIES_ONLY_TO = (
+    *((option, "method", ("mini-batch",))
+      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
+    ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
+    ("momentum", "optimizer", ("sgd",)),
+)
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     defaults = FitSettings()
@@ -65,28 +74,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"hidden-layer activation (default {defaults.activation})")
     network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
                          help=f"number type of the network (default {defaults.dtype})")
-    fitting = parser.add_argument_group("fitting")
+    fitting = parser.add_argument_group("fitting", _applicability())
     fitting.add_argument("--method", choices=METHODS, default=defaults.method,
                          help="mini-batch gradient descent (default), or full-batch least squares by "
                               "Levenberg-Marquardt or L-BFGS (small networks)")
-    fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS), default=defaults.optimizer,
+    fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
-                         help="step size (default: adam 0.001, rmsprop 0.001, sgd 0.01)")
-    fitting.add_argument("--schedule", choices=SCHEDULES, default=defaults.schedule,
-                         help="learning rate over the run: cosine (falls to 0 at the last epoch, the default) "
-                              "or constant")
-    fitting.add_argument("--momentum", type=_args.momentum, default=defaults.momentum,
-                         help="momentum of sgd (default 0)")
-    fitting.add_argument("--epochs", type=_args.positive_int, default=defaults.epochs,
+                         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items())
+                              + ")")
+    fitting.add_argument("--schedule", choices=SCHEDULES,
+                         help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
+                              f"(default {defaults.schedule})")
+    fitting.add_argument("--momentum", type=_args.momentum, help=f"momentum of sgd (default {defaults.momentum:g})")
+    fitting.add_argument("--epochs", type=_args.positive_int,
                          help=f"passes over the training rows (default {defaults.epochs})")
-    fitting.add_argument("--batch-size", type=_args.positive_int, default=defaults.batch_size, metavar="N",
+    fitting.add_argument("--batch-size", type=_args.positive_int, metavar="N",
                          help=f"rows per update (default {defaults.batch_size})")
     fitting.add_argument("--patience", type=_args.positive_int, metavar="EPOCHS",
                          help="stop after this many epochs without a lower validation loss and keep the best "
                               "weights (default: run all epochs)")
-    fitting.add_argument("--max-evaluations", type=_args.positive_int, default=defaults.max_evaluations,
-                         metavar="N", help=f"limit for the least-squares methods (default {defaults.max_evaluations})")
+    fitting.add_argument("--max-evaluations", type=_args.positive_int, metavar="N",
+                         help=f"limit for the least-squares methods (default {defaults.max_evaluations})")
     fitting.add_argument("--seed", type=_args.seed, default=defaults.seed,
                          help=f"seed of the split, the initial weights and the shuffling (default {defaults.seed})")
     output = parser.add_argument_group("output")
@@ -155,24 +164,48 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _settings(args: argparse.Namespace) -> FitSettings:
+    """The fit settings: options not given (``None``) take the defaults of :class:`FitSettings`.
+
+    An option given with a ``--method`` (or ``--optimizer``) it does not apply
+    to is refused (``_APPLIES_ONLY_TO``), never silently ignored.
+    """
     if args.validation_fraction + args.test_fraction >= 1.0:
         raise CommandError(
             f"--validation-fraction {args.validation_fraction} and --test-fraction {args.test_fraction} "
             "leave no rows for training; their sum must be below 1", USAGE
         )
+    defaults = FitSettings()
+
+    def value(option: str) -> Any:
+        given = getattr(args, option)
+        return getattr(defaults, option) if given is None else given
+
+    for option, depends_on, values in _APPLIES_ONLY_TO:
+        if getattr(args, option) is not None and value(depends_on) not in values:
+            raise CommandError(f"{_flag(option)} applies to {_flag(depends_on)} {' or '.join(values)}, "
+                               f"not {value(depends_on)}", USAGE)
     if args.patience is not None and args.validation_fraction == 0:
         raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
-    if args.momentum > 0 and args.optimizer != "sgd":
-        raise CommandError(f"--momentum applies to --optimizer sgd, not {args.optimizer}", USAGE)
-    if args.method != "mini-batch" and args.patience is not None:
-        raise CommandError(f"--patience applies to --method mini-batch, not {args.method}", USAGE)
     return FitSettings(
-        hidden=args.hidden, activation=args.activation, method=args.method, optimizer=args.optimizer,
-        learning_rate=args.learning_rate, schedule=args.schedule, momentum=args.momentum, epochs=args.epochs,
-        batch_size=args.batch_size, patience=args.patience, seed=args.seed,
+        hidden=args.hidden, activation=args.activation, method=args.method, seed=args.seed,
         validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
-        max_evaluations=args.max_evaluations,
+        **{option: value(option) for option, _, _ in _APPLIES_ONLY_TO},
     )
+
+
+def _applicability() -> str:
+    """``_APPLIES_ONLY_TO`` in words, for ``--help``."""
+    groups: dict[tuple[str, tuple[str, ...]], list[str]] = {}
+    for option, depends_on, values in _APPLIES_ONLY_TO:
+        groups.setdefault((depends_on, values), []).append(_flag(option))
+    text = "; ".join(f"{', '.join(flags)} only with {_flag(depends_on)} {' or '.join(values)}"
+                     for (depends_on, values), flags in groups.items())
+    return textwrap.fill(text + " (refused otherwise).", width=78)
+
+
+def _flag(option: str) -> str:
+    """``batch_size`` -> ``--batch-size``."""
+    return "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
