@@ -22,6 +22,9 @@ Run ``python tests/test_solve_nist.py`` to print the LRE table.
 
 from __future__ import annotations
 
+import io
+import sys
+
 import numpy as np
 import pytest
 
@@ -210,6 +213,37 @@ def test_bad_inputs_are_refused():
     np.testing.assert_array_equal(net.get_vector(), before)
 
 
+def test_progress_shows_evaluations_and_the_lowest_rss_on_stderr(capsys):
+    problem = load_nist("Misra1a")
+    net = build("Misra1a", problem.start1)
+    result = solve(net, problem.x, problem.y, progress=True)
+    lines = capsys.readouterr().err.splitlines()
+    assert lines and "\r" not in "".join(lines)  # not a terminal: one plain line per update
+    final = lines[-1]
+    assert final.startswith("levenberg-marquardt: ") and " Jacobians, lowest rss " in final
+    evaluations = int(final.split(": ")[1].split(" of at most ")[0])
+    assert abs(evaluations - result.function_evaluations) <= 1  # MINPACK's own count may include one more
+    lowest = float(final.split("lowest rss ")[1].split(",")[0])
+    assert lowest == pytest.approx(result.rss, rel=1e-5)  # printed with 6 significant digits
+    solve(build("Misra1a", problem.start1), problem.x, problem.y, method="lbfgs")
+    assert capsys.readouterr().err == ""  # silent unless asked
+
+
+def test_progress_rewrites_one_line_on_a_terminal_and_refuses_non_booleans(monkeypatch):
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    terminal = Terminal()
+    monkeypatch.setattr(sys, "stderr", terminal)
+    problem = load_nist("Misra1a")
+    solve(build("Misra1a", problem.start1), problem.x, problem.y, method="lbfgs", progress=True)
+    text = terminal.getvalue()
+    assert text.startswith("\rlbfgs: ") and text.endswith("\n") and text.count("\n") == 1 and " gradients, " in text
+    with pytest.raises(TypeError, match="progress must be True or False"):
+        solve(build("Misra1a", problem.start1), problem.x, problem.y, progress="yes")
+
+
 def lre_table() -> str:
     """The LRE of every parameter and of the RSS, both starts, both methods (Markdown)."""
     lines = ["| problem | start | method | LRE b1..bk | LRE RSS | iterations |", "|---|---|---|---|---|---|"]
@@ -227,3 +261,4 @@ def lre_table() -> str:
 
 if __name__ == "__main__":
     print(lre_table())
+

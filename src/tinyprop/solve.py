@@ -34,11 +34,14 @@ networks, but converges slowly on badly scaled problems.
 
 from __future__ import annotations
 
+import math
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from ._progress import ProgressLine
 from ._validate import as_samples, as_targets, positive_int, real_in_range
 from .losses import SquaredError
 from .network import Network
@@ -97,6 +100,7 @@ def solve(
     method: str = "levenberg-marquardt",
     tolerance: float = _DEFAULT_TOLERANCE,
     max_evaluations: int | None = None,
+    progress: bool = False,
 ) -> SolveResult:
     """Least-squares fit of all parameters of ``net`` to ``(X, y)``; see the module docstring.
 
@@ -125,6 +129,10 @@ def solve(
     max_evaluations:
         Limit on residual (LM) or function-and-gradient (L-BFGS) evaluations;
         default ``1000 * (n_params + 1)`` (L-BFGS: ``10000 * (n_params + 1)``).
+    progress:
+        Show on stderr, at most twice a second and once at the end, the
+        evaluations so far, the lowest residual sum of squares seen and the
+        elapsed time (one line rewritten in place on a terminal).
 
     >>> import numpy as np, tinyprop as tp
     >>> from tinyprop.solve import solve
@@ -151,8 +159,15 @@ def solve(
     if max_evaluations is None:
         max_evaluations = (1000 if method == "levenberg-marquardt" else 10000) * (n_params + 1)
     max_evaluations = positive_int(max_evaluations, "max_evaluations")
+    if not isinstance(progress, bool):
+        raise TypeError(f"progress must be True or False, got {progress!r}")
     fit = _levenberg_marquardt if method == "levenberg-marquardt" else _lbfgs
-    theta, counts = fit(work, X64, y64, theta0, tolerance, max_evaluations)
+    report = _Progress(method, max_evaluations) if progress else None
+    try:
+        theta, counts = fit(work, X64, y64, theta0, tolerance, max_evaluations, report)
+    finally:
+        if report is not None:
+            report.finish()
     work.set_vector(theta)
     residuals = work.predict(X64).ravel() - y64
     jacobian = work.jacobian(X64)
@@ -170,8 +185,44 @@ def solve(
     )
 
 
+class _Progress:
+    """What ``progress=True`` shows: the solver's evaluations so far and the lowest ``rss`` seen."""
+
+    def __init__(self, method: str, max_evaluations: int) -> None:
+        self.method, self.max_evaluations = method, max_evaluations
+        self.evaluations = self.derivatives = 0
+        self.lowest = math.inf
+        self.started = time.perf_counter()
+        self.line = ProgressLine(every=0.5)
+
+    def evaluated(self, rss: float, *, with_derivative: bool = False) -> None:
+        self.evaluations += 1
+        self.derivatives += with_derivative
+        self.lowest = min(self.lowest, rss)
+        self._show()
+
+    def differentiated(self) -> None:
+        self.derivatives += 1
+        self._show()
+
+    def finish(self) -> None:
+        if self.evaluations:  # nothing to report when the solver refused to start
+            self._show(force=True)
+        self.line.finish()
+
+    def _show(self, force: bool = False) -> None:
+        what = "Jacobians" if self.method == "levenberg-marquardt" else "gradients"
+        self.line.show(
+            f"{self.method}: {self.evaluations} of at most {self.max_evaluations} evaluations, "
+            f"{self.derivatives} {what}, lowest rss {self.lowest:.6g}, "
+            f"elapsed {time.perf_counter() - self.started:.1f} s",
+            force=force,
+        )
+
+
 def _levenberg_marquardt(
-    work: Network, X: np.ndarray, y: np.ndarray, theta0: np.ndarray, tolerance: float, max_evaluations: int
+    work: Network, X: np.ndarray, y: np.ndarray, theta0: np.ndarray, tolerance: float, max_evaluations: int,
+    report: _Progress | None,
 ) -> tuple[np.ndarray, dict[str, Any]]:
     if y.size < theta0.size:
         raise ValueError(
@@ -181,10 +232,15 @@ def _levenberg_marquardt(
 
     def residuals(theta: np.ndarray) -> np.ndarray:
         work.set_vector(theta)
-        return work.predict(X).ravel() - y
+        r = work.predict(X).ravel() - y
+        if report is not None:
+            report.evaluated(float(r @ r))
+        return r
 
     def jacobian(theta: np.ndarray) -> np.ndarray:
         work.set_vector(theta)
+        if report is not None:
+            report.differentiated()
         return work.jacobian(X)
 
     from scipy import optimize  # imported where used: `import tinyprop` stays numpy-only
@@ -197,7 +253,8 @@ def _levenberg_marquardt(
 
 
 def _lbfgs(
-    work: Network, X: np.ndarray, y: np.ndarray, theta0: np.ndarray, tolerance: float, max_evaluations: int
+    work: Network, X: np.ndarray, y: np.ndarray, theta0: np.ndarray, tolerance: float, max_evaluations: int,
+    report: _Progress | None,
 ) -> tuple[np.ndarray, dict[str, Any]]:
     loss = SquaredError()
     target = y.reshape(X.shape[0], work.n_out)
@@ -206,7 +263,10 @@ def _lbfgs(
         work.set_vector(theta)
         out, trace = work.forward(X)
         grads, _ = work.backward(trace, loss.gradient(out, target), need_input=False)
-        return loss.value(out, target), np.concatenate([g.ravel() for g in grads])
+        value = loss.value(out, target)
+        if report is not None:
+            report.evaluated(2 * value, with_derivative=True)  # E = rss / 2
+        return value, np.concatenate([g.ravel() for g in grads])
 
     from scipy import optimize
 

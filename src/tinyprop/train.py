@@ -41,13 +41,13 @@ from __future__ import annotations
 
 import math
 import os
-import sys
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
 import numpy as np
 
+from ._progress import ProgressLine
 from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, require_finite
 from .activations import Tanh
 from .layers import Affine, Standardize, Unstandardize
@@ -498,7 +498,7 @@ class _Run:
         if self.patience is not None and self.validation is None:
             raise ValueError("patience (early stopping) needs validation data: pass validation=(X_val, y_val)")
         self.l2 = real_in_range(l2, "l2", low=0.0)
-        self.progress = progress
+        self.progress_line = ProgressLine() if progress else None
         self.rng = np.random.default_rng(seed)
         self.settings = {
             "batch_size": self.batch_size,
@@ -720,7 +720,7 @@ class _Run:
         )
 
     def _show_progress(self) -> None:
-        if not self.progress:
+        if self.progress_line is None:
             return
         elapsed = time.perf_counter() - self.started
         done = self.epoch - self.first_epoch_of_call + 1
@@ -728,24 +728,11 @@ class _Run:
         line = f"epoch {self.epoch}/{self.epochs}  training loss {self.training_loss[-1]:.6g}"
         if self.validation_loss is not None:
             line += f"  validation loss {self.validation_loss[-1]:.6g}"
-        line += f"  elapsed {elapsed:.1f} s  remaining ~{remaining:.1f} s"
-        if _is_terminal(sys.stderr):
-            sys.stderr.write("\r" + line + "\033[K")
-        else:
-            sys.stderr.write(line + "\n")
-        sys.stderr.flush()
+        self.progress_line.show(line + f"  elapsed {elapsed:.1f} s  remaining ~{remaining:.1f} s")
 
     def _finish_progress(self) -> None:
-        if self.progress and self.epoch >= self.first_epoch_of_call and _is_terminal(sys.stderr):
-            sys.stderr.write("\n")
-            sys.stderr.flush()
-
-
-def _is_terminal(stream: Any) -> bool:
-    try:
-        return bool(stream.isatty())
-    except (AttributeError, ValueError):
-        return False
+        if self.progress_line is not None:
+            self.progress_line.finish()
 
 
 def _check_validation(validation: Any, net: Network) -> tuple[np.ndarray, np.ndarray] | None:

@@ -17,7 +17,8 @@ from ..csvdata import CsvError, CsvTable, read_csv
 from ..io import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
 from ..registry import activation_class
-from ..train import EpochInfo, _is_terminal  # the training loop's own test for a terminal
+from .._progress import is_terminal
+from ..train import EpochInfo
 
 USAGE = 2  # exit status: the command line is wrong
 FAILURE = 1  # exit status: a file, the data or the computation failed
@@ -169,7 +170,7 @@ class EpochProgress:
     def __init__(self, stream: TextIO = sys.stderr, clock: Callable[[], float] = time.monotonic) -> None:
         self.stream = stream
         self.clock = clock
-        self.terminal = _is_terminal(stream)
+        self.terminal = is_terminal(stream)
         self.last_shown = -math.inf
         self.open_line = False
 

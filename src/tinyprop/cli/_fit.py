@@ -196,7 +196,8 @@ def fit(net: Network, data: Dataset, split: Split, settings: FitSettings, progre
             "best_validation_loss": finite_or_none(result.best_validation_loss),
         }
         return FitOutcome(summary, result.history, time.perf_counter() - started)
-    solved = solve(net, X_train, Y_train, method=settings.method, max_evaluations=settings.max_evaluations)
+    solved = solve(net, X_train, Y_train, method=settings.method, max_evaluations=settings.max_evaluations,
+                   progress=progress is not None)  # the solver's own progress line, on stderr like the epochs
     summary = {
         "success": solved.success,
         "message": solved.message,
