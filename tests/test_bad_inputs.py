@@ -268,6 +268,9 @@ ROWS = [
     Row("check-gradient-negative-tolerance",
         lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError(), tolerance=-1.0), ValueError,
         r"tolerance must be a finite number in \(0\.0, inf\], got -1\.0"),
+    Row("check-gradient-sample-too-small",
+        lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError(), parameters=3), ValueError,
+        r"parameters must be an integer of at least 4 \(one per parameter array\) or None for all, got 3"),
 ]
 
 

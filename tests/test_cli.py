@@ -176,6 +176,12 @@ def test_check_passes_on_generated_rows_and_on_csv_rows(demo_model, csv_file):
     assert from_csv.returncode == 0, from_csv.stderr
     assert "5 rows of" in from_csv.stdout and "PASSED" in from_csv.stdout
 
+    sampled = run_cli("check", str(demo_model), "--parameters", str(n_arrays + 3), "--seed", "2")
+    assert sampled.returncode == 0, sampled.stderr
+    n_params = tp.load(demo_model).n_params
+    assert f"checked a random sample of {n_arrays + 3} of {n_params} parameters" in sampled.stdout
+    assert sampled.stdout.count("  ok   layer") == n_arrays  # every array is still represented
+
 
 class WrongSlopeTanh(tp.Tanh):
     """tanh with a derivative 10% too large: a deliberately wrong closed form."""

@@ -73,6 +73,8 @@ CASES = [
     ("tampered-model", ["inspect", "tampered.npz"], 1, ["tampered.npz", "layer0.weight", "SHA-256", "changed"]),
     ("check-columns-not-in-file", ["check", "model.npz", "--data", "bad_cell.csv"], 2,
      ["no column named 'u1', 'u2'", "the model's input names"]),
+    ("check-sample-too-small", ["check", "model.npz", "--parameters", "3"], 2,
+     ["--parameters must be at least 4 for this model", "got 3"]),
     ("export-keyword-name", ["export", "model.npz", "--name", "int"], 2, ["--name", "keyword", "'int'"]),
     ("demo-out-is-a-file", ["demo", "--out", "good.csv"], 2, ["'good.csv' is an existing file"]),
     ("unknown-command", ["frobnicate"], 2, ["invalid choice: 'frobnicate'", "demo"]),

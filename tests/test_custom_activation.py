@@ -106,3 +106,13 @@ def test_check_activation_reports_non_finite_and_upcasting():
 
     report = tp.check_activation(Upcasting())
     assert any("float32" in p for p in report.problems)
+
+
+def test_a_sampled_gradient_check_still_catches_a_wrong_derivative():
+    """One parameter from every array is always in the sample, so the arrays below a wrong unit fail."""
+    X, y = _data()
+    bad = tp.Network([tp.Affine(2, 5), WrongSoftsign(), tp.Affine(5, 1)], seed=0)
+    report = tp.check_gradient(bad, X, y, tp.MeanSquaredError(), parameters=4, seed=1)
+    assert report.indices.size == 4 and not report.passed
+    assert "checked a random sample of 4 of 21 parameters" in str(report)
+    assert {a.name for a in report.failures} >= {"layer 0 weight"}

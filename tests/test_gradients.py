@@ -257,3 +257,23 @@ def test_a_residual_near_the_huber_threshold_shortens_only_its_own_rows_steps():
     report = tp.check_gradient(net, X, y, loss)
     assert report.kink_margin == pytest.approx(3e-5, rel=1e-6)
     assert report.max_rel_error <= 1e-6, str(report)
+
+
+@settings(max_examples=15, deadline=None)
+@given(training_cases(dtype=np.float64), st.integers(0, 10**6))
+def test_a_sampled_check_equals_the_full_check_at_the_sampled_parameters(case, seed):
+    """``parameters=k``: k distinct positions, one in every array, and the full check's numbers there."""
+    net, X, y, loss = case
+    k = len(net.params) + (net.n_params - len(net.params)) // 2
+    try:
+        full = tp.check_gradient(net, X, y, loss)
+    except ValueError:
+        reject()  # a pre-activation exactly on a kink
+    part = tp.check_gradient(net, X, y, loss, parameters=k, seed=seed)
+    assert part.indices.size == min(k, net.n_params) and np.all(np.diff(part.indices) > 0)
+    starts = np.cumsum([0] + [p.size for p in net.params])
+    assert all(np.any((part.indices >= lo) & (part.indices < hi)) for lo, hi in zip(starts[:-1], starts[1:]))
+    np.testing.assert_array_equal(part.analytic, full.analytic[part.indices])
+    np.testing.assert_allclose(part.numerical, full.numerical[part.indices], rtol=1e-9, atol=1e-12 * np.abs(full.numerical).max())
+    again = tp.check_gradient(net, X, y, loss, parameters=k, seed=seed)
+    np.testing.assert_array_equal(again.indices, part.indices)

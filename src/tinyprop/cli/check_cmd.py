@@ -49,7 +49,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="target columns of DATA.csv (default: the output names stored in the model)")
     parser.add_argument("--delimiter", default=",", help="field separator of DATA.csv (default ',')")
     parser.add_argument("--rows", type=_args.positive_int, default=16, help="rows to check on (default 16)")
-    parser.add_argument("--seed", type=_args.seed, default=0, help="seed for choosing or generating rows (default 0)")
+    parser.add_argument("--seed", type=_args.seed, default=0, help="seed for choosing or generating rows and the --parameters sample (default 0)")
+    parser.add_argument("--parameters", type=_args.positive_int, metavar="N",
+                        help="check a random sample of N parameters (drawn with --seed; one from every weight and "
+                             "bias array) instead of all: the check costs a few dozen forward passes per parameter")
     parser.add_argument("--tolerance", type=_args.positive_float,
                         help="largest accepted relative error (default 1e-6 for float64 models, 1e-3 for float32)")
     add_import_option(parser)
@@ -59,6 +62,9 @@ def run(args: argparse.Namespace) -> int:
     import_modules(args.imports)
     model = read_model(args.model)
     net = model.network
+    if args.parameters is not None and args.parameters < len(net.params):
+        raise CommandError(f"--parameters must be at least {len(net.params)} for this model (one from every weight "
+                           f"and bias array), got {args.parameters}", USAGE)
     rng = np.random.default_rng(args.seed)
     if args.data:
         X, Y = _rows_from_csv(args, model.metadata, net, rng)
@@ -67,7 +73,8 @@ def run(args: argparse.Namespace) -> int:
         X, Y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"
     try:
-        report = check_gradient(net, X, Y, MeanSquaredError(), tolerance=args.tolerance)
+        report = check_gradient(net, X, Y, MeanSquaredError(), tolerance=args.tolerance,
+                                parameters=args.parameters, seed=args.seed)
     except ValueError as exc:  # a pre-activation exactly on a kink, rows that do not fit the model, ...
         raise CommandError(f"cannot check on these rows: {exc}") from None
     print(f"model: {args.model} (fingerprint {model.fingerprint}, {net.n_params} parameters, {net.dtype.name})")
