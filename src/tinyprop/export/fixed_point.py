@@ -1,0 +1,309 @@
+"""Fixed-point C99 inference code: int16 numbers in Q formats, integer arithmetic only.
+
+:func:`export_c_fixed_point` writes ``<name>.h`` and ``<name>.c`` for
+microcontrollers without a floating-point unit:
+
+- ``void <name>_predict_q(const int16_t *x_q, int16_t *y_q)``; input ``j`` is
+  passed as ``x_q[j] = round(x[j] 2**f_j)`` and output ``k`` read as ``y[k] =
+  y_q[k] / 2**g_k``, with the fractional bits ``f_j``, ``g_k`` written in the
+  header (``<NAME>_INPUT_FRAC_BITS_<j>``, ``<NAME>_OUTPUT_FRAC_BITS_<k>``) and
+  in the returned report;
+- no ``float`` or ``double`` anywhere, only ``<stdint.h>``; weights as
+  ``static const int16_t``; no dynamic allocation, no mutable global state;
+  the workspace is two local int16 arrays sized at generation time; ``x_q`` is
+  read completely before ``y_q`` is written, so they may be the same array;
+- products of int16 numbers accumulate in int64 (an int32 accumulator would
+  overflow for a 16-input layer of full-scale numbers: ``16 * 2**30 = 2**34``);
+  results are rounded to nearest, ties away from zero, and saturated to int16,
+  never wrapped.
+
+How formats are chosen and every step computed is stated in
+:mod:`tinyprop.export._fixed_program`; the lookup tables of Tanh and Sigmoid
+and their error bounds in :mod:`tinyprop.export._fixed_tables`. Scaling
+layers are steps of their own, ``(x - centre) * multiplier``: the difference
+is exact in integers, so a mean that is large against the spread (a 14.4 V
+pack voltage varying by 1.3 V) costs no precision, whereas folding it into
+the first affine layer would subtract large products in the accumulator's
+format and needs finer weights than int16 holds for such a column.
+
+The same integer arithmetic runs in Python (numpy int64,
+:class:`~tinyprop.export._fixed_program.IntegerProgram`) on the calibration
+rows to fill the :class:`FixedPointReport`: the formats, the error against
+``Network.predict`` in float64, and how often each step saturated. The tests
+compile the C code and require it to agree with that reference bit for bit.
+
+Not certified for safety functions: validation on the target hardware and
+against the applicable functional-safety standards, local codes and qualified
+review is the user's responsibility.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+
+from .._validate import as_samples
+from ..network import Network
+from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
+from ._fixed_program import (
+    IntegerProgram,
+    QAffine,
+    QLeaky,
+    QScaling,
+    QTable,
+    build_program,
+)
+from ._header import header_lines, provenance
+from ._plan import make_plan
+from ._text import check_metadata, check_name, comment_text, output_directory, write_source
+
+__all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]
+
+_INT_MAX = 32767  # the least INT_MAX of C99: loop indices are int
+
+
+@dataclass(frozen=True)
+class StepFormat:
+    """The formats of one integer step: constants, result, and saturations on the calibration rows.
+
+    ``constant_bits`` are the fractional bits of the weights (Affine), of the
+    multipliers per column (scaling) or of the Q15 slope (LeakyReLU), empty for
+    other steps; ``bias_bits`` is ``None`` without a bias.
+    """
+
+    layer: int
+    description: str
+    constant_bits: tuple[int, ...]
+    bias_bits: int | None
+    result_bits: tuple[int, ...]
+    saturations: int
+
+
+@dataclass(frozen=True, eq=False)
+class FixedPointReport:
+    """What :func:`export_c_fixed_point` wrote, the formats it chose, and the measured error.
+
+    The errors compare the integer arithmetic (its outputs converted with
+    ``y_q / 2**g``, inputs converted with ``round(x 2**f)``) with
+    ``Network.predict`` in float64 on the calibration rows, per output:
+    ``max_abs_error``, ``rms_error``, and both divided by ``output_range``
+    (largest minus smallest reference output; ``nan`` where that is 0).
+    ``input_saturations`` counts inputs clamped by the conversion; each
+    step's own count is in ``steps``. ``warnings`` names every step that
+    saturated on the calibration rows.
+    """
+
+    header: Path
+    source: Path
+    headroom: float
+    n_calibration: int
+    input_bits: tuple[int, ...]
+    output_bits: tuple[int, ...]
+    input_saturations: int
+    steps: tuple[StepFormat, ...]
+    tables: tuple[str, ...]
+    max_abs_error: np.ndarray
+    rms_error: np.ndarray
+    output_range: np.ndarray
+    warnings: tuple[str, ...]
+    program: IntegerProgram = field(repr=False)
+
+    @property
+    def max_rel_error(self) -> np.ndarray:
+        return _relative(self.max_abs_error, self.output_range)
+
+    @property
+    def rms_rel_error(self) -> np.ndarray:
+        return _relative(self.rms_error, self.output_range)
+
+    def to_integers(self, X: Any) -> np.ndarray:
+        """Inputs ``(n, n_in)`` as the generated code takes them: int16 ``round(x 2**f)``, saturated."""
+        x = as_samples(X, "X", len(self.input_bits), np.dtype(np.float64))
+        return self.program.to_integers(x)[0].astype(np.int16)
+
+    def predict_q(self, x_q: Any) -> np.ndarray:
+        """The generated code's outputs (int16) for int16 inputs ``(n, n_in)``, computed in Python."""
+        return self.program.run(np.asarray(x_q))[0].astype(np.int16)
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The generated code's outputs in real units for real inputs ``(n, n_in)`` (float64)."""
+        return self.program.to_values(self.predict_q(self.to_integers(X)))
+
+    def saturations(self, X: Any) -> dict[str, int]:
+        """How many values the generated code would clamp for the rows ``X``: ``"input"`` and each step."""
+        x_q, clamped = self.program.to_integers(as_samples(X, "X", len(self.input_bits), np.dtype(np.float64)))
+        counts = self.program.run(x_q)[1]
+        return {"input": clamped, **{step.label: count for step, count in zip(self.program.steps, counts)}}
+
+    def __str__(self) -> str:
+        rows = [f"Fixed-point export {self.header.name} / {self.source.name}: {len(self.input_bits)} inputs, "
+                f"{len(self.output_bits)} outputs, {self.n_calibration} calibration rows, "
+                f"headroom {self.headroom:g}",
+                f"  inputs: {describe_formats(self.input_bits)}; saturated on calibration rows: "
+                f"{self.input_saturations}",
+                f"  {'layer':>5}  {'step':<40} {'constants':<14} {'bias':<5} {'result':<14} saturated"]
+        for step in self.steps:
+            bias = "-" if step.bias_bits is None else f"Q{step.bias_bits}"
+            constants = describe_formats(step.constant_bits) if step.constant_bits else "-"
+            rows.append(f"  {step.layer:>5}  {step.description[:40]:<40} {constants:<14} {bias:<5} "
+                        f"{describe_formats(step.result_bits):<14} {step.saturations}")
+        rows.append(f"  {'output':<7} {'format':<7} {'max |error|':>12} {'rms error':>12} {'range':>12} "
+                    f"{'max/range':>10} {'rms/range':>10}")
+        for k, bits in enumerate(self.output_bits):
+            rows.append(f"  y[{k}]{'':<3} Q{bits:<6} {self.max_abs_error[k]:>12.4g} {self.rms_error[k]:>12.4g} "
+                        f"{self.output_range[k]:>12.4g} {self.max_rel_error[k]:>10.3g} "
+                        f"{self.rms_rel_error[k]:>10.3g}")
+        rows += [f"  {table}" for table in self.tables]
+        rows += [f"  WARNING: {warning}" for warning in self.warnings] or ["  no saturation on the calibration rows"]
+        return "\n".join(rows)
+
+
+def _relative(error: np.ndarray, spread: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(spread > 0, error / np.where(spread > 0, spread, 1.0), np.nan)
+
+
+def export_c_fixed_point(
+    net: Network,
+    path: Any,
+    calibration_X: Any,
+    *,
+    name: str = "model",
+    headroom: float = 2.0,
+    metadata: Mapping[str, Any] | None = None,
+) -> FixedPointReport:
+    """Write integer-only ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
+
+    Parameters
+    ----------
+    net:
+        The network (float32 or float64; its numbers are used in float64). Built-in
+        Identity, ReLU, LeakyReLU (slope < 1), Tanh and Sigmoid activations,
+        Affine, Standardize and Unstandardize layers; at least one Affine. It
+        is not modified.
+    path:
+        An existing directory; files of the same names are overwritten.
+    calibration_X:
+        Inputs ``(n, n_in)``, finite, covering the range the device will see:
+        every format between steps is chosen from the largest magnitude these
+        rows produce there, times ``headroom``. Values outside that range
+        later are saturated, not wrapped.
+    name:
+        Prefix of every generated identifier, as for :func:`~tinyprop.export.export_c`.
+    headroom:
+        Factor (>= 1) between the largest calibrated magnitude of a vector and
+        the largest its format holds; 2 leaves one bit of room.
+    metadata:
+        Names and units of inputs and outputs and a description, written into
+        the header comment (escaped), as for :func:`~tinyprop.export.export_c`.
+
+    Returns
+    -------
+    A :class:`FixedPointReport`.
+
+    Raises
+    ------
+    TypeError / ValueError
+        For a bad argument, an activation other than the supported ones (named
+        in the message) or numbers that no int16 format can hold.
+    """
+    name = check_name(name)
+    if name.startswith("_"):
+        raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
+    if isinstance(headroom, bool) or not isinstance(headroom, (int, float)) or not math.isfinite(headroom) \
+            or headroom < 1:
+        raise ValueError(f"headroom must be a finite number >= 1, got {headroom!r}")
+    directory = output_directory(path)
+    plan = make_plan(net, np.dtype(np.float64))
+    widest = max([plan.n_in] + [step.width for step in plan.steps])
+    if widest > _INT_MAX:
+        raise ValueError(f"layers may be at most {_INT_MAX} wide for int loop indices, got width {widest}")
+    meta = check_metadata(metadata, plan.n_in, plan.n_out)
+    X = as_samples(calibration_X, "calibration_X", plan.n_in, np.dtype(np.float64))
+    program = build_program(plan, X, float(headroom))
+
+    x_q, input_saturations = program.to_integers(X)
+    y_q, counts = program.run(x_q)
+    reference = (net if net.dtype == np.float64 else net.copy(dtype=np.float64)).predict(X)
+    error = program.to_values(y_q) - reference
+    steps = tuple(_step_format(step, count) for step, count in zip(program.steps, counts))
+    warnings = ([f"input conversion saturated {input_saturations} values"] if input_saturations else [])
+    warnings += [f"layer {s.layer} ({s.description}) saturated {s.saturations} values"
+                 for s in steps if s.saturations]
+    tables = tuple(dict.fromkeys(step.table.describe() for step in program.steps if isinstance(step, QTable)))
+    report_numbers = dict(
+        max_abs_error=np.max(np.abs(error), axis=0), rms_error=np.sqrt(np.mean(error**2, axis=0)),
+        output_range=np.max(reference, axis=0) - np.min(reference, axis=0))
+
+    origin = provenance(net)
+    interface = _interface(name, program, float(headroom), len(X), steps, tables, report_numbers, warnings)
+
+    def comment(filename: str) -> list[str]:
+        lines = header_lines(f"{filename}: neural-network inference in C99 with integers only, generated by tinyprop",
+                             plan, meta, origin, interface)
+        return ["/*"] + [f" * {line}".rstrip() for line in lines] + [" */"]
+
+    header = write_source(directory, f"{name}.h", header_file(name, comment(f"{name}.h"), program, origin.fingerprint))
+    source = write_source(directory, f"{name}.c", source_file(name, comment(f"{name}.c"), program))
+    return FixedPointReport(header, source, float(headroom), len(X), program.in_bits, program.out_bits,
+                            input_saturations, steps, tables, warnings=tuple(warnings), program=program,
+                            **report_numbers)
+
+
+def _step_format(step, count: int) -> StepFormat:
+    description = step.label.split(" (", 1)[1][:-1] if " (" in step.label else step.label
+    if isinstance(step, QAffine):
+        return StepFormat(step.layer, description, (step.weight_bits,), step.bias_bits, step.out_bits, count)
+    if isinstance(step, QScaling):
+        return StepFormat(step.layer, description, step.multiplier_bits, None, step.out_bits, count)
+    if isinstance(step, QLeaky):
+        return StepFormat(step.layer, description, (15,), None, step.out_bits, count)
+    return StepFormat(step.layer, description, (), None, step.out_bits, count)
+
+
+def _interface(name: str, program: IntegerProgram, headroom: float, n_rows: int, steps: tuple[StepFormat, ...],
+               tables: tuple[str, ...], numbers: dict[str, np.ndarray], warnings: list[str]) -> list[str]:
+    macro = name.upper()
+    widths = buffer_widths(program)
+    stack = 2 * sum(widths.values())
+    lines = [
+        f"Interface (declared in {name}.h):",
+        f"  {signature(name)};",
+        f"  x_q holds {macro}_N_INPUTS = {len(program.in_bits)} int16 values, y_q receives "
+        f"{macro}_N_OUTPUTS = {len(program.out_bits)}; they may be the same array.",
+        "Numbers: an int16 q in format Qf stands for the value q / 2^f (f fractional bits; f may be",
+        "negative). Convert each input x[j] with f = " + macro + "_INPUT_FRAC_BITS_j:",
+        "  x_q[j] = round(x[j] * 2^f), ties away from zero, then clamped to [-32768, 32767];",
+        "and each output with g = " + macro + "_OUTPUT_FRAC_BITS_k:  y[k] = y_q[k] / 2^g.",
+    ]
+    lines += [f"  x_q[{j}]: Q{b}, range {integer_range(b)}" for j, b in enumerate(program.in_bits)]
+    lines += [f"  y_q[{k}]: Q{b}, range {integer_range(b)}" for k, b in enumerate(program.out_bits)]
+    lines += [
+        "Arithmetic: integers only (no floating point); int16 numbers, products accumulated in",
+        "int64, results rounded to nearest (ties away from zero) and saturated to int16, never",
+        "wrapped. No dynamic allocation, no mutable global state (reentrant); the only",
+        "dependency is <stdint.h>. Scaling layers are computed as (x - centre) * multiplier.",
+        f"Stack: work arrays of {' and '.join(str(w) for w in widths.values())} int16_t ({stack} bytes) "
+        "plus a few scalars.",
+        "",
+        f"Formats chosen from {n_rows} calibration rows, headroom {headroom:g} (constants: weights,",
+        "multipliers or slope; result: the step's output):",
+    ]
+    for step in steps:
+        constants = describe_formats(step.constant_bits) if step.constant_bits else "-"
+        bias = "" if step.bias_bits is None else f", bias Q{step.bias_bits}"
+        lines.append(f"  layer {step.layer}: constants {constants}{bias}, result {describe_formats(step.result_bits)}")
+    lines += [f"{table}" for table in tables]
+    lines.append("Measured on the calibration rows against Network.predict (float64), per output:")
+    for k in range(len(program.out_bits)):
+        spread = numbers["output_range"][k]
+        relative = f"{numbers['max_abs_error'][k] / spread:.3g}" if spread > 0 else "n/a"
+        lines.append(f"  y[{k}]: largest |error| {numbers['max_abs_error'][k]:.3g}, rms {numbers['rms_error'][k]:.3g}, "
+                     f"largest / observed range {relative}")
+    lines += [f"WARNING: {comment_text(w)} on the calibration rows." for w in warnings] or [
+        "No saturation on the calibration rows; inputs beyond them may saturate (clamp)."]
+    return lines
