@@ -273,7 +273,8 @@ def build_program(plan: Plan, X: np.ndarray, headroom: float) -> IntegerProgram:
     in_bits = bits
     program: list[QStep] = []
     for index, step in enumerate(steps):
-        where = f"layer {step.layer} ({step.describe()})"
+        what = f"{step.kind} {step.width} columns" if isinstance(step, ScalingStep) else step.describe()
+        where = f"layer {step.layer} ({what})"
         last = all(_preserves_format(s) for s in steps[index + 1:])
         if isinstance(step, AffineStep):
             out = _formats(ranges[index + 1], headroom, last)
