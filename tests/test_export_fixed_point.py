@@ -140,7 +140,6 @@ def _logistic(v: float) -> float:
 def test_table_bound_is_not_loose():
     """The measured worst case on a fine grid (2**-14 steps) reaches most of the bound."""
     for table in TABLES.values():
-        worst = 0.0
         z_q = np.arange(-32768, 32768)
         got = lookup(table, z_q, 12) / 16384.0
         z = z_q / 4096.0

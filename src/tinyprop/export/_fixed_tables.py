@@ -52,7 +52,7 @@ import numpy as np
 
 from ..activations import Activation, Sigmoid, Tanh
 
-__all__ = ["OUT_BITS", "Table", "TABLES", "table_for", "lookup", "round_half_away"]
+__all__ = ["OUT_BITS", "Table", "TABLES", "table_for", "lookup", "c_function", "round_half_away"]
 
 OUT_BITS = 14
 ONE = 1 << OUT_BITS
