@@ -157,7 +157,7 @@ def test_narrow_rounds_ties_away_from_zero_and_saturates():
 
 # ----------------------------------------------------------------------------- bit for bit
 @needs_cc
-@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(case=fixed_cases())
 def test_compiled_code_equals_the_integer_reference(tmp_path_factory, case):
     net, X, fresh = case
