@@ -11,7 +11,7 @@ from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplu
 from .build import build_mlp
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
-from .export import agreement_bound, export_c, export_python
+from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .layers import Affine, ColumnScaling, Standardize, Unstandardize
 from .losses import (
@@ -62,6 +62,7 @@ __all__ = [
     "Ensemble",
     "EpochInfo",
     "ExponentialSchedule",
+    "FixedPointReport",
     "GradientReport",
     "History",
     "HuberError",
@@ -106,6 +107,7 @@ __all__ = [
     "check_gradient",
     "describe",
     "export_c",
+    "export_c_fixed_point",
     "export_python",
     "fingerprint",
     "fit_tabular_regression",

@@ -2,6 +2,10 @@
 
 - :func:`export_c` writes ``<name>.h`` and ``<name>.c`` (C99, ``<math.h>`` only);
 - :func:`export_python` writes ``<name>.py`` (standard library ``math`` only);
+- :func:`export_c_fixed_point` writes ``<name>.h`` and ``<name>.c`` with
+  integer arithmetic only (``<stdint.h>``, int16 Q formats chosen from
+  calibration rows) and returns a :class:`FixedPointReport` of the measured
+  error against ``Network.predict``;
 - :func:`agreement_bound` gives the tolerance for comparing the generated
   code's results with ``Network.predict``.
 
@@ -16,6 +20,7 @@ review is the user's responsibility.
 
 from .bound import agreement_bound
 from .c99 import export_c
+from .fixed_point import FixedPointReport, StepFormat, export_c_fixed_point
 from .python import export_python
 
-__all__ = ["agreement_bound", "export_c", "export_python"]
+__all__ = ["agreement_bound", "export_c", "export_c_fixed_point", "export_python", "FixedPointReport", "StepFormat"]
