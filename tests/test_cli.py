@@ -223,6 +223,26 @@ def test_export_writes_c_and_python_that_agree_with_the_model(demo_model, tmp_pa
     assert "double" in (tmp_path / "c" / "model.h").read_text()
 
 
+def test_export_c_fixed_point_calibrates_on_the_model_input_columns(demo_model, csv_file, tmp_path):
+    out = tmp_path / "q"
+    result = run_cli("export", str(demo_model), "--out", str(out), "--name", "plant", "--language", "c-fixed",
+                     "--calibration", str(csv_file[0]), "--no-metadata")
+    assert result.returncode == 0, result.stderr
+    assert sorted(p.name for p in out.iterdir()) == ["plant_q.c", "plant_q.h"]
+    assert "Fixed-point export plant_q.h / plant_q.c: 3 inputs, 2 outputs, 120 calibration rows" in result.stdout
+    assert "no saturation on the calibration rows" in result.stdout and result.stderr == ""
+    # the same code as the library's on the same rows: the command read the stored input names x0, x1, x2
+    (tmp_path / "lib").mkdir()
+    library = tp.export_c_fixed_point(tp.load(demo_model), tmp_path / "lib", csv_file[1], name="plant_q")
+    assert f"inputs: {', '.join(f'Q{b}' for b in library.input_bits)}" in result.stdout
+    assert (out / "plant_q.c").read_text() == (tmp_path / "lib" / "plant_q.c").read_text()
+    if shutil.which("gcc"):
+        compiled = subprocess.run(["gcc", "-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic", "-c",
+                                   str(out / "plant_q.c"), "-o", str(tmp_path / "plant_q.o")],
+                                  capture_output=True, text=True)
+        assert compiled.returncode == 0, compiled.stderr
+
+
 def test_bench_runs_the_bundled_benchmark_in_quick_mode(tmp_path):
     result = run_cli("bench", "--quick", "--json", str(tmp_path / "bench.json"))
     assert result.returncode == 0, result.stderr

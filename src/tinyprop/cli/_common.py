@@ -102,6 +102,14 @@ def numeric_columns(table: CsvTable, inputs: list[str], targets: list[str]) -> t
         raise CommandError(str(exc)) from None
 
 
+def stored_names(metadata: dict, key: str) -> list[str] | None:
+    """The column names a model's metadata lists under ``key`` (``"inputs"`` or ``"outputs"``), if well formed."""
+    entries = metadata.get(key)
+    if not isinstance(entries, list) or not all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries):
+        return None
+    return [e["name"] for e in entries]
+
+
 def output_folder(path: str | os.PathLike[str]) -> Path:
     """``path`` as a folder, created (with parents) if missing; refuse an existing file."""
     folder = Path(path)

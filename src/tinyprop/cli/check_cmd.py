@@ -27,7 +27,7 @@ from ..layers import Standardize, Unstandardize
 from ..losses import MeanSquaredError
 from ..network import Network
 from . import _args
-from ._common import USAGE, CommandError, numeric_columns, read_model, read_table, require_columns
+from ._common import USAGE, CommandError, numeric_columns, read_model, read_table, require_columns, stored_names
 from ._imports import add_import_option, import_modules
 
 HELP = "check a saved model's gradient against numerical differentiation (exit 1 if it fails)"
@@ -100,8 +100,8 @@ def _generated_rows(net: Network, rows: int, rng: np.random.Generator) -> tuple[
 def _rows_from_csv(
     args: argparse.Namespace, metadata: dict, net: Network, rng: np.random.Generator
 ) -> tuple[np.ndarray, np.ndarray]:
-    inputs = args.inputs or _stored_names(metadata, "inputs")
-    targets = args.targets or _stored_names(metadata, "outputs")
+    inputs = args.inputs or stored_names(metadata, "inputs")
+    targets = args.targets or stored_names(metadata, "outputs")
     if inputs is None or targets is None:
         raise CommandError("the model stores no column names; give --inputs and --targets", USAGE)
     labels = {
@@ -117,10 +117,3 @@ def _rows_from_csv(
         require_columns(table, names, labels[option])
     chosen = np.sort(rng.choice(len(table.rows), size=min(args.rows, len(table.rows)), replace=False))
     return numeric_columns(table.subset(chosen.tolist()), inputs, targets)
-
-
-def _stored_names(metadata: dict, key: str) -> list[str] | None:
-    entries = metadata.get(key)
-    if not isinstance(entries, list) or not all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries):
-        return None
-    return [e["name"] for e in entries]

@@ -2,29 +2,49 @@
 
 The names and units of inputs and outputs and the description stored in the
 model's metadata (as ``tinyprop train`` and ``tinyprop demo`` write them) go
-into the generated code's header comment and constants.
+into the generated code's header comment and constants. ``--language c-fixed``
+writes integer-only C (:func:`tinyprop.export_c_fixed_point`) as
+``<name>_q.h`` / ``<name>_q.c``; its number formats come from the input
+columns of a ``--calibration`` CSV file.
 """
 
 from __future__ import annotations
 
 import argparse
+import sys
 from typing import Any
 
-from ..export import export_c, export_python
+import numpy as np
+
+from ..export import export_c, export_c_fixed_point, export_python
 from ..export._text import check_name
-from ._common import USAGE, CommandError, describe_os_error, output_folder, read_model
+from ..io import ModelFile
+from . import _args
+from ._common import (
+    USAGE,
+    CommandError,
+    describe_os_error,
+    numeric_columns,
+    output_folder,
+    read_model,
+    read_table,
+    require_columns,
+    stored_names,
+)
 from ._imports import add_import_option, import_modules
 
 HELP = "write C99 and/or plain-Python inference code for a model file"
 
-LANGUAGES = ("c", "python")
+LANGUAGES = ("c", "python", "c-fixed")
+DEFAULT_LANGUAGES = ("c", "python")
 _EXPORTED_KEYS = ("inputs", "outputs", "description")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL.npz", help="model file written by tinyprop")
     parser.add_argument("--language", choices=LANGUAGES, action="append",
-                        help="c or python; repeat for both (default: both)")
+                        help="c, python, or c-fixed (integers only, <stdint.h>; needs --calibration); repeat for "
+                             "several (default: c and python)")
     parser.add_argument("--out", default=".", metavar="DIR", help="folder for the files (default: the current "
                                                                   "folder; created if missing)")
     parser.add_argument("--name", default="model",
@@ -33,6 +53,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="number type of the C code (default float)")
     parser.add_argument("--no-metadata", action="store_true",
                         help="leave the model's names, units and description out of the code")
+    fixed = parser.add_argument_group("c-fixed", "number formats of the integer-only C code")
+    fixed.add_argument("--calibration", metavar="DATA.csv",
+                       help="rows whose input columns set the formats (cover the whole operating range)")
+    fixed.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
+                       help="input columns of DATA.csv (default: the input names stored in the model)")
+    fixed.add_argument("--delimiter", default=",", help="field separator of DATA.csv (default ',')")
+    fixed.add_argument("--headroom", type=_args.positive_float, default=2.0,
+                       help="margin above the largest calibrated magnitude, at least 1 (default 2)")
     add_import_option(parser)
 
 
@@ -41,18 +69,27 @@ def run(args: argparse.Namespace) -> int:
         check_name(args.name)
     except ValueError as exc:
         raise CommandError(f"--name: {exc}", USAGE) from None
+    languages = args.language or list(DEFAULT_LANGUAGES)
+    if ("c-fixed" in languages) != (args.calibration is not None):
+        raise CommandError("--language c-fixed needs --calibration DATA.csv" if args.calibration is None else
+                           "--calibration applies to --language c-fixed", USAGE)
+    if args.headroom < 1.0:
+        raise CommandError(f"--headroom must be at least 1, got {args.headroom:g}", USAGE)
     import_modules(args.imports)
     model = read_model(args.model)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
-    languages = args.language or list(LANGUAGES)
-    written = []
+    written, report = [], None
     try:
         if "c" in languages:
             dtype = "float32" if args.c_type == "float" else "float64"
             written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata)
         if "python" in languages:
             written.append(export_python(model.network, folder, name=args.name, metadata=metadata))
+        if "c-fixed" in languages:
+            report = export_c_fixed_point(model.network, folder, _calibration_rows(args, model),
+                                          name=f"{args.name}_q", headroom=args.headroom, metadata=metadata)
+            written += [report.header, report.source]
     except OSError as exc:
         raise CommandError(f"cannot write the code: {describe_os_error(exc)}") from None
     except (TypeError, ValueError) as exc:
@@ -60,7 +97,27 @@ def run(args: argparse.Namespace) -> int:
     for path in written:
         print(f"wrote {path}")
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
+    if report is not None:
+        print(report)
+        for warning in report.warnings:
+            print(f"tinyprop export: warning: {warning}", file=sys.stderr)
     return 0
+
+
+def _calibration_rows(args: argparse.Namespace, model: ModelFile) -> np.ndarray:
+    """The input columns of ``--calibration``: ``--inputs``, or the input names stored in the model."""
+    inputs = args.inputs or stored_names(model.metadata, "inputs")
+    if inputs is None:
+        raise CommandError("the model stores no input names; give --inputs", USAGE)
+    if len(inputs) != model.network.n_in:
+        raise CommandError(f"the model has {model.network.n_in} inputs, but {len(inputs)} columns are named: "
+                           f"{', '.join(inputs)}", USAGE)
+    table = read_table(args.calibration, args.delimiter)
+    require_columns(table, inputs, "--inputs" if args.inputs else "the model's input names (or give --inputs)")
+    X, _ = numeric_columns(table, inputs, [])
+    if X.shape[0] == 0:
+        raise CommandError(f"{args.calibration}: no data rows to calibrate on")
+    return X
 
 
 def _export_metadata(metadata: dict[str, Any]) -> dict[str, Any] | None:
