@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy import differentiate, special
+from scipy import special
 
 import tinyprop as tp
 from net_strategies import BUILT_IN_ACTIVATIONS

@@ -23,6 +23,7 @@ from tinyprop.cli import main
 from tinyprop.cli._common import EpochProgress
 from tinyprop.registry import register_activation
 from tinyprop.train import EpochInfo
+from fake_terminal import FakeTerminal
 
 INPUTS = ["x0", "x1", "x2"]
 TARGETS = ["y1", "y2"]
@@ -280,18 +281,13 @@ def test_every_public_name_is_in_the_api_reference():
     assert not missing, f"docs/api.md does not describe {missing}"
 
 
-class _Terminal(io.StringIO):
-    def isatty(self) -> bool:
-        return True
-
-
 def _epoch(epoch: int, epochs: int) -> EpochInfo:
     return EpochInfo(epoch=epoch, epochs=epochs, training_loss=0.5 / epoch, validation_loss=None, best_epoch=None,
                      elapsed=0.01 * epoch, capture=lambda: None)
 
 
 def test_progress_rewrites_one_line_on_a_terminal_at_most_ten_times_a_second():
-    stream, now = _Terminal(), [0.0]
+    stream, now = FakeTerminal(), [0.0]
     progress = EpochProgress(stream, clock=lambda: now[0])
     for epoch in range(1, 101):
         now[0] = epoch * 0.004  # 250 epochs a second

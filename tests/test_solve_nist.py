@@ -22,7 +22,6 @@ Run ``python tests/test_solve_nist.py`` to print the LRE table.
 
 from __future__ import annotations
 
-import io
 import sys
 
 import numpy as np
@@ -31,6 +30,7 @@ import pytest
 import tinyprop as tp
 from tinyprop.datasets import load_nist
 from tinyprop.solve import solve
+from fake_terminal import FakeTerminal
 
 PROBLEMS = ("Rat42", "Misra1a", "Misra1b", "Misra1d", "Lanczos3")
 LRE_CAP = 11.0
@@ -230,12 +230,7 @@ def test_progress_shows_evaluations_and_the_lowest_rss_on_stderr(capsys):
 
 
 def test_progress_rewrites_one_line_on_a_terminal_and_refuses_non_booleans(monkeypatch):
-    class Terminal(io.StringIO):
-        def isatty(self):
-            return True
-
-    terminal = Terminal()
-    monkeypatch.setattr(sys, "stderr", terminal)
+    monkeypatch.setattr(sys, "stderr", terminal := FakeTerminal())
     problem = load_nist("Misra1a")
     solve(build("Misra1a", problem.start1), problem.x, problem.y, method="lbfgs", progress=True)
     text = terminal.getvalue()

@@ -8,7 +8,6 @@ solver) gives the optimum of the convex problems. All data here are synthetic
 
 from __future__ import annotations
 
-import io
 import json
 import sys
 
@@ -19,6 +18,7 @@ import tinyprop as tp
 from tinyprop.optim import SGD, Adam, RMSProp, optimizer_from_state
 from tinyprop.schedules import CosineSchedule
 from tinyprop.train import EpochInfo, TrainingDiverged, TrainingState, train
+from fake_terminal import FakeTerminal
 
 OPTIMIZERS = {
     "sgd": lambda: SGD(0.05),
@@ -247,12 +247,7 @@ def test_progress_lines_on_stderr(capsys):
 
 
 def test_progress_rewrites_one_line_on_a_terminal(monkeypatch):
-    class Terminal(io.StringIO):
-        def isatty(self):
-            return True
-
-    terminal = Terminal()
-    monkeypatch.setattr(sys, "stderr", terminal)
+    monkeypatch.setattr(sys, "stderr", terminal := FakeTerminal())
     X, y = _regression(n=20)
     train(_net(), X, y, loss=tp.MeanSquaredError(), optimizer=SGD(0.01), epochs=3, batch_size=8, progress=True)
     text = terminal.getvalue()
