@@ -21,7 +21,7 @@ import numpy as np
 
 from ..check import check_gradient
 from ..datasets.battery import BATTERY_COLUMNS, BATTERY_TARGET, battery_pack, write_battery_csv
-from ..export import agreement_bound, export_c, export_python
+from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from ..io import save
 from ..losses import MeanSquaredError
 from ..network import Network
@@ -87,6 +87,8 @@ def run(args: argparse.Namespace) -> int:
     clock = time.perf_counter()
     files = _save_and_export(out, net, data)
     agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
+    fixed = _export_fixed_point(out, net, data, split.training, split.test)
+    files["integer C"] = [fixed.header, fixed.source]
     files["report"] = [out / "report.json"]
     plots, plot_note = write_plots(out, outcome.history, data.Y[split.test], net.predict(data.X[split.test]),
                                    [BATTERY_TARGET], "SYNTHETIC battery demo")
@@ -98,7 +100,8 @@ def run(args: argparse.Namespace) -> int:
         "gradient_check": {"passed": gradient.passed, "max_rel_error": gradient.max_rel_error,
                            "tolerance": gradient.tolerance, "rows": int(rows.size), "reference": gradient.reference},
         "exports": {"c": [os.fspath(p) for p in files["C code"]], "python": os.fspath(files["Python code"][0]),
-                    "python_agreement": agreement},
+                    "python_agreement": agreement, "c_fixed_point": [os.fspath(p) for p in files["integer C"]],
+                    "c_fixed_point_test_error": _fixed_point_test_error(fixed, net, data.X[split.test])},
     }
     write_json(files["report"][0], report("demo", net, data, split, DEMO_SETTINGS, outcome, metrics, timings, extra))
 
@@ -109,6 +112,9 @@ def run(args: argparse.Namespace) -> int:
         print(f"   {plot_note}")
     print(f"   (the exported Python gives the network's outputs on the {agreement['rows']} test rows to within "
           f"the rounding bound; largest difference {agreement['max_abs_difference']:.1e})")
+    fixed_error = extra["exports"]["c_fixed_point_test_error"]
+    print(f"   (the integer C, with number formats calibrated on the {split.training.size} training rows, is within "
+          f"{fixed_error['max_abs_error']:.1e} of the network's outputs on the test rows)")
     model = files["model"][0]
     print("\nnext:")
     print(f"   tinyprop inspect {model}")
@@ -138,6 +144,21 @@ def _save_and_export(out: Path, net: Network, data: Dataset) -> dict[str, list[P
         "Python code": [export_python(net, output_folder(out / "python"), name=NAME, metadata=export_metadata)],
         "data (CSV)": [write_battery_csv(out / "battery_synthetic.csv", N_ROWS, seed=DATA_SEED)],
     }
+
+
+def _export_fixed_point(out: Path, net: Network, data: Dataset, training: np.ndarray, test: np.ndarray) -> FixedPointReport:
+    """Integer-only C calibrated on the training rows (the test rows stay unseen, as on a device)."""
+    metadata = {"inputs": [{"name": name, "unit": UNITS[name]} for name in BATTERY_COLUMNS],
+                "outputs": [{"name": BATTERY_TARGET, "unit": UNITS[BATTERY_TARGET]}]}
+    return export_c_fixed_point(net, output_folder(out / "c-fixed"), data.X[training], name=f"{NAME}_q",
+                                metadata=metadata)
+
+
+def _fixed_point_test_error(fixed: FixedPointReport, net: Network, X: np.ndarray) -> dict[str, Any]:
+    """The integer arithmetic against the network on rows it was not calibrated on."""
+    error = np.abs(fixed.predict(X) - net.predict(X))
+    return {"rows": int(X.shape[0]), "max_abs_error": float(error.max()),
+            "saturations": int(sum(fixed.saturations(X).values()))}
 
 
 def _check_python_export(path: Path, net: Network, X: np.ndarray) -> dict[str, Any]:
