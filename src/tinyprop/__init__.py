@@ -9,7 +9,7 @@ __version__ = "0.1.0"
 
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
-from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
+from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
@@ -43,7 +43,6 @@ from .train import (
     History,
     TrainingDiverged,
     TrainingResult,
-    TrainingState,
     fit_tabular_regression,
     train,
 )
