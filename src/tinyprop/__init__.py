@@ -28,7 +28,8 @@ from .registry import register_activation
 from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
-from .sweep import SweepRecord, SweepResult, TabularRegression, TrainingData, sweep
+from .sweep import SweepRecord, SweepResult, TrainingData, sweep
+from .recipes import TabularRegression, fit_tabular_regression
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
@@ -43,7 +44,6 @@ from .train import (
     History,
     TrainingDiverged,
     TrainingResult,
-    fit_tabular_regression,
     train,
 )
 from .workspace import Workspace

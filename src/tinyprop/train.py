@@ -47,16 +47,14 @@ import numpy as np
 
 from ._progress import ProgressLine
 from .checkpoint import TrainingState, save_checkpoint
-from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, require_finite
-from .activations import Tanh
-from .layers import Affine, Standardize, Unstandardize
-from .losses import Loss, MeanSquaredError
-from .network import Layer, Network
-from .optim import Adam, Optimizer
+from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite
+from .layers import Affine
+from .losses import Loss
+from .network import Network
+from .optim import Optimizer
 
 __all__ = [
     "train",
-    "fit_tabular_regression",
     "TrainingResult",
     "TrainingDiverged",
     "History",
@@ -231,106 +229,6 @@ def train(
     if resume is not None:
         run.restore(resume)
     return run.execute()
-
-
-# The default recipe's settings (chosen and measured in docs/training.md). They are
-# also the defaults of sweep.TabularRegression, which trains through _fit_tabular too.
-RECIPE_HIDDEN_UNITS = 50
-RECIPE_LR = 3e-3
-RECIPE_BATCH_SIZE = 64
-RECIPE_MAX_EPOCHS = 2000
-RECIPE_PATIENCE = 60
-
-
-def fit_tabular_regression(
-    X: Any,
-    y: Any,
-    *,
-    hidden_units: int = RECIPE_HIDDEN_UNITS,
-    seed: int = 0,
-    max_epochs: int = RECIPE_MAX_EPOCHS,
-    progress: bool = False,
-) -> tuple[Network, TrainingResult]:
-    """tinyprop's default recipe for small tabular regression; returns ``(net, result)``.
-
-    The recipe (documented with its measured results in ``docs/training.md``):
-
-    - network ``Standardize -> Affine(d, hidden_units) -> Tanh -> Affine(hidden_units, m)
-      -> Unstandardize``, scalings fitted on all rows given (the training rows),
-      Glorot initialisation from ``seed``;
-    - 10 % of the rows (at least one), drawn with ``seed``, held out for early
-      stopping; the network trains on the rest;
-    - :class:`~tinyprop.losses.MeanSquaredError` in the targets' units,
-      ``Adam(lr=3e-3)``, mini-batches of 64, at most ``max_epochs`` epochs,
-      early stopping with patience 60 restoring the best weights.
-
-    The settings were chosen by the RMSE on development rows carved from the
-    training rows of the UCI regression benchmark, never on its test rows
-    (``docs/training.md`` gives the candidates and the order of events).
-    :class:`tinyprop.sweep.TabularRegression` is the same recipe with every
-    setting open to a sweep.
-
-    ``X`` is ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``; ``n >= 2``. Deterministic
-    for a given ``seed``, from which the hold-out rows, the initial weights and
-    the shuffling draw three independent streams (``numpy.random.SeedSequence``).
-    """
-    hidden_units = positive_int(hidden_units, "hidden_units")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
-    return _fit_tabular(
-        X, y, hidden=(hidden_units,), lr=RECIPE_LR, decoupled_decay=0.0, l2=0.0, batch_size=RECIPE_BATCH_SIZE,
-        max_epochs=max_epochs, patience=RECIPE_PATIENCE, seed=int(seed), progress=progress,
-    )
-
-
-def _fit_tabular(
-    X: Any,
-    y: Any,
-    *,
-    hidden: tuple[int, ...],
-    lr: float,
-    decoupled_decay: float,
-    l2: float,
-    batch_size: int,
-    max_epochs: int,
-    patience: int,
-    seed: int,
-    progress: bool,
-) -> tuple[Network, TrainingResult]:
-    """The tabular-regression recipe with every setting explicit (the callers check them).
-
-    Network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine ->
-    Unstandardize``, scalings fitted on all rows given, Glorot initialisation;
-    ``max(1, n // 10)`` rows held out for early stopping; :func:`train` with
-    :class:`~tinyprop.losses.MeanSquaredError` and ``Adam(lr, decoupled_decay=...)``.
-    ``seed`` feeds three independent streams (``numpy.random.SeedSequence``):
-    hold-out rows, initial weights, shuffling.
-    """
-    X = as_float_array(X, "X", np.dtype(np.float64))
-    y = as_float_array(y, "y", np.dtype(np.float64))
-    if X.ndim != 2:
-        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
-    targets = y.reshape(-1, 1) if y.ndim == 1 else y
-    if targets.ndim != 2 or targets.shape[0] != X.shape[0]:
-        raise ValueError(f"y must have shape ({X.shape[0]},) or ({X.shape[0]}, n_outputs), got shape {y.shape}")
-    if X.shape[0] < 2:
-        raise ValueError(f"need at least 2 rows (one is held out for early stopping), got {X.shape[0]}")
-    hold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(seed).generate_state(3))
-    order = np.random.default_rng(hold_seed).permutation(X.shape[0])
-    n_hold = max(1, X.shape[0] // 10)
-    held, kept = order[:n_hold], order[n_hold:]
-    widths = [X.shape[1], *hidden, targets.shape[1]]
-    layers: list[Layer] = [Standardize.from_data(X)]
-    for n_in, n_out in zip(widths[:-2], widths[1:-1]):
-        layers += [Affine(n_in, n_out), Tanh()]
-    layers += [Affine(widths[-2], widths[-1]), Unstandardize.from_data(targets)]
-    net = Network(layers, seed=init_seed)
-    result = train(
-        net, X[kept], targets[kept], loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
-        epochs=max_epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
-        seed=shuffle_seed, progress=progress, l2=l2,
-    )
-    return net, result
 
 
 class _Run:
