@@ -34,7 +34,7 @@ import tinyprop as tp
 from tinyprop.archive import read_archive, write_archive
 from tinyprop.datasets import load_uci
 from tinyprop.ensemble import Ensemble
-from tinyprop.io import ModelFileError
+from tinyprop.modelfile import ModelFileError
 from tinyprop.recipes import TabularRegression
 from tinyprop.sweep import sweep
 

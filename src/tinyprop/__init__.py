@@ -12,7 +12,7 @@ from .build import build_mlp
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
+from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .layers import Affine, ColumnScaling, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,

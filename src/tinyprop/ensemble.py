@@ -11,9 +11,9 @@ For members ``f_1 .. f_M`` and an input ``x``::
 networks trained alike disagree, not the noise in the targets.
 
 An ensemble is saved as one archive (:mod:`tinyprop.archive`): every member's
-model file (:func:`tinyprop.io.save`, ``docs/model-file.md``) with its arrays
+model file (:func:`tinyprop.modelfile.save`, ``docs/model-file.md``) with its arrays
 renamed ``member<k>/<name>`` and its manifest in the list ``"members"``; each
-member is verified on loading exactly as :func:`tinyprop.io.load_model_file`
+member is verified on loading exactly as :func:`tinyprop.modelfile.load_model_file`
 verifies a model file. ``docs/sweeps.md`` gives the layout.
 
 Exported inference code computes the mean: every member is exported with
@@ -47,7 +47,7 @@ from .archive import ArchiveError, check_json, read_archive, write_archive
 from .export import agreement_bound, export_c, export_python
 from .export._header import CAUTION
 from .export._text import check_name, output_directory, write_source
-from .io import ModelFileError, fingerprint, model_from_parts, model_parts
+from .modelfile import ModelFileError, fingerprint, model_from_parts, model_parts
 from .network import Network
 
 __all__ = ["Ensemble"]
@@ -180,7 +180,7 @@ class Ensemble:
 
         The canonical JSON (sorted keys, no spaces, ASCII) of
         ``{"format": "tinyprop-ensemble-fingerprint", "version": 1, "members": [...]}``
-        with each member's :func:`tinyprop.io.fingerprint`. Metadata is not included.
+        with each member's :func:`tinyprop.modelfile.fingerprint`. Metadata is not included.
         """
         description = {"format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION,
                        "members": [fingerprint(net) for net in self.members]}
@@ -190,9 +190,9 @@ class Ensemble:
     def save(self, path: str | os.PathLike[str]) -> str:
         """Write the ensemble (members and metadata) to one file, atomically; return its fingerprint.
 
-        Every member becomes what :func:`tinyprop.io.save` would write
-        (:func:`tinyprop.io.model_parts`: same checks, same
-        :class:`~tinyprop.io.ModelFileError`); the file is written by
+        Every member becomes what :func:`tinyprop.modelfile.save` would write
+        (:func:`tinyprop.modelfile.model_parts`: same checks, same
+        :class:`~tinyprop.modelfile.ModelFileError`); the file is written by
         :func:`tinyprop.archive.write_archive`, so a failure leaves an earlier
         file at ``path`` as it was.
         """
@@ -224,7 +224,7 @@ class Ensemble:
     def load(cls, path: str | os.PathLike[str]) -> "Ensemble":
         """Read an ensemble file, verify every member and the ensemble fingerprint, rebuild it.
 
-        Raises :class:`~tinyprop.io.ModelFileError` naming the file and what is
+        Raises :class:`~tinyprop.modelfile.ModelFileError` naming the file and what is
         wrong, or ``OSError`` if it cannot be read.
         """
         try:

@@ -32,7 +32,7 @@ goes on. Exceptions of the executor itself (a worker process killed, a lost
 connection) stop the sweep: they say nothing about the setting.
 
 Resume: with ``results_path`` (a folder), each finished row is written as it
-completes: the network with :func:`tinyprop.io.save` under
+completes: the network with :func:`tinyprop.modelfile.save` under
 ``models/<first 16 hex digits of sha256(key)>.npz``, then the whole table,
 rewritten atomically as ``table.jsonl``. A later call with the same folder
 skips every setting whose key (its canonical JSON, :func:`setting_key`) is
@@ -59,7 +59,7 @@ import numpy as np
 
 from ._validate import as_float_array, as_samples, as_targets
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
-from .io import fingerprint, load_model_file, save
+from .modelfile import fingerprint, load_model_file, save
 from .losses import Loss, MeanSquaredError
 from .network import Network
 from .train import TrainingDiverged, TrainingResult
@@ -193,7 +193,7 @@ class SweepRecord:
     failed; ``epochs_run`` and ``stop_reason`` from the recipe's
     :class:`~tinyprop.train.TrainingResult` (``None`` if it returned none);
     ``wall_time``: seconds spent in the recipe; ``fingerprint`` of the network
-    (:func:`tinyprop.io.fingerprint`); ``model_file``: its file under
+    (:func:`tinyprop.modelfile.fingerprint`); ``model_file``: its file under
     ``results_path`` (``None`` without one).
     """
 

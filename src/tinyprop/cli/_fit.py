@@ -13,7 +13,7 @@ from typing import Any
 
 
 from .. import __version__
-from ..io import fingerprint
+from ..modelfile import fingerprint
 from ..layers import Affine, ColumnScaling
 from ..network import Network
 from ..recipes import Dataset, FitOutcome, FitSettings, Split, fit, split_rows

@@ -22,7 +22,7 @@ import numpy as np
 from ..check import check_gradient
 from ..datasets.battery import BATTERY_COLUMNS, BATTERY_TARGET, battery_pack, write_battery_csv
 from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from ..io import save
+from ..modelfile import save
 from ..losses import MeanSquaredError
 from ..network import Network
 from ._common import SAFETY, CommandError, EpochProgress, output_folder, write_json, write_plots

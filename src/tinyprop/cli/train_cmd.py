@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from ..csvdata import CsvTable
-from ..io import save
+from ..modelfile import save
 from . import _args
 from ._common import (
     USAGE,
