@@ -28,14 +28,13 @@ from .registry import register_activation
 from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
+from .sensitivity import SensitivityTable, input_sensitivity
 from .sweep import SweepRecord, SweepResult, TrainingData, sweep
 from .recipes import TabularRegression, fit_tabular_regression
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
     RankDeficientError,
-    SensitivityTable,
-    input_sensitivity,
     parameter_uncertainty,
     uncertainty_report,
 )
