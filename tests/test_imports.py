@@ -25,6 +25,7 @@ def test_import_tinyprop_does_not_import_scipy_or_matplotlib():
 # are for type checkers and not counted). A package comes after its modules.
 LAYERS = (
     "tinyprop._version",
+    "tinyprop._json",
     "tinyprop._validate",
     "tinyprop._progress",
     "tinyprop._settings",
