@@ -28,7 +28,7 @@ LAYERS = (
     "tinyprop._json",
     "tinyprop._validate",
     "tinyprop._progress",
-    "tinyprop._settings",
+    "tinyprop._settings_equality",
     "tinyprop.activations",
     "tinyprop.registry",
     "tinyprop.layers",

@@ -28,7 +28,7 @@ import re
 
 import numpy as np
 
-from ._settings import Configured
+from ._settings_equality import Configured
 
 __all__ = [
     "Activation",
