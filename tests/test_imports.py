@@ -35,7 +35,7 @@ LAYERS = (
     "tinyprop.init",
     "tinyprop.workspace",
     "tinyprop.network",
-    "tinyprop.build",
+    "tinyprop.mlp",
     "tinyprop.losses",
     "tinyprop.schedules",
     "tinyprop.optim",

@@ -50,7 +50,7 @@ import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
-from .build import build_mlp
+from .mlp import build_mlp
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
 from .network import Layer, Network
