@@ -75,7 +75,7 @@ LAYERS = (
     "tinyprop.cli._args",
     "tinyprop.cli._common",
     "tinyprop.cli._imports",
-    "tinyprop.cli._fit",
+    "tinyprop.cli._fit_report",
     "tinyprop.cli.bench_cmd",
     "tinyprop.cli.check_cmd",
     "tinyprop.cli.demo_cmd",
