@@ -132,11 +132,10 @@ def solve(
         elapsed time (one line rewritten in place on a terminal).
 
     >>> import numpy as np, tinyprop as tp
-    >>> from tinyprop.solve import solve
     >>> x = np.linspace(-2, 2, 20).reshape(-1, 1)
     >>> y = 3.0 / (1.0 + np.exp(0.5 - 1.5 * x[:, 0]))  # synthetic: 3 * sigmoid(1.5 x - 0.5)
     >>> net = tp.Network([tp.Affine(1, 1), tp.Sigmoid(), tp.Affine(1, 1, bias=False)], seed=0)
-    >>> result = solve(net, x, y)
+    >>> result = tp.solve(net, x, y)
     >>> result.success, np.round(result.theta, 6).tolist()
     (True, [1.5, -0.5, 3.0])
     """
