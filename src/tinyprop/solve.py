@@ -117,9 +117,8 @@ def solve(
         ``rss``, cosine between ``r`` and the columns of ``J``). L-BFGS-B:
         ``gtol`` (largest gradient component); its relative-reduction test
         ``ftol`` is set to 0, because on badly scaled problems one short step
-        can trigger it long before the minimum (NIST Misra1d from start 2
-        stopped after 4 iterations with ``ftol=1e-15``), so L-BFGS stops when an
-        iteration no longer reduces ``E`` at all, usually with scipy's message
+        can trigger it long before the minimum (an example: ``docs/training.md``,
+        "Tolerance"), so L-BFGS stops when an iteration no longer reduces ``E`` at all, usually with scipy's message
         ``ABNORMAL_TERMINATION_IN_LNSRCH`` and ``success=False`` once float64
         precision is exhausted. The default 1e-15 asks for convergence to the
         limits of float64; MINPACK needs it above machine epsilon (2.2e-16).
