@@ -7,7 +7,8 @@ codes and qualified review is the user's responsibility.
 
 __version__ = "0.1.0"
 
-from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .activations import Activation, ActivationShape, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .bounds import GradientBounds, OutputBounds, UndeclaredActivation, gradient_bounds, output_bounds
 from .build import build_mlp
 from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
@@ -52,6 +53,7 @@ from .workspace import Workspace
 __all__ = [
     "Activation",
     "ActivationReport",
+    "ActivationShape",
     "Adam",
     "Affine",
     "CheckpointError",
@@ -63,6 +65,7 @@ __all__ = [
     "EpochInfo",
     "ExponentialSchedule",
     "FixedPointReport",
+    "GradientBounds",
     "GradientReport",
     "History",
     "HuberError",
@@ -76,6 +79,7 @@ __all__ = [
     "Network",
     "Optimizer",
     "OptimizerState",
+    "OutputBounds",
     "ParameterUncertainty",
     "PredictionIntervals",
     "RMSProp",
@@ -99,6 +103,7 @@ __all__ = [
     "TrainingDiverged",
     "TrainingResult",
     "TrainingState",
+    "UndeclaredActivation",
     "Unstandardize",
     "Workspace",
     "agreement_bound",
@@ -111,11 +116,13 @@ __all__ = [
     "export_python",
     "fingerprint",
     "fit_tabular_regression",
+    "gradient_bounds",
     "input_sensitivity",
     "load",
     "load_checkpoint",
     "load_model_file",
     "optimizer_from_state",
+    "output_bounds",
     "parameter_uncertainty",
     "register_activation",
     "save",

@@ -1,0 +1,186 @@
+"""Bounds on one activation over intervals, derived from its declared shape.
+
+Every rule here works for any activation that declares an
+:class:`~tinyprop.activations.ActivationShape` (pieces cut at breakpoints, each
+convex, concave or linear), elementwise over arrays of intervals ``[l, u]``:
+
+- the range of ``f`` over ``[l, u]`` (interval arithmetic, Moore 1966);
+- the range of ``f'`` over ``[l, u]``: ``f'`` is monotone on each piece, so its
+  extremes are among ``f'(l)``, ``f'(u)`` and the one-sided values at the
+  breakpoints inside;
+- two lines ``alpha_L z + beta_L <= f(z) <= alpha_U z + beta_U`` on ``[l, u]``,
+  the linear relaxation of Zhang et al. 2018 (NeurIPS, "Efficient neural
+  network robustness certification with general activation functions").
+
+Lines and the range of ``f`` rest on one sound rule, :meth:`ActivationRules.gap_extreme`:
+the minimum (or maximum) of ``g(z) = f(z) - alpha z`` over ``[l, u]``. On a
+piece where ``g`` is concave its minimum is at an end of the piece; where
+``g`` is convex it lies above the tangent at any point ``z0`` of the piece:
+``g(z) >= g(z0) + g'(z0) (z - z0)``, so its minimum over ``[a, b]`` is at least
+``g(z0) + min(g'(z0) (a - z0), g'(z0) (b - z0))``. A bisection on the monotone
+``f'`` puts ``z0`` near the stationary point, which makes the bound nearly
+exact; wherever ``z0`` lands, the bound stays valid. The maximum is the mirror
+image. The slopes are chosen for tightness only (a tangent at the middle of a
+convex or concave piece, else the chord); any slope gives valid lines.
+
+All bounds enclose both the exact ``f`` and its evaluation in the network's
+dtype (``value_error``, ``derivative_error`` of the declared shape), and the
+float64 rounding of the rule itself (see :mod:`tinyprop.bounds._arith`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..activations import Activation, ActivationShape
+from ._arith import FLOAT64, Rounding, down, magnitude, up
+
+_BISECTION_STEPS = 10
+_SAFETY = 8.0  # operations per rule, counted generously, in units of u (float64)
+
+
+class UndeclaredActivation(TypeError):
+    """An activation without a declared shape cannot be bounded."""
+
+
+def rules_for(activation: Activation, net: Rounding, where: str) -> "ActivationRules":
+    """The rules of ``activation``, or :class:`UndeclaredActivation` naming what to declare."""
+    shape = activation.declared_shape()
+    if not isinstance(shape, ActivationShape):
+        raise UndeclaredActivation(
+            f"{where} is {type(activation).__name__}, which declares no shape for bounds: "
+            "its declared_shape() must return a tinyprop.ActivationShape giving the breakpoints "
+            "(inflection points and kinks), the curvature of each piece (1 convex, -1 concave, "
+            "0 linear) and the rounding errors of value and derivative (see docs/guarantees.md); "
+            f"got {shape!r}"
+        )
+    return ActivationRules(activation, shape, net)
+
+
+class ActivationRules:
+    """Range, derivative range and linear relaxation of one activation, elementwise."""
+
+    def __init__(self, activation: Activation, shape: ActivationShape, net: Rounding) -> None:
+        self.activation = activation
+        self.shape = shape
+        self.net = net
+        self.edges = (-np.inf, *shape.breakpoints, np.inf)
+
+    # ------------------------------------------------------------------ evaluation
+    def f(self, z: np.ndarray) -> np.ndarray:
+        return self.activation.value(z)
+
+    def df(self, z: np.ndarray) -> np.ndarray:
+        return self.activation.derivative(z, self.activation.value(z))
+
+    def _pieces(self, l: np.ndarray, u: np.ndarray):
+        """``(curvature, a, b, present)`` for each piece: ``[a, b]`` is the piece within ``[l, u]``."""
+        for i, curvature in enumerate(self.shape.curvature):
+            a = np.maximum(l, self.edges[i])
+            b = np.minimum(u, self.edges[i + 1])
+            yield curvature, a, b, a <= b
+
+    # ------------------------------------------------------------------ the one rule
+    def gap_extreme(self, l: np.ndarray, u: np.ndarray, alpha: np.ndarray, sign: int) -> np.ndarray:
+        """Sound ``min`` (``sign=1``) or ``max`` (``sign=-1``) of ``f(z) - alpha z`` over ``[l, u]``.
+
+        The float64 rounding of this rule is included (a margin of a few
+        units of roundoff of the magnitudes that entered, ``scale``).
+        """
+        best = np.full(l.shape, np.inf)  # of sign * g
+        scale = np.zeros(l.shape)
+        for curvature, a, b, present in self._pieces(l, u):
+            a = np.where(present, a, l)
+            b = np.where(present, b, l)
+            ga, gb = self.f(a) - alpha * a, self.f(b) - alpha * b
+            candidate = np.minimum(sign * ga, sign * gb)
+            scale = np.maximum(scale, np.maximum(np.abs(ga), np.abs(gb)))
+            if curvature * sign > 0:  # sign*g convex on this piece: tangent from below
+                z0 = self._stationary(a, b, alpha, curvature)
+                slope = self.df(z0) - alpha
+                g0 = self.f(z0) - alpha * z0
+                tangent = sign * g0 + np.minimum(sign * slope * (a - z0), sign * slope * (b - z0))
+                candidate = tangent
+                width = b - a
+                scale = np.maximum(scale, np.abs(g0) + (1.0 + np.abs(slope) + np.abs(alpha)) * width)
+            best = np.where(present, np.minimum(best, candidate), best)
+        error = self.shape.value_error + self.shape.derivative_error + _SAFETY
+        scale = scale + 2.0 * np.abs(alpha) * magnitude(l, u)  # |f| + |alpha z| <= |g| + 2 |alpha z|
+        margin = error * (FLOAT64.u * scale + FLOAT64.tiny)
+        return sign * down(best - margin)
+
+    def _stationary(self, a: np.ndarray, b: np.ndarray, alpha: np.ndarray, curvature: int) -> np.ndarray:
+        """A point of ``(a, b)`` near where ``f' = alpha`` (``f'`` monotone there), by bisection."""
+        lo, hi = a.copy(), b.copy()
+        for _ in range(_BISECTION_STEPS):
+            mid = 0.5 * lo + 0.5 * hi
+            rising = curvature * (self.df(mid) - alpha) < 0  # the root lies above mid
+            lo = np.where(rising, mid, lo)
+            hi = np.where(rising, hi, mid)
+        return 0.5 * lo + 0.5 * hi
+
+    # ------------------------------------------------------------------ what callers use
+    def _evaluation_margin(self, biggest: np.ndarray) -> np.ndarray:
+        """How far the network's evaluation of ``f`` may lie from ``f`` (``biggest >= |f|``)."""
+        return self.shape.value_error * (self.net.u * biggest + self.net.tiny)
+
+    def value_range(self, l: np.ndarray, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Interval containing ``f(z)``, exact or as the network evaluates it, for ``z`` in ``[l, u]``."""
+        zero = np.zeros(l.shape)
+        lo = self.gap_extreme(l, u, zero, 1)
+        hi = self.gap_extreme(l, u, zero, -1)
+        margin = self._evaluation_margin(magnitude(lo, hi))
+        return down(lo - margin), up(hi + margin)
+
+    def derivative_range(self, l: np.ndarray, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Interval containing ``f'(z)``, exact or as the network evaluates it, for ``z`` in ``[l, u]``.
+
+        Where every candidate is ``>= 0`` the lower end stays ``>= 0``: the
+        declared shape promises that ``derivative`` is then never negative.
+        """
+        d_l, d_u = self.df(l), self.df(u)
+        lo, hi = np.minimum(d_l, d_u), np.maximum(d_l, d_u)
+        for point in self.shape.breakpoints:
+            inside = (l <= point) & (point <= u)
+            for z in (np.nextafter(point, -np.inf), point, np.nextafter(point, np.inf)):
+                d = self.df(np.full(l.shape, z))
+                lo = np.where(inside, np.minimum(lo, d), lo)
+                hi = np.where(inside, np.maximum(hi, d), hi)
+        units = self.shape.derivative_error
+        rounding = (self.net.u + FLOAT64.u) * np.maximum(1.0, magnitude(lo, hi)) + self.net.tiny + FLOAT64.tiny
+        margin = units * rounding
+        widened = down(lo - margin)
+        lo = np.where(lo >= 0, np.maximum(widened, 0.0), widened)
+        return lo, up(hi + margin)
+
+    def lines(self, l: np.ndarray, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """``(alpha_L, beta_L, alpha_U, beta_U)`` with ``alpha_L z + beta_L <= f(z) <= alpha_U z + beta_U`` on ``[l, u]``.
+
+        The lines also enclose the network's evaluation of ``f`` at any ``z``
+        in ``[l, u]``; ``|f|`` there is at most the larger of the two lines' magnitudes.
+        """
+        alpha_lower, alpha_upper = self._slopes(l, u)
+        beta_lower = self.gap_extreme(l, u, alpha_lower, 1)
+        beta_upper = self.gap_extreme(l, u, alpha_upper, -1)
+        z = magnitude(l, u)
+        biggest = np.maximum(np.abs(alpha_lower) * z + np.abs(beta_lower), np.abs(alpha_upper) * z + np.abs(beta_upper))
+        margin = self._evaluation_margin(biggest)
+        return alpha_lower, down(beta_lower - margin), alpha_upper, up(beta_upper + margin)
+
+    def _slopes(self, l: np.ndarray, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Tangent at the middle on the side where one convex or concave piece allows it, else the chord."""
+        mid = 0.5 * l + 0.5 * u
+        width = u - l
+        tangent = self.df(mid)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            chord = (self.f(u) - self.f(l)) / width
+        usable = width > 1e-12 * (1.0 + np.abs(mid))
+        chord = np.where(usable & np.isfinite(chord), chord, tangent)
+        lower, upper = chord.copy(), chord.copy()
+        for curvature, a, b, present in self._pieces(l, u):
+            alone = present & (a == l) & (b == u)  # [l, u] lies in this one piece
+            if curvature > 0:
+                lower = np.where(alone, tangent, lower)
+            elif curvature < 0:
+                upper = np.where(alone, tangent, upper)
+        return lower, upper
