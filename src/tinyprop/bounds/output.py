@@ -32,7 +32,8 @@ class OutputBounds:
 
     ``lower[k] <= net.predict(x)[0, k] <= upper[k]`` for every ``x`` in the box
     (guaranteed). ``lowest_found[k]`` is ``net.predict`` at ``lowest_input[k]``
-    (a point of the box), the smallest value found; likewise ``highest_*``.
+    (a point of the box, evaluated as a single row), the smallest value found;
+    likewise ``highest_*``.
     ``lower_gap = lowest_found - lower`` and ``upper_gap = upper - highest_found``
     say how far the guarantee may be from the true extremes. ``met`` is True
     when every gap is within ``tolerance`` times the output's range found
@@ -148,10 +149,11 @@ def output_bounds(
             problem = _problem(program, k, sign, low, high, box_lo, box_hi)
             outcome = minimise(problem, starts, target=tolerance * spread[k], deadline=clock.next_deadline(),
                                max_splits=max_splits)
+            found = float(net.predict(outcome.best_x[None, :])[0, k])  # as a reviewer evaluates it: one row
             if sign > 0:
-                lower[k], lowest[k], lowest_x[k] = outcome.bound, outcome.best, outcome.best_x
+                lower[k], lowest[k], lowest_x[k] = min(outcome.bound, found), found, outcome.best_x
             else:
-                upper[k], highest[k], highest_x[k] = -outcome.bound, -outcome.best, outcome.best_x
+                upper[k], highest[k], highest_x[k] = max(-outcome.bound, found), found, outcome.best_x
             reasons.append(outcome.stopped)
             splits += outcome.splits
         stopped.append(tuple(reasons))
