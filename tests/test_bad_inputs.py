@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.io import ModelFileError, fingerprint, load, save
+from tinyprop.modelfile import ModelFileError, fingerprint, load, save
 from tinyprop.optim import SGD, Adam
 from tinyprop.registry import register_activation
 from tinyprop.solve import solve

@@ -110,7 +110,7 @@ def fingerprint(net: Network) -> str:
     same settings and bit-identical parameters and scalings.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import fingerprint
+    >>> from tinyprop.modelfile import fingerprint
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
     >>> len(fingerprint(net)), fingerprint(net) == fingerprint(net.copy())
     (64, True)
@@ -270,7 +270,7 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     :class:`ModelFileError`; neither ``net`` nor ``metadata`` is modified.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import model_from_parts, model_parts
+    >>> from tinyprop.modelfile import model_from_parts, model_parts
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
     >>> arrays, manifest = model_parts(net, {"units": "V"})
     >>> list(arrays), manifest["fingerprint"] == tp.fingerprint(net)
@@ -547,7 +547,7 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     activation, say) is shown with ``fingerprint: none (<reason>)``.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import describe
+    >>> from tinyprop.modelfile import describe
     >>> print(describe(tp.Network([tp.Affine(2, 1)], seed=0)).splitlines()[0])
     network: 2 inputs -> 1 output, 3 parameters, float64
     """
