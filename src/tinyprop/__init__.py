@@ -8,7 +8,15 @@ codes and qualified review is the user's responsibility.
 __version__ = "0.1.0"
 
 from .activations import Activation, ActivationShape, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .bounds import GradientBounds, OutputBounds, UndeclaredActivation, gradient_bounds, output_bounds
+from .bounds import (
+    Certificate,
+    GradientBounds,
+    OutputBounds,
+    UndeclaredActivation,
+    certificate,
+    gradient_bounds,
+    output_bounds,
+)
 from .build import build_mlp
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
@@ -52,6 +60,7 @@ __all__ = [
     "Activation",
     "ActivationReport",
     "ActivationShape",
+    "Certificate",
     "Adam",
     "Affine",
     "CheckpointError",
@@ -106,6 +115,7 @@ __all__ = [
     "Workspace",
     "agreement_bound",
     "build_mlp",
+    "certificate",
     "check_activation",
     "check_gradient",
     "describe",

@@ -12,7 +12,8 @@ responsibility.
 """
 
 from ._rules import UndeclaredActivation
+from .certificate import Certificate, certificate
 from .gradient import GradientBounds, gradient_bounds
 from .output import OutputBounds, output_bounds
 
-__all__ = ["GradientBounds", "OutputBounds", "UndeclaredActivation", "gradient_bounds", "output_bounds"]
+__all__ = ["Certificate", "certificate", "GradientBounds", "OutputBounds", "UndeclaredActivation", "gradient_bounds", "output_bounds"]
