@@ -13,6 +13,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from .._version import __version__
+from ..modelfile import fingerprint
 from ..network import Network
 from .gradient import GradientBounds, gradient_bounds
 from .output import OutputBounds, output_bounds
@@ -148,8 +150,6 @@ def certificate(
     >>> record["outputs"][0]["lower"] <= record["outputs"][0]["lowest_found"]
     True
     """
-    from .. import fingerprint, __version__
-
     names_in = _names(input_names, net.n_in, "x", "input_names") if isinstance(net, Network) else ()
     names_out = _names(output_names, net.n_out, "y", "output_names") if isinstance(net, Network) else ()
     created = datetime.datetime.now(datetime.timezone.utc).replace(microsecond=0).isoformat()
