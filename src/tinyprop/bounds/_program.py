@@ -56,11 +56,13 @@ class Intervals:
     ``lo[i]``, ``hi[i]``: the interval of the input of step ``i`` (``(B, width)``);
     the last entry is the output. ``terms[i]`` for an affine step: ``|W| |x| + |b|``
     with ``|x|`` the magnitude of its input interval, the scale of its rounding.
+    ``lines[i]`` for an activation step: its relaxation lines, once computed.
     """
 
     lo: list[np.ndarray]
     hi: list[np.ndarray]
     terms: dict[int, np.ndarray]
+    lines: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]]
 
 
 class Program:
@@ -100,26 +102,36 @@ class Program:
     # ------------------------------------------------------------------ forward
     def intervals(self, lo: np.ndarray, hi: np.ndarray) -> Intervals:
         """Interval propagation for the boxes ``[lo, hi]`` (rows), enclosing the network's computed values."""
+        found = Intervals([lo], [hi], {}, {})
+        for i in range(len(self.steps)):
+            self.advance(found, i)
+        return found
+
+    def advance(self, found: Intervals, i: int) -> None:
+        """Append the interval of step ``i``'s output, from its input's (the last in ``found``)."""
         net, own = self.rounding, FLOAT64
-        los, his, terms = [lo], [hi], {}
-        for i, step in enumerate(self.steps):
-            if isinstance(step, AffineStep):
-                c, r = centre_radius(lo, hi)
-                size = magnitude(lo, hi)
-                term = size @ np.abs(step.weight).T + np.abs(step.bias)
-                centre = c @ step.weight.T + step.bias
-                radius = r @ np.abs(step.weight).T
-                n = step.weight.shape[1] + 1
-                margin = 2.0 * (step.gamma * term + n * (net.tiny + own.tiny))
-                lo, hi = widen(centre - radius, centre + radius, margin)
-                terms[i] = term
-            elif isinstance(step, ScalingStep):
-                a, b = lo * step.gain, hi * step.gain
-                term = magnitude(lo, hi) * np.abs(step.gain) + np.abs(step.offset)
-                margin = 2.0 * ((net.gamma(2) + own.gamma(3)) * term + 2 * (net.tiny + own.tiny))
-                lo, hi = widen(np.minimum(a, b) + step.offset, np.maximum(a, b) + step.offset, margin)
-            else:
-                lo, hi = step.rules.value_range(lo, hi)
-            los.append(lo)
-            his.append(hi)
-        return Intervals(los, his, terms)
+        step, lo, hi = self.steps[i], found.lo[-1], found.hi[-1]
+        if isinstance(step, AffineStep):
+            c, r = centre_radius(lo, hi)
+            term = magnitude(lo, hi) @ np.abs(step.weight).T + np.abs(step.bias)
+            centre = c @ step.weight.T + step.bias
+            radius = r @ np.abs(step.weight).T
+            n = step.weight.shape[1] + 1
+            margin = 2.0 * (step.gamma * term + n * (net.tiny + own.tiny))
+            lo, hi = widen(centre - radius, centre + radius, margin)
+            found.terms[i] = term
+        elif isinstance(step, ScalingStep):
+            a, b = lo * step.gain, hi * step.gain
+            term = magnitude(lo, hi) * np.abs(step.gain) + np.abs(step.offset)
+            margin = 2.0 * ((net.gamma(2) + own.gamma(3)) * term + 2 * (net.tiny + own.tiny))
+            lo, hi = widen(np.minimum(a, b) + step.offset, np.maximum(a, b) + step.offset, margin)
+        else:
+            lo, hi = step.rules.value_range(lo, hi)
+        found.lo.append(lo)
+        found.hi.append(hi)
+
+    def lines(self, found: Intervals, i: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The relaxation lines of activation step ``i`` on its input intervals (computed once)."""
+        if i not in found.lines:
+            found.lines[i] = self.steps[i].rules.lines(found.lo[i], found.hi[i])
+        return found.lines[i]

@@ -74,16 +74,14 @@ def minimise(problem: Problem, starts: np.ndarray, *, target: float, deadline: f
     values = problem.evaluate(starts)
     order = np.argsort(values)
     best, best_x = float(values[order[0]]), starts[order[0]].copy()
-    for i in order[:3]:
-        x, v = problem.polish(starts[i])
-        if v < best:
-            best, best_x = v, x
+    best, best_x = _polish_best(problem, best, best_x)
     point = best_x[None, :]
-    floor = 2.0 * max(best - float(problem.bound(point, point)[0]), 0.0)  # gap left on a box of one point
+    floor = 2.0 * max(best - float(_sound(problem.bound, point, point)[0]), 0.0)  # gap left on one point
+    floor = floor if np.isfinite(floor) else 0.0
     reachable = target >= floor
     target = max(target, floor)
     lo, hi = problem.box_lo[None, :].copy(), problem.box_hi[None, :].copy()
-    lb = problem.bound(lo, hi)
+    lb = _sound(problem.bound, lo, hi)
     span = problem.box_hi - problem.box_lo
     scale = np.where(span > 0, 1.0 / np.where(span > 0, span, 1.0), 0.0)
     splits, rounds, improved = 0, 0, False
@@ -127,6 +125,13 @@ def minimise(problem: Problem, starts: np.ndarray, *, target: float, deadline: f
     return Outcome(bound, best, best_x, stopped, splits, int(lb.size))
 
 
+def _sound(bound: Bound, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """``bound(lo, hi)``, where an interval that overflowed (NaN) proves nothing: -inf, so it prunes no box."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        lb = bound(lo, hi)
+    return np.where(np.isnan(lb), -np.inf, lb)
+
+
 def _polish_best(problem: Problem, best: float, best_x: np.ndarray) -> tuple[float, np.ndarray]:
     x, v = problem.polish(best_x)
     return (v, x) if v < best else (best, best_x)
@@ -142,7 +147,7 @@ def _split(lo, hi, lb, rows, dim, bound: Bound):
     right_lo[pick, dim] = mid
     child_lo = np.concatenate([parent_lo, right_lo])
     child_hi = np.concatenate([left_hi, parent_hi])
-    child_lb = np.maximum(bound(child_lo, child_hi), np.concatenate([parent_lb, parent_lb]))
+    child_lb = np.maximum(_sound(bound, child_lo, child_hi), np.concatenate([parent_lb, parent_lb]))
     rest = np.ones(lo.shape[0], bool)
     rest[rows] = False
     return (

@@ -15,6 +15,7 @@ import numpy as np
 from ..network import Network
 from ._box import Clock, check_max_splits, check_tolerance, checked_box, local_minimiser, resolution, starting_points
 from ._program import Program
+from ._relax import tight_intervals
 from ._search import Problem, minimise
 from ._slopes import gradient_intervals
 
@@ -215,7 +216,7 @@ def _problem(program: Program, k: int, j: int, sign: float, low, high, box_lo, b
     net = program.net
 
     def bound(lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-        g_lo, g_hi = gradient_intervals(program, program.intervals(lo, hi), k)
+        g_lo, g_hi = gradient_intervals(program, tight_intervals(program, lo, hi), k)
         return g_lo[:, j] if sign > 0 else -g_hi[:, j]
 
     def evaluate(X: np.ndarray) -> np.ndarray:

@@ -14,7 +14,7 @@ import numpy as np
 from ..network import Network
 from ._box import Clock, check_max_splits, check_tolerance, checked_box, local_minimiser, resolution, starting_points
 from ._program import Program
-from ._relax import linear_lower_bound
+from ._relax import linear_lower_bound, tight_intervals
 from ._search import Problem, minimise
 
 __all__ = ["OutputBounds", "output_bounds"]
@@ -168,7 +168,7 @@ def _problem(program: Program, k: int, sign: float, low, high, box_lo, box_hi) -
     objective[k] = sign
 
     def bound(lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-        found = program.intervals(lo, hi)
+        found = tight_intervals(program, lo, hi)
         interval = found.lo[-1][:, k] if sign > 0 else -found.hi[-1][:, k]
         return np.maximum(linear_lower_bound(program, found, objective), interval)
 
