@@ -214,6 +214,7 @@ def test_the_caller_s_arrays_are_not_modified_and_results_print():
         ([0.0, 0.0], [1.0, 1.0], {"tolerance": -1.0}, ValueError, "tolerance must be"),
         ([0.0, 0.0], [1.0, 1.0], {"max_seconds": 0}, ValueError, "max_seconds must be"),
         ([0.0, 0.0], [1.0, 1.0], {"max_splits": 1.5}, ValueError, "max_splits must be"),
+        ([0.0, 0.0], [1.0, 1.0], {"seed": -1}, ValueError, "seed must be"),
         ([[0.0, 0.0]], [1.0, 1.0], {}, ValueError, "one number per network input"),
         (["a", "b"], [1.0, 1.0], {}, TypeError, "real numbers"),
     ],
@@ -256,7 +257,8 @@ def test_rounding_of_the_evaluation_is_covered_on_single_points(dtype):
     rng = np.random.default_rng(7)
     for layers in ([tp.Affine(64, 3)], [tp.Affine(64, 32), tp.Identity(), tp.Affine(32, 2)],
                    [tp.Affine(64, 48), tp.Affine(48, 2)],
-                   [tp.Standardize(np.full(64, 0.3), np.full(64, 0.7)), tp.Affine(64, 16), tp.Tanh(), tp.Affine(16, 2)]):
+                   [tp.Standardize(np.full(64, 0.3), np.full(64, 0.7)), tp.Affine(64, 16), tp.Tanh(),
+                    tp.Affine(16, 2)]):
         net = tp.Network(layers, seed=int(rng.integers(1000)), dtype=dtype)
         net.set_vector(rng.normal(scale=10.0, size=net.n_params))
         X = rng.normal(scale=100.0, size=(2000, 64)).astype(dtype).astype(np.float64)

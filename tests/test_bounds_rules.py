@@ -42,7 +42,10 @@ class Bump(tp.Activation):
 
 
 class Softsign(tp.Activation):
-    """Synthetic test activation ``f(z) = z / (1 + |z|)``, ``f'(z) = 1 / (1 + |z|)**2``; convex below 0, concave above."""
+    """Synthetic test activation ``f(z) = z / (1 + |z|)``, ``f'(z) = 1 / (1 + |z|)**2``.
+
+    Convex below 0, concave above.
+    """
 
     kinks = (0.0,)
 
@@ -145,7 +148,8 @@ def test_undeclared_activation_is_refused_naming_what_to_declare():
             return 3 * z**2
 
     net = tp.Network([tp.Affine(1, 2), Cube(), tp.Affine(2, 1)], seed=0)
-    with pytest.raises(tp.UndeclaredActivation, match=r"layer 1 is Cube.*declared_shape\(\).*ActivationShape.*curvature"):
+    expected = r"layer 1 is Cube.*declared_shape\(\).*ActivationShape.*curvature"
+    with pytest.raises(tp.UndeclaredActivation, match=expected):
         tp.output_bounds(net, [0.0], [1.0])
     assert issubclass(tp.UndeclaredActivation, TypeError)
 

@@ -16,4 +16,12 @@ from .certificate import Certificate, certificate
 from .gradient import GradientBounds, gradient_bounds
 from .output import OutputBounds, output_bounds
 
-__all__ = ["Certificate", "certificate", "GradientBounds", "OutputBounds", "UndeclaredActivation", "gradient_bounds", "output_bounds"]
+__all__ = [
+    "Certificate",
+    "GradientBounds",
+    "OutputBounds",
+    "UndeclaredActivation",
+    "certificate",
+    "gradient_bounds",
+    "output_bounds",
+]

@@ -7,7 +7,7 @@ from typing import Any, Callable
 
 import numpy as np
 
-from .._validate import as_float_array
+from .._validate import as_float_array, real_in_range, seed_value
 
 _RANDOM_STARTS = 256
 _MAX_CORNERS = 1024  # all 2**n corners up to n = 10 inputs
@@ -37,7 +37,7 @@ def starting_points(low: np.ndarray, high: np.ndarray, seed: int | None) -> np.n
     if 2**n <= _MAX_CORNERS:
         bits = (np.arange(2**n)[:, None] >> np.arange(n)) & 1
         points.extend(np.where(bits == 1, high, low))
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(seed_value(seed))
     points.extend(low + rng.uniform(size=(_RANDOM_STARTS, n)) * (high - low))
     return np.clip(np.array(points), low, high)
 
@@ -55,10 +55,9 @@ class Clock:
     """Shares ``max_seconds`` among ``runs`` searches: each gets an equal part of what is left."""
 
     def __init__(self, max_seconds: float, runs: int) -> None:
-        if not (isinstance(max_seconds, (int, float)) and max_seconds > 0 and np.isfinite(max_seconds)):
-            raise ValueError(f"max_seconds must be a positive finite number, got {max_seconds!r}")
+        seconds = real_in_range(max_seconds, "max_seconds", low=0.0, low_open=True)
         self.start = time.monotonic()
-        self.end = self.start + float(max_seconds)
+        self.end = self.start + seconds
         self.runs_left = runs
 
     def next_deadline(self) -> float:
@@ -94,9 +93,7 @@ def local_minimiser(
 
 
 def check_tolerance(tolerance: Any) -> float:
-    if not (isinstance(tolerance, (int, float)) and np.isfinite(tolerance) and tolerance >= 0):
-        raise ValueError(f"tolerance must be a finite number >= 0, got {tolerance!r}")
-    return float(tolerance)
+    return real_in_range(tolerance, "tolerance", low=0.0)
 
 
 def check_max_splits(max_splits: Any) -> int | None:

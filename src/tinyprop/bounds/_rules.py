@@ -154,7 +154,7 @@ class ActivationRules:
         return lo, up(hi + margin)
 
     def lines(self, l: np.ndarray, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """``(alpha_L, beta_L, alpha_U, beta_U)`` with ``alpha_L z + beta_L <= f(z) <= alpha_U z + beta_U`` on ``[l, u]``.
+        """``(alpha_L, beta_L, alpha_U, beta_U)``: ``alpha_L z + beta_L <= f(z) <= alpha_U z + beta_U`` on ``[l, u]``.
 
         The lines also enclose the network's evaluation of ``f`` at any ``z``
         in ``[l, u]``; ``|f|`` there is at most the larger of the two lines' magnitudes.

@@ -69,7 +69,9 @@ class Problem:
     resolution: Callable[[np.ndarray, np.ndarray], np.ndarray]
 
 
-def minimise(problem: Problem, starts: np.ndarray, *, target: float, deadline: float, max_splits: int | None) -> Outcome:
+def minimise(
+    problem: Problem, starts: np.ndarray, *, target: float, deadline: float, max_splits: int | None
+) -> Outcome:
     """Branch and bound from the whole box; ``starts`` (rows inside the box) seed the best value."""
     values = problem.evaluate(starts)
     order = np.argsort(values)

@@ -93,7 +93,9 @@ class Certificate:
         lines = [
             "tinyprop envelope certificate",
             f"  network fingerprint {self.fingerprint} ({o.dtype}), tinyprop {self.version}, created {self.created}",
-            "  box: " + ", ".join(f"{n} in [{float(o.low[j])!r}, {float(o.high[j])!r}]" for j, n in enumerate(self.input_names)),
+            "  box: " + ", ".join(
+                f"{n} in [{float(o.low[j])!r}, {float(o.high[j])!r}]" for j, n in enumerate(self.input_names)
+            ),
             f"  outputs: {o.method}",
             f"  slopes: {s.method}",
             f"  time {o.seconds:.2f} s (outputs) + {s.seconds:.2f} s (slopes); "
@@ -104,10 +106,10 @@ class Certificate:
             lines += [
                 f"{name}:",
                 f"  guaranteed range [{float(o.lower[k])!r}, {float(o.upper[k])!r}]",
-                f"  lowest found {float(o.lowest_found[k])!r} at {_floats(o.lowest_input[k])} (gap {o.lower_gap[k]:.3g}, "
-                f"stopped by {o.stopped[k][0]})",
-                f"  highest found {float(o.highest_found[k])!r} at {_floats(o.highest_input[k])} (gap {o.upper_gap[k]:.3g}, "
-                f"stopped by {o.stopped[k][1]})",
+                f"  lowest found {float(o.lowest_found[k])!r} at {_floats(o.lowest_input[k])} "
+                f"(gap {o.lower_gap[k]:.3g}, stopped by {o.stopped[k][0]})",
+                f"  highest found {float(o.highest_found[k])!r} at {_floats(o.highest_input[k])} "
+                f"(gap {o.upper_gap[k]:.3g}, stopped by {o.stopped[k][1]})",
             ]
             for j, input_name in enumerate(self.input_names):
                 record = self._slope(k, j, input_name)
