@@ -86,6 +86,7 @@ LAYERS = (
     "tinyprop.cli._imports",
     "tinyprop.cli._fit",
     "tinyprop.cli.bench_cmd",
+    "tinyprop.cli.certify_cmd",
     "tinyprop.cli.check_cmd",
     "tinyprop.cli.demo_cmd",
     "tinyprop.cli.export_cmd",
