@@ -154,6 +154,26 @@ def test_undeclared_activation_is_refused_naming_what_to_declare():
     assert issubclass(tp.UndeclaredActivation, TypeError)
 
 
+def test_a_subclass_that_changes_the_function_must_declare_again():
+    class SteeperTanh(tp.Tanh):
+        def value(self, z):
+            return np.tanh(2.0 * z)
+
+        def derivative(self, z, a):
+            return 2.0 * (1.0 - a * a)
+
+    net = tp.Network([tp.Affine(1, 2), SteeperTanh(), tp.Affine(2, 1)], seed=0)
+    with pytest.raises(tp.UndeclaredActivation, match="SteeperTanh, which redefines value.* inherits declared_shape"):
+        tp.output_bounds(net, [0.0], [1.0])
+
+    class DeclaredSteeperTanh(SteeperTanh):
+        def declared_shape(self):
+            return tp.ActivationShape((0.0,), (1, -1), value_error=10.0, derivative_error=20.0)
+
+    net = tp.Network([tp.Affine(1, 2), DeclaredSteeperTanh(), tp.Affine(2, 1)], seed=0)
+    assert tp.output_bounds(net, [0.0], [1.0], max_splits=10).lower.shape == (1,)
+
+
 @pytest.mark.parametrize(
     "arguments, message",
     [

@@ -54,7 +54,21 @@ def rules_for(activation: Activation, net: Rounding, where: str) -> "ActivationR
             "0 linear) and the rounding errors of value and derivative (see docs/guarantees.md); "
             f"got {shape!r}"
         )
+    cls = type(activation)
+    owner = _defined_in(cls, "declared_shape")
+    for method in ("value", "derivative"):
+        if _defined_in(cls, method) is not owner and issubclass(_defined_in(cls, method), owner):
+            raise UndeclaredActivation(
+                f"{where} is {cls.__name__}, which redefines {method}() but inherits declared_shape() from "
+                f"{owner.__name__}; the declaration may not fit the new function: give {cls.__name__} its own "
+                "declared_shape() (see docs/guarantees.md)"
+            )
     return ActivationRules(activation, shape, net)
+
+
+def _defined_in(cls: type, name: str) -> type:
+    """The class in ``cls``'s method resolution order that defines ``name``."""
+    return next(k for k in cls.__mro__ if name in k.__dict__)
 
 
 class ActivationRules:
