@@ -226,6 +226,9 @@ def test_bad_arguments_are_refused(low, high, options, error, message):
             function(net, low, high, **options)
     with pytest.raises(TypeError, match="tinyprop.Network"):
         tp.output_bounds("model.npz", [0.0], [1.0])
+    small = tp.Network([tp.Affine(1, 1)], seed=0, dtype=np.float32)
+    with pytest.raises(ValueError, match="high has a non-finite value.*after conversion from float64 to float32"):
+        tp.output_bounds(small, [0.0], [1e39])
 
 
 @pytest.mark.slow

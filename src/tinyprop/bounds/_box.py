@@ -14,14 +14,18 @@ _MAX_CORNERS = 1024  # all 2**n corners up to n = 10 inputs
 _LOCAL_ITERATIONS = 60
 
 
-def checked_box(low: Any, high: Any, n_in: int) -> tuple[np.ndarray, np.ndarray]:
-    """``low``, ``high`` as float64 arrays ``(n_in,)`` with ``low <= high``; a scalar is accepted for ``n_in == 1``."""
+def checked_box(low: Any, high: Any, n_in: int, dtype: np.dtype) -> tuple[np.ndarray, np.ndarray]:
+    """``low``, ``high`` as float64 arrays ``(n_in,)`` with ``low <= high``; a scalar is accepted for ``n_in == 1``.
+
+    Both must also be finite in the network's ``dtype`` (as ``predict`` requires of its inputs).
+    """
     box = []
     for name, value in (("low", low), ("high", high)):
         array = as_float_array(value, name, np.dtype(np.float64)).reshape(-1) if np.ndim(value) <= 1 else None
         if array is None or array.shape != (n_in,):
             shape = np.shape(value)
             raise ValueError(f"{name} must hold one number per network input ({n_in}), got shape {shape}")
+        as_float_array(array, name, dtype)
         box.append(array.copy())
     low, high = box
     if np.any(low > high):

@@ -85,7 +85,8 @@ def minimise(
     lo, hi = problem.box_lo[None, :].copy(), problem.box_hi[None, :].copy()
     lb = _sound(problem.bound, lo, hi)
     span = problem.box_hi - problem.box_lo
-    scale = np.where(span > 0, 1.0 / np.where(span > 0, span, 1.0), 0.0)
+    has_width = span > 0
+    span = np.where(has_width, span, 1.0)
     splits, rounds, improved = 0, 0, False
     while True:
         keep = lb < best
@@ -100,7 +101,7 @@ def minimise(
             stopped = "split limit"
             break
         width = hi - lo
-        relative = np.where(width > problem.resolution(lo, hi), width * scale, -1.0)
+        relative = np.where((width > problem.resolution(lo, hi)) & has_width, width / span, -1.0)
         dim = np.argmax(relative, axis=1)
         rows = np.arange(lo.shape[0])
         candidates = np.flatnonzero((lb < best - target) & (relative[rows, dim] > 0))

@@ -130,7 +130,7 @@ def gradient_bounds(
     (1, True)
     """
     program = Program(net)
-    low, high = checked_box(low, high, net.n_in)
+    low, high = checked_box(low, high, net.n_in, net.dtype)
     tolerance = check_tolerance(tolerance)
     max_splits = check_max_splits(max_splits)
     n_out, n_in = net.n_out, net.n_in

@@ -129,7 +129,7 @@ def output_bounds(
     (True, True)
     """
     program = Program(net)
-    low, high = checked_box(low, high, net.n_in)
+    low, high = checked_box(low, high, net.n_in, net.dtype)
     tolerance = check_tolerance(tolerance)
     max_splits = check_max_splits(max_splits)
     clock = Clock(max_seconds, 2 * net.n_out)
