@@ -17,7 +17,7 @@ from net_strategies import BUILT_IN_ACTIVATIONS, networks
 
 import tinyprop as tp
 
-SOUNDNESS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+SOUNDNESS = settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
 @st.composite

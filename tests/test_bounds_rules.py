@@ -79,7 +79,7 @@ def _grid(low: float, high: float) -> np.ndarray:
 
 @pytest.mark.parametrize("activation", ACTIVATIONS, ids=NAMES)
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=25, deadline=None)
 @given(box=intervals())
 def test_lines_and_ranges_enclose_f(activation, dtype, box):
     low, high = box
@@ -103,7 +103,7 @@ def test_lines_and_ranges_enclose_f(activation, dtype, box):
 
 
 @pytest.mark.parametrize("activation", ACTIVATIONS, ids=NAMES)
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=25, deadline=None)
 @given(box=intervals())
 def test_derivative_range_encloses_derivatives(activation, box):
     from scipy.differentiate import derivative
