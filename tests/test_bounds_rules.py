@@ -187,3 +187,12 @@ def test_a_subclass_that_changes_the_function_must_declare_again():
 def test_activation_shape_refuses_bad_declarations(arguments, message):
     with pytest.raises(ValueError, match=message):
         tp.ActivationShape(*arguments)
+
+
+def test_every_built_in_activation_declares_a_shape():
+    """The one list of built-ins (activations.BUILT_IN_ACTIVATIONS): each can be bounded."""
+    from tinyprop.activations import BUILT_IN_ACTIVATIONS as CLASSES
+
+    for cls in CLASSES:
+        assert isinstance(cls().declared_shape(), tp.ActivationShape), cls.__name__
+        assert "declared_shape" in cls.__dict__, f"{cls.__name__} must declare its own shape"

@@ -17,7 +17,7 @@ from .bounds import (
     gradient_bounds,
     output_bounds,
 )
-from .build import build_mlp
+from .mlp import build_mlp
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
