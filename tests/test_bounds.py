@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from net_strategies import BUILT_IN_ACTIVATIONS, networks
 
 import tinyprop as tp
+from net_strategies import BUILT_IN_ACTIVATIONS, networks
 
 SOUNDNESS = settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
@@ -45,7 +45,7 @@ def _local_extremes(net, low, high, rng, k, starts=4):
 
     ends = []
     for sign in (1.0, -1.0):
-        def fun(x):
+        def fun(x, sign=sign):
             row = x.reshape(1, -1)
             return sign * float(net.predict(row)[0, k]), sign * net.input_gradient(row)[0, k].astype(np.float64)
 
@@ -110,7 +110,7 @@ def _exact_range(net, low, high):
         best = y.min()
         local = np.flatnonzero((y[1:-1] <= y[:-2]) & (y[1:-1] <= y[2:])) + 1
         for i in local:
-            found = minimize_scalar(lambda t: sign * net.predict([[t]])[0, 0], bounds=(x[i - 1], x[i + 1]),
+            found = minimize_scalar(lambda t, sign=sign: sign * net.predict([[t]])[0, 0], bounds=(x[i - 1], x[i + 1]),
                                     method="bounded", options={"xatol": 1e-12})
             best = min(best, found.fun)
         extremes.append(sign * min(best, y[0], y[-1]))
