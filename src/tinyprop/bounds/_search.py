@@ -144,7 +144,7 @@ def _split(lo, hi, lb, rows, dim, bound: Bound):
     """Replace boxes ``rows`` by their halves along ``dim``; the halves keep at least the parent's bound."""
     parent_lo, parent_hi, parent_lb = lo[rows], hi[rows], lb[rows]
     pick = np.arange(rows.size)
-    mid = 0.5 * parent_lo[pick, dim] + 0.5 * parent_hi[pick, dim]
+    mid = np.clip(0.5 * parent_lo[pick, dim] + 0.5 * parent_hi[pick, dim], parent_lo[pick, dim], parent_hi[pick, dim])
     left_hi, right_lo = parent_hi.copy(), parent_lo.copy()
     left_hi[pick, dim] = mid
     right_lo[pick, dim] = mid
