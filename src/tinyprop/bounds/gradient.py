@@ -22,9 +22,10 @@ from ._slopes import gradient_intervals
 __all__ = ["GradientBounds", "gradient_bounds"]
 
 METHOD = (
-    "the delta recursion in interval arithmetic (Moore 1966) over intervals from interval "
-    "propagation (Gowal et al. 2018), refined by branch and bound on the input box; rounding "
-    "covered by proven error margins and outward rounding"
+    "the delta recursion in interval arithmetic (Moore 1966) over the hidden units' intervals "
+    "(interval propagation, Gowal et al. 2018, tightened by backward linear relaxation, Zhang et "
+    "al. 2018), refined by branch and bound on the input box; rounding covered by proven error "
+    "margins and outward rounding"
 )
 
 _STEP_TRIES = 40  # step sizes tried for a witness pair, halving each time

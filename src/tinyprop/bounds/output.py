@@ -20,9 +20,9 @@ from ._search import Problem, minimise
 __all__ = ["OutputBounds", "output_bounds"]
 
 METHOD = (
-    "interval arithmetic (Moore 1966) and backward linear relaxation (Zhang et al. 2018) "
-    "with interval intermediate bounds (Gowal et al. 2018), refined by branch and bound on the "
-    "input box; rounding covered by proven error margins and outward rounding"
+    "interval arithmetic (Moore 1966; Gowal et al. 2018) and backward linear relaxation "
+    "(Zhang et al. 2018), which also tightens the hidden units' intervals, refined by branch and "
+    "bound on the input box; rounding covered by proven error margins and outward rounding"
 )
 
 
