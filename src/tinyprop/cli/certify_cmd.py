@@ -28,7 +28,8 @@ EPILOG = f"""the method, its sources and what is guaranteed: docs/guarantees.md 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL.npz", help="model file written by tinyprop")
     parser.add_argument("--low", type=_numbers, required=True, metavar="NUMBERS",
-                        help="lower end of the box, one number per input, comma-separated (e.g. 40,2)")
+                        help="lower end of the box, one number per input, comma-separated (e.g. 40,2; "
+                             "a value that starts with '-' needs '=': --low=-1,-2)")
     parser.add_argument("--high", type=_numbers, required=True, metavar="NUMBERS",
                         help="upper end of the box, one number per input, comma-separated (e.g. 90,20)")
     parser.add_argument("--json", metavar="PATH", help="also write the certificate as JSON to PATH")
