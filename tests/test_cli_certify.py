@@ -50,9 +50,13 @@ def test_certify_prints_and_writes_what_the_library_proves(valve_model, tmp_path
     assert "not certified for safety functions" in result.stdout
 
 
-def test_certify_takes_negative_box_ends_after_an_equals_sign(valve_model):
-    result = run_cli("certify", str(valve_model[0]), "--low=-1,-2", "--high", "1,2", "--max-seconds", "2")
+def test_certify_takes_negative_box_ends_after_an_equals_sign_and_a_split_budget(valve_model, tmp_path):
+    out = tmp_path / "cert.json"
+    result = run_cli("certify", str(valve_model[0]), "--low=-1,-2", "--high", "1,2", "--max-splits", "3",
+                     "--json", str(out))
     assert result.returncode == 0, result.stderr
+    record = json.loads(out.read_text(encoding="utf-8"))
+    assert record["splits"]["outputs"] <= 2 * 3 and record["splits"]["slopes"] <= 2 * 2 * 3  # per bound
     assert "box: temperature in [-1.0, 1.0], flow in [-2.0, 2.0]" in result.stdout
 
 

@@ -135,6 +135,7 @@ def certificate(
     tolerance: float = 1e-6,
     slope_tolerance: float = 1e-3,
     max_seconds: float = 20.0,
+    max_splits: int | None = None,
     input_names: Sequence[str] | None = None,
     output_names: Sequence[str] | None = None,
 ) -> Certificate:
@@ -142,7 +143,9 @@ def certificate(
 
     Half of ``max_seconds`` goes to :func:`tinyprop.output_bounds` (with
     ``tolerance``), half to :func:`tinyprop.gradient_bounds` (with
-    ``slope_tolerance``). Names default to ``x0, x1, ...`` and ``y0, y1, ...``.
+    ``slope_tolerance``); ``max_splits`` is passed to both (a budget that
+    does not depend on the machine's speed). Names default to ``x0, x1, ...``
+    and ``y0, y1, ...``.
     ``.text()`` is for reading, ``.as_dict()`` for ``json.dump``.
 
     >>> import json, tinyprop as tp
@@ -155,8 +158,9 @@ def certificate(
     names_in = _names(input_names, net.n_in, "x", "input_names") if isinstance(net, Network) else ()
     names_out = _names(output_names, net.n_out, "y", "output_names") if isinstance(net, Network) else ()
     created = datetime.datetime.now(datetime.timezone.utc).replace(microsecond=0).isoformat()
-    outputs = output_bounds(net, low, high, tolerance=tolerance, max_seconds=max_seconds / 2)
-    slopes = gradient_bounds(net, low, high, tolerance=slope_tolerance, max_seconds=max_seconds / 2)
+    outputs = output_bounds(net, low, high, tolerance=tolerance, max_seconds=max_seconds / 2, max_splits=max_splits)
+    slopes = gradient_bounds(net, low, high, tolerance=slope_tolerance, max_seconds=max_seconds / 2,
+                             max_splits=max_splits)
     return Certificate(outputs, slopes, fingerprint(net), names_in, names_out, created, __version__)
 
 

@@ -39,6 +39,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="slope bounds: gap allowed, relative to the largest slope (default 1e-3)")
     parser.add_argument("--max-seconds", type=_args.positive_float, default=20.0,
                         help="time for the whole search, half for outputs, half for slopes (default 20)")
+    parser.add_argument("--max-splits", type=_args.positive_int, metavar="N",
+                        help="also stop each bound's search after N box splits (a budget that does not depend on "
+                             "the machine's speed)")
     add_import_option(parser)
 
 
@@ -53,7 +56,7 @@ def run(args: argparse.Namespace) -> int:
     outputs = stored_names(model.metadata, "outputs")
     try:
         cert = certificate(net, args.low, args.high, tolerance=args.tolerance, slope_tolerance=args.slope_tolerance,
-                           max_seconds=args.max_seconds,
+                           max_seconds=args.max_seconds, max_splits=args.max_splits,
                            input_names=inputs if inputs and len(inputs) == net.n_in else None,
                            output_names=outputs if outputs and len(outputs) == net.n_out else None)
     except UndeclaredActivation as exc:
