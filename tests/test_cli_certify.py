@@ -53,7 +53,7 @@ def test_certify_prints_and_writes_what_the_library_proves(valve_model, tmp_path
 def test_certify_takes_negative_box_ends_after_an_equals_sign_and_a_split_budget(valve_model, tmp_path):
     out = tmp_path / "cert.json"
     result = run_cli("certify", str(valve_model[0]), "--low=-1,-2", "--high", "1,2", "--max-splits", "3",
-                     "--json", str(out))
+                     "--slope-tolerance", "1e-9", "--max-seconds", "4", "--json", str(out))  # (unreachable tolerance)
     assert result.returncode == 0, result.stderr
     record = json.loads(out.read_text(encoding="utf-8"))
     assert record["splits"]["outputs"] <= 2 * 3 and record["splits"]["slopes"] <= 2 * 2 * 3  # per bound
