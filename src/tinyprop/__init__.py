@@ -12,7 +12,16 @@ modules: ``tinyprop.network.Trace``, ``tinyprop.workspace.Workspace``,
 """
 
 from ._version import __version__
-from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .activations import Activation, ActivationShape, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .bounds import (
+    Certificate,
+    GradientBounds,
+    OutputBounds,
+    UndeclaredActivation,
+    certificate,
+    gradient_bounds,
+    output_bounds,
+)
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .ensemble import Ensemble
@@ -61,6 +70,7 @@ __all__ = [
     "Network", "build_mlp", "Affine", "Standardize", "Unstandardize",
     # activations
     "Activation", "Sigmoid", "Tanh", "ReLU", "LeakyReLU", "Softplus", "Identity", "register_activation",
+    "ActivationShape",
     # losses
     "Loss", "SquaredError", "MeanSquaredError", "HuberError", "CrossEntropyOnSigmoid", "CrossEntropyOnSoftmax",
     # training: the loop, optimizers, schedules, checkpoints
@@ -79,6 +89,9 @@ __all__ = [
     "model_parts", "model_from_parts",
     # inference code
     "export_c", "export_python", "export_c_fixed_point", "FixedPointReport", "agreement_bound",
+    # guarantees over an input box
+    "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
+    "UndeclaredActivation",
     # how far to trust a fit
     "parameter_uncertainty", "ParameterUncertainty", "PredictionIntervals", "RankDeficientError", "parameter_labels",
     "input_sensitivity", "SensitivityTable", "uncertainty_report",
