@@ -158,4 +158,4 @@ def test_memory_stays_that_of_one_block():
         _, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()
-    assert peak < 48 * 2**20 < whole / 4, (peak, whole)
+    assert peak < 5 * 16 * 2**20 < whole / 2, (peak, whole)  # a few copies of one 16 MB block, not J
