@@ -12,14 +12,17 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
     assert main(["--quick", "--json", str(path)]) == 0
     printed, progress = capsys.readouterr()
     results = json.loads(path.read_text())
-    for key in ("machine", "floor", "tax", "memory", "scaling", "second_order", "inference"):
+    for key in ("machine", "floor", "tax", "memory", "scaling", "second_order", "blocked_lm", "inference"):
         assert key in results
     for row in results["floor"] + results["tax"] + results["memory"]:
         assert row["ratio"] > 0
     for row in results["floor"]:  # the step is timed against the floor alone and the floor plus the update
         assert row["floor_update_s"] > 0 and row["ratio_floor_update"] > 0
     assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
-    assert progress.splitlines()[0] == "[1/6] measuring floor ..." and "[6/6] measuring inference" in progress
+    assert progress.splitlines()[0] == "[1/7] measuring floor ..." and "[7/7] measuring inference" in progress
+    memory = results["blocked_lm"]["memory"]
+    assert 0 < memory["peak_bytes"] and memory["evaluations"] >= 2 and results["blocked_lm"]["speed"]["speedup"] > 0
+    assert "blocked LM iteration" in printed and "MINPACK / blocked" in printed
     assert "floor ratio" in printed and "floor + Adam update" in printed and "abstraction tax" in printed and "scaling exponent" in printed
 
 

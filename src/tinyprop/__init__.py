@@ -23,6 +23,7 @@ from .losses import (
     SquaredError,
 )
 from .network import Network, Trace
+from .posterior import PosteriorUncertainty
 from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp, optimizer_from_state
 from .registry import register_activation
 from .ensemble import Ensemble
@@ -77,6 +78,7 @@ __all__ = [
     "Optimizer",
     "OptimizerState",
     "ParameterUncertainty",
+    "PosteriorUncertainty",
     "PredictionIntervals",
     "RMSProp",
     "RankDeficientError",
