@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from tinyprop.cli import main
-from tinyprop.cli._fit import FitSettings
+from tinyprop.recipes import FitSettings
 
 LEAST_SQUARES = ("levenberg-marquardt", "lbfgs")
 MINI_BATCH_OPTIONS = [

@@ -34,8 +34,9 @@ import tinyprop as tp
 from tinyprop.archive import read_archive, write_archive
 from tinyprop.datasets import load_uci
 from tinyprop.ensemble import Ensemble
-from tinyprop.io import ModelFileError
-from tinyprop.sweep import TabularRegression, sweep
+from tinyprop.modelfile import ModelFileError
+from tinyprop.recipes import TabularRegression
+from tinyprop.sweep import sweep
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from test_export_c import run_predict_driver  # noqa: E402  (the export tests' exact-input C driver)

@@ -30,7 +30,7 @@ from tinyprop.datasets import battery_pack
 from tinyprop.export._fixed_program import narrow
 from tinyprop.export._fixed_tables import TABLES, lookup
 from tinyprop.export.fixed_point import FixedPointReport, export_c_fixed_point
-from tinyprop.io import fingerprint
+from tinyprop.modelfile import fingerprint
 
 from net_strategies import networks as base_networks
 from test_export_c import HOSTILE, HOSTILE_METADATA

@@ -30,7 +30,7 @@ from hypothesis import strategies as st
 import tinyprop as tp
 from tinyprop.export import agreement_bound, export_python
 from tinyprop.export._text import python_literal
-from tinyprop.io import fingerprint
+from tinyprop.modelfile import fingerprint
 
 sys.path.insert(0, str(Path(__file__).parent))
 from test_export_c import HOSTILE, HOSTILE_METADATA, SoftSign, needs_cc, networks, run_c  # noqa: E402

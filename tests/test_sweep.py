@@ -21,8 +21,9 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.sweep import SweepRecord, TabularRegression, TrainingData, setting_key, sweep
-from tinyprop.train import fit_tabular_regression
+from tinyprop.recipes import TabularRegression
+from tinyprop.sweep import SweepRecord, TrainingData, setting_key, sweep
+from tinyprop.recipes import fit_tabular_regression
 
 QUICK = TabularRegression(max_epochs=25, patience=10)
 

@@ -12,7 +12,8 @@ import dataclasses
 import numpy as np
 import pytest
 
-from tinyprop.sweep import TabularRegression, sweep
+from tinyprop.recipes import TabularRegression
+from tinyprop.sweep import sweep
 
 distributed = pytest.importorskip("distributed")
 pytestmark = pytest.mark.distributed

@@ -17,7 +17,8 @@ import pytest
 import tinyprop as tp
 from tinyprop.optim import SGD, Adam, RMSProp, optimizer_from_state
 from tinyprop.schedules import CosineSchedule
-from tinyprop.train import EpochInfo, TrainingDiverged, TrainingState, train
+from tinyprop.checkpoint import TrainingState
+from tinyprop.train import EpochInfo, TrainingDiverged, train
 from fake_terminal import FakeTerminal
 
 OPTIMIZERS = {

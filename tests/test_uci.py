@@ -37,7 +37,7 @@ import numpy as np
 import pytest
 
 from tinyprop.datasets import load_uci
-from tinyprop.train import fit_tabular_regression
+from tinyprop.recipes import fit_tabular_regression
 
 PUBLISHED = {  # Gal & Ghahramani (2016), Table 1: (PBP mean, PBP se, dropout mean, dropout se)
     "concrete": (5.67, 0.09, 5.23, 0.12),

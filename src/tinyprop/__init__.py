@@ -5,14 +5,14 @@ generated from it against the applicable functional-safety standards, local
 codes and qualified review is the user's responsibility.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
-from .checkpoint import CheckpointError, load_checkpoint, save_checkpoint
+from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from .io import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
+from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .layers import Affine, ColumnScaling, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,
@@ -29,13 +29,13 @@ from .registry import register_activation
 from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
-from .sweep import SweepRecord, SweepResult, TabularRegression, TrainingData, sweep
+from .sensitivity import SensitivityTable, input_sensitivity
+from .sweep import SweepRecord, SweepResult, TrainingData, sweep
+from .recipes import TabularRegression, fit_tabular_regression
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
     RankDeficientError,
-    SensitivityTable,
-    input_sensitivity,
     parameter_uncertainty,
     uncertainty_report,
 )
@@ -44,8 +44,6 @@ from .train import (
     History,
     TrainingDiverged,
     TrainingResult,
-    TrainingState,
-    fit_tabular_regression,
     train,
 )
 from .workspace import Workspace

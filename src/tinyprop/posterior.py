@@ -37,6 +37,7 @@ from typing import Any
 import numpy as np
 
 from ._validate import as_samples, real_in_range
+from .intervals import PredictionIntervals
 from .network import Network
 
 __all__ = ["PosteriorUncertainty", "posterior_uncertainty"]
@@ -67,18 +68,16 @@ class PosteriorUncertainty:
     network: Network = field(repr=False)
     _factor: Any = field(repr=False)
 
-    def prediction_intervals(self, X: Any, *, level: float = 0.95) -> Any:
+    def prediction_intervals(self, X: Any, *, level: float = 0.95) -> PredictionIntervals:
         """Intervals of the fitted mean and of a new observation at inputs ``X`` ``(m, n_in)``, per target.
 
-        Returns a :class:`~tinyprop.uncertainty.PredictionIntervals` whose
+        Returns a :class:`~tinyprop.intervals.PredictionIntervals` whose
         ``t_quantile`` is the normal quantile ``z`` and whose
         ``degrees_of_freedom`` is ``None``. ``g^T H^-1 g`` is evaluated as
         ``||L^-1 g||^2`` with the Cholesky factor ``H = L L^T``, never
         negative.
         """
         from scipy import linalg, stats
-
-        from .uncertainty import PredictionIntervals
 
         level = real_in_range(level, "level", low=0.0, high=1.0, low_open=True, high_open=True)
         X64 = as_samples(X, "X", self.network.n_in, self.network.dtype)
@@ -119,15 +118,14 @@ class PosteriorUncertainty:
         }
 
 
-def posterior_uncertainty(work: Network, result: Any) -> PosteriorUncertainty:
+def posterior_uncertainty(work: Network, result: Any, labels: tuple[str, ...]) -> PosteriorUncertainty:
     """The posterior of the module docstring for ``work`` (a float64 copy at ``result.theta``).
 
+    ``labels``: one per parameter (:func:`tinyprop.uncertainty.parameter_labels`).
     ``result`` is the :class:`~tinyprop.solve.SolveResult` of a regularised
     fit (its ``normal_matrices``, ``noise_sd`` and ``penalty`` are used).
     """
     from scipy import linalg
-
-    from .uncertainty import parameter_labels
 
     beta = 1.0 / np.asarray(result.noise_sd, dtype=np.float64) ** 2
     A = np.asarray(result.normal_matrices, dtype=np.float64)
@@ -141,7 +139,7 @@ def posterior_uncertainty(work: Network, result: Any) -> PosteriorUncertainty:
     np.fill_diagonal(correlation, 1.0)
     return PosteriorUncertainty(
         theta=work.get_vector(),
-        labels=parameter_labels(work),
+        labels=labels,
         covariance=covariance,
         standard_errors=root,
         correlation=correlation,

@@ -64,7 +64,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
@@ -74,10 +74,6 @@ from .losses import SquaredError
 from .blocked_lm import minimise
 from .evidence import log_evidence
 from .network import Network
-from .uncertainty import ParameterUncertainty, parameter_uncertainty
-
-if TYPE_CHECKING:
-    from .posterior import PosteriorUncertainty
 
 __all__ = ["solve", "SolveResult", "METHODS"]
 
@@ -104,7 +100,8 @@ class SolveResult:
     value, scipy's "cost"). ``residuals``: ``r`` at ``theta`` (length
     ``n * n_out``). ``jacobian``: ``dr/dtheta`` at ``theta``, shape
     ``(n * n_out, n_params)``, for later uncertainty estimates
-    (``J^T J`` approximates the Hessian of ``rss / 2``).
+    (``J^T J`` approximates the Hessian of ``rss / 2``;
+    ``tinyprop.uncertainty.parameter_uncertainty(net, result=result)``).
     ``gradient_norm``: max-norm of ``J^T r``. ``iterations``: outer
     iterations (Levenberg-Marquardt: one Jacobian per iteration).
     ``function_evaluations`` and ``jacobian_evaluations``: residual and
@@ -146,10 +143,6 @@ class SolveResult:
     effective_parameters: float | None = None
     effective_parameters_per_target: np.ndarray | None = field(default=None, repr=False)
     log_evidence: float | None = None
-
-    def uncertainty(self, net: Network) -> ParameterUncertainty | PosteriorUncertainty:
-        """Standard errors and intervals at this solution: ``parameter_uncertainty(net, result=self)``."""
-        return parameter_uncertainty(net, result=self)
 
 
 def solve(

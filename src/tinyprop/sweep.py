@@ -3,7 +3,7 @@
 :func:`sweep` calls ``recipe(setting, data)`` once per setting and returns a
 table of :class:`SweepRecord` rows plus the trained networks. A *recipe* is a
 picklable callable (a module-level function, or an instance of a small
-dataclass such as :class:`TabularRegression`) that builds and trains one
+dataclass such as :class:`tinyprop.recipes.TabularRegression`) that builds and trains one
 network from one *setting*, a dict of JSON values like
 ``{"hidden": [32], "lr": 0.001, "seed": 3}``, and returns the network, or
 ``(network, training_result)``.
@@ -32,7 +32,7 @@ goes on. Exceptions of the executor itself (a worker process killed, a lost
 connection) stop the sweep: they say nothing about the setting.
 
 Resume: with ``results_path`` (a folder), each finished row is written as it
-completes: the network with :func:`tinyprop.io.save` under
+completes: the network with :func:`tinyprop.modelfile.save` under
 ``models/<first 16 hex digits of sha256(key)>.npz``, then the whole table,
 rewritten atomically as ``table.jsonl``. A later call with the same folder
 skips every setting whose key (its canonical JSON, :func:`setting_key`) is
@@ -57,23 +57,14 @@ from typing import Any
 
 import numpy as np
 
-from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, seed_value
+from ._validate import as_float_array, as_samples, as_targets
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
-from .io import fingerprint, load_model_file, save
+from .modelfile import fingerprint, load_model_file, save
 from .losses import Loss, MeanSquaredError
 from .network import Network
-from .train import (
-    RECIPE_BATCH_SIZE,
-    RECIPE_HIDDEN_UNITS,
-    RECIPE_LR,
-    RECIPE_MAX_EPOCHS,
-    RECIPE_PATIENCE,
-    TrainingDiverged,
-    TrainingResult,
-    _fit_tabular,
-)
+from .train import TrainingDiverged, TrainingResult
 
-__all__ = ["sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "TabularRegression"]
+__all__ = ["sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData"]
 
 STATUS_OK = "ok"
 STATUS_FAILED = "failed"
@@ -202,7 +193,7 @@ class SweepRecord:
     failed; ``epochs_run`` and ``stop_reason`` from the recipe's
     :class:`~tinyprop.train.TrainingResult` (``None`` if it returned none);
     ``wall_time``: seconds spent in the recipe; ``fingerprint`` of the network
-    (:func:`tinyprop.io.fingerprint`); ``model_file``: its file under
+    (:func:`tinyprop.modelfile.fingerprint`); ``model_file``: its file under
     ``results_path`` (``None`` without one).
     """
 
@@ -281,72 +272,6 @@ def _cell(value: float | int | None, width: int) -> str:
     if value is None:
         return "-".rjust(width)
     return f"{value:>{width}d}" if isinstance(value, int) else f"{value:>{width}.5g}"
-
-
-# ---------------------------------------------------------------- the ready recipe
-@dataclass(frozen=True)
-class TabularRegression:
-    """A recipe for small tabular regression; its defaults are :func:`tinyprop.train.fit_tabular_regression`.
-
-    ``recipe(setting, data)`` trains ``replace(recipe, **setting).fit(data.X, data.y)``:
-    every setting key must be one of the fields below, whose values are the
-    defaults. The network is ``Standardize -> [Affine -> Tanh] per entry of
-    hidden -> Affine -> Unstandardize`` with the scalings fitted on the
-    training rows and Glorot initialisation; 10 % of the training rows (at
-    least one) are held out for early stopping with ``patience``, and
-    :func:`~tinyprop.train.train` runs :class:`~tinyprop.losses.MeanSquaredError`
-    with ``Adam(lr, decoupled_decay=decoupled_decay)``, ``l2`` (the L2
-    penalty of ``train``), ``batch_size`` and at most ``max_epochs`` epochs.
-    ``seed`` gives the held-out rows, the initial weights and the shuffling
-    three independent streams (``numpy.random.SeedSequence``). The
-    validation rows of the sweep are not used for early stopping, so they
-    stay an independent yardstick for choosing a setting.
-
-    Both recipes train through one implementation, so with the defaults
-    and one hidden layer it reproduces
-    ``fit_tabular_regression(X, y, hidden_units=..., seed=..., max_epochs=...)``
-    bit for bit (checked in ``tests/test_sweep.py``).
-    """
-
-    hidden: tuple[int, ...] = (RECIPE_HIDDEN_UNITS,)
-    lr: float = RECIPE_LR
-    decoupled_decay: float = 0.0
-    l2: float = 0.0
-    batch_size: int = RECIPE_BATCH_SIZE
-    max_epochs: int = RECIPE_MAX_EPOCHS
-    patience: int = RECIPE_PATIENCE
-    seed: int = 0
-
-    def __post_init__(self) -> None:
-        hidden = self.hidden
-        if not isinstance(hidden, (list, tuple)) or len(hidden) == 0:
-            raise TypeError(f"hidden must be a non-empty list of layer widths, e.g. [32] or [16, 16], got {hidden!r}")
-        object.__setattr__(self, "hidden", tuple(positive_int(width, "each width in hidden") for width in hidden))
-        object.__setattr__(self, "lr", real_in_range(self.lr, "lr", low=0.0, low_open=True))
-        object.__setattr__(self, "decoupled_decay", real_in_range(self.decoupled_decay, "decoupled_decay", low=0.0))
-        object.__setattr__(self, "l2", real_in_range(self.l2, "l2", low=0.0))
-        for name in ("batch_size", "max_epochs", "patience"):
-            object.__setattr__(self, name, positive_int(getattr(self, name), name))
-        if seed_value(self.seed) is None:
-            raise TypeError("seed must be an integer >= 0, got None")
-
-    def __call__(self, setting: Mapping[str, Any], data: TrainingData) -> tuple[Network, TrainingResult]:
-        """Train the network of ``setting`` on ``data.X``, ``data.y``; return ``(network, result)``."""
-        if not isinstance(setting, Mapping):
-            raise TypeError(f"setting must be a dict, got {type(setting).__name__}")
-        allowed = [f.name for f in fields(self)]
-        unknown = sorted(str(key) for key in setting if key not in allowed)
-        if unknown:
-            raise ValueError(f"unknown setting key(s) {unknown}; TabularRegression takes {allowed}")
-        return replace(self, **setting).fit(data.X, data.y)
-
-    def fit(self, X: Any, y: Any) -> tuple[Network, TrainingResult]:
-        """Build and train one network on ``X`` ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``, ``n >= 2``."""
-        return _fit_tabular(
-            X, y, hidden=self.hidden, lr=self.lr, decoupled_decay=self.decoupled_decay, l2=self.l2,
-            batch_size=self.batch_size, max_epochs=self.max_epochs, patience=self.patience, seed=int(self.seed),
-            progress=False,
-        )
 
 
 # ---------------------------------------------------------------- one task (runs in a worker)

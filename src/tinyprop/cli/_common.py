@@ -14,7 +14,7 @@ import numpy as np
 
 from ..archive import read_archive
 from ..csvdata import CsvError, CsvTable, read_csv
-from ..io import ModelFile, load_model_file
+from ..modelfile import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
 from ..registry import activation_class
 from .._progress import is_terminal

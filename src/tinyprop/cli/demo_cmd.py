@@ -3,7 +3,7 @@
 Data: :func:`tinyprop.datasets.battery_pack` (``n = 2000``, seed 0), the state
 of charge of a 4-series lithium-ion pack estimated from terminal voltage,
 current and cell temperature, **generated from a documented formula, not
-measured**. The fitting recipe is ``tinyprop train``'s (:mod:`._fit`) with the
+measured**. The fitting recipe is ``tinyprop train``'s (:mod:`tinyprop.recipes`) with the
 settings in :data:`DEMO_SETTINGS`.
 """
 
@@ -22,11 +22,12 @@ import numpy as np
 from ..check import check_gradient
 from ..datasets.battery import BATTERY_COLUMNS, BATTERY_TARGET, battery_pack, write_battery_csv
 from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from ..io import save
+from ..modelfile import save
 from ..losses import MeanSquaredError
 from ..network import Network
 from ._common import SAFETY, CommandError, EpochProgress, output_folder, write_json, write_plots
-from ._fit import Dataset, FitSettings, architecture, build_network, evaluate_all, fit, model_metadata, report, split_rows
+from ..recipes import Dataset, FitSettings, build_network, evaluate_all, split_rows
+from ._fit import architecture, fit_with_progress, model_metadata, report
 
 HELP = "the whole job on a synthetic battery state-of-charge scenario: check, train, test, save, export"
 
@@ -77,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
     timings["check"] = time.perf_counter() - clock
 
     _step(4, "training", DEMO_SETTINGS.describe_method() + ("" if args.quiet else " (progress on stderr)"), flush=True)
-    outcome = fit(net, data, split, DEMO_SETTINGS, None if args.quiet else EpochProgress(sys.stderr))
+    outcome = fit_with_progress(net, data, split, DEMO_SETTINGS, None if args.quiet else EpochProgress(sys.stderr))
     metrics = evaluate_all(net, data, split)
     test = metrics["test"]["targets"][BATTERY_TARGET]
     print(f"             {outcome.summary['message']} in {outcome.seconds:.1f} s")

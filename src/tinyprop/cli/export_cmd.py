@@ -18,7 +18,7 @@ import numpy as np
 
 from ..export import export_c, export_c_fixed_point, export_python
 from ..export._text import check_name
-from ..io import ModelFile
+from ..modelfile import ModelFile
 from . import _args
 from ._common import (
     USAGE,

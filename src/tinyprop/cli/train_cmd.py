@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from ..csvdata import CsvTable
-from ..io import save
+from ..modelfile import save
 from . import _args
 from ._common import (
     USAGE,
@@ -26,9 +26,8 @@ from ._common import (
     write_json,
     write_plots,
 )
-from ._fit import (
+from ..recipes import (
     ACTIVATIONS,
-    architecture,
     METHODS,
     OPTIMIZERS,
     SCHEDULES,
@@ -36,12 +35,9 @@ from ._fit import (
     FitSettings,
     build_network,
     evaluate_all,
-    fit,
     least_squares_uncertainty,
-    model_metadata,
-    report,
-    split_rows,
 )
+from ._fit import architecture, fit_with_progress, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 
@@ -114,7 +110,7 @@ def run(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     data = _dataset(args)
     read_seconds = time.perf_counter() - started
-    split = split_rows(data.X.shape[0], settings)
+    split = split_for_command(data.X.shape[0], settings)
     net = build_network(data, split, settings)
     print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
           f"targets {', '.join(data.target_names)}")
@@ -124,7 +120,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
-        outcome = fit(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
+        outcome = fit_with_progress(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")

@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 
 from .activations import Activation
+from ._version import __version__
 from .archive import ArchiveError, array_record, check_json, read_archive, write_archive
 from .layers import Affine, Standardize, Unstandardize
 from .network import Network
@@ -110,7 +111,7 @@ def fingerprint(net: Network) -> str:
     same settings and bit-identical parameters and scalings.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import fingerprint
+    >>> from tinyprop.modelfile import fingerprint
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
     >>> len(fingerprint(net)), fingerprint(net) == fingerprint(net.copy())
     (64, True)
@@ -270,7 +271,7 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     :class:`ModelFileError`; neither ``net`` nor ``metadata`` is modified.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import model_from_parts, model_parts
+    >>> from tinyprop.modelfile import model_from_parts, model_parts
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
     >>> arrays, manifest = model_parts(net, {"units": "V"})
     >>> list(arrays), manifest["fingerprint"] == tp.fingerprint(net)
@@ -292,7 +293,7 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     manifest = {
         "format": MODEL_FORMAT,
         "format_version": MODEL_FORMAT_VERSION,
-        "tinyprop_version": _tinyprop_version(),
+        "tinyprop_version": __version__,
         "dtype": net.dtype.name,
         "n_params": net.n_params,
         "fingerprint": _fingerprint_of(net.dtype.name, layers, records),
@@ -348,12 +349,6 @@ def _require_finite(name: str, array: np.ndarray) -> None:
     if bad.any():
         index = tuple(int(i) for i in np.argwhere(bad)[0])
         raise ModelFileError(f"array {name} holds a non-finite value ({array[index]}) at index {index}")
-
-
-def _tinyprop_version() -> str:
-    from . import __version__  # imported here: the package imports this module while it initialises
-
-    return __version__
 
 
 # ---------------------------------------------------------------- loading
@@ -547,7 +542,7 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     activation, say) is shown with ``fingerprint: none (<reason>)``.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.io import describe
+    >>> from tinyprop.modelfile import describe
     >>> print(describe(tp.Network([tp.Affine(2, 1)], seed=0)).splitlines()[0])
     network: 2 inputs -> 1 output, 3 parameters, float64
     """

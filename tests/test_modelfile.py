@@ -17,7 +17,7 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.archive import ArchiveError, array_record, read_archive, write_archive
-from tinyprop.io import (
+from tinyprop.modelfile import (
     ModelFileError,
     describe,
     fingerprint,
@@ -171,19 +171,19 @@ class ScaledTanh(tp.Activation):
         return {"amplitude": self.amplitude}
 
 
-register_activation(Cube, "test_io.Cube")
-register_activation(ScaledTanh, "test_io.ScaledTanh")
+register_activation(Cube, "test_modelfile.Cube")
+register_activation(ScaledTanh, "test_modelfile.ScaledTanh")
 
 
 def test_builtins_are_registered_under_their_class_names():
     for cls in (tp.Sigmoid, tp.Tanh, tp.ReLU, tp.LeakyReLU, tp.Softplus, tp.Identity):
         assert activation_class(cls.__name__) is cls
-    assert registered_activations()["test_io.Cube"] is Cube
+    assert registered_activations()["test_modelfile.Cube"] is Cube
 
 
 def test_registering_the_same_pair_again_is_harmless():
-    assert register_activation(Cube, "test_io.Cube") is Cube
-    assert register_activation(ScaledTanh, "test_io.ScaledTanh") is ScaledTanh
+    assert register_activation(Cube, "test_modelfile.Cube") is Cube
+    assert register_activation(ScaledTanh, "test_modelfile.ScaledTanh") is ScaledTanh
 
 
 def test_a_name_cannot_be_bound_to_a_second_class():
@@ -196,7 +196,7 @@ def test_a_name_cannot_be_bound_to_a_second_class():
 
 
 def test_a_class_cannot_take_a_second_name():
-    with pytest.raises(ValueError, match=r"already registered as 'test_io\.Cube'; a class has one name"):
+    with pytest.raises(ValueError, match=r"already registered as 'test_modelfile\.Cube'; a class has one name"):
         register_activation(Cube, "Cubic")
     assert activation_class("Cubic") is None
 
@@ -436,7 +436,7 @@ class Forgetful(tp.Activation):
         return np.full_like(z, self.gain)
 
 
-register_activation(Forgetful, "test_io.Forgetful")
+register_activation(Forgetful, "test_modelfile.Forgetful")
 
 
 class WiderAffine(tp.Affine):

@@ -22,7 +22,7 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
-from test_io import (
+from test_modelfile import (
     Cube,
     ScaledTanh,
     assert_archive_round_trip,
@@ -32,7 +32,7 @@ from test_io import (
     write_members,
 )
 from tinyprop.archive import ARRAY_DTYPES, ArchiveError, read_archive
-from tinyprop.io import ModelFileError, _fingerprint_of, fingerprint, load, load_model_file, save
+from tinyprop.modelfile import ModelFileError, _fingerprint_of, fingerprint, load, load_model_file, save
 
 GUARD = dict(deadline=5000, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 FAST = settings(max_examples=250, **GUARD)
