@@ -65,7 +65,7 @@ CASES = [
     ("too-few-rows-for-lm", ["train", "good.csv", "--targets", "y", "--method", "levenberg-marquardt",
                              "--test-fraction", "0", "--validation-fraction", "0"], 1,
      ["fitting failed", "Levenberg-Marquardt needs at least as many residuals as parameters"]),
-    ("diverging-learning-rate", ["train", "good.csv", "--targets", "y", "--optimizer", "sgd", "--learning-rate",
+    ("diverging-learning-rate", ["train", "good.csv", "--targets", "y", "--method", "mini-batch", "--optimizer", "sgd", "--learning-rate",
                                  "1e200", "--schedule", "constant", "--test-fraction", "0",
                                  "--validation-fraction", "0"], 1, ["fitting failed", "diverged"]),
     ("missing-model", ["inspect", "none.npz"], 1, ["model file 'none.npz' does not exist"]),

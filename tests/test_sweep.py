@@ -23,7 +23,7 @@ import pytest
 import tinyprop as tp
 from tinyprop.recipes import TabularRegression
 from tinyprop.sweep import SweepRecord, TrainingData, setting_key, sweep
-from tinyprop.recipes import fit_tabular_regression
+from tinyprop.recipes import RECIPE_HIDDEN_UNITS, fit_tabular_regression
 
 QUICK = TabularRegression(max_epochs=25, patience=10)
 
@@ -77,10 +77,17 @@ def assert_same_run(run, reference) -> None:
     assert (result.epochs_run, result.best_epoch) == (reference_result.epochs_run, reference_result.best_epoch)
 
 
+def adam_branch(*args, **kwargs):
+    """The adam-early-stopping branch of the default recipe, as ``(net, TrainingResult)``."""
+    net, result = fit_tabular_regression(*args, method="adam-early-stopping", **kwargs)
+    assert result.method == "adam-early-stopping" and result.reason == "requested"
+    return net, result.training
+
+
 def test_recipe_defaults_reproduce_fit_tabular_regression():
-    # the ready recipe is tinyprop's documented default recipe, not a second one
+    # the ready recipe is the documented default recipe's mini-batch branch, not a second one
     assert_same_run(TabularRegression(max_epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y)),
-                    fit_tabular_regression(X, Y, hidden_units=7, seed=3, max_epochs=40))
+                    adam_branch(X, Y, hidden=7, seed=3, max_epochs=40))
 
 
 def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
@@ -88,8 +95,8 @@ def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
     # patience: the run stops early, so a different patience would change it
     defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
     recipe = TabularRegression()
-    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"], defaults["seed"])
-    run, reference = recipe({}, TrainingData(X, Y)), fit_tabular_regression(X, Y)
+    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((RECIPE_HIDDEN_UNITS,), defaults["max_epochs"], defaults["seed"])
+    run, reference = recipe({}, TrainingData(X, Y)), adam_branch(X, Y)
     assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.max_epochs
     assert_same_run(run, reference)
     # the comparison can fail: another patience gives another run
