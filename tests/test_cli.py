@@ -137,7 +137,7 @@ def test_train_defaults_are_the_library_recipe_bit_for_bit(csv_file, tmp_path):
     assert result.returncode == 0, result.stderr
     tr, _, _ = library_split(len(X), 0, 0.15, 0.15)
     net, recipe = tp.fit_tabular_regression(X[tr], Y[tr], seed=0)
-    assert recipe.method == "evidence-lm" and len(recipe.seeds) == 3
+    assert recipe.method == "evidence-lm" and len(recipe.seeds) == 1
     assert_same_network(tp.load(model), net)
     report = json.loads((tmp_path / "auto.report.json").read_text(encoding="utf-8"))
     assert report["fit"]["method"] == "auto" and report["fit"]["recipe_method"] == "evidence-lm"

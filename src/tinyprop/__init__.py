@@ -31,7 +31,7 @@ from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedu
 from .solve import SolveResult, solve
 from .sensitivity import SensitivityTable, input_sensitivity
 from .sweep import SweepRecord, SweepResult, TrainingData, sweep
-from .recipes import TabularRegression, fit_tabular_regression
+from .recipes import RecipeResult, TabularRegression, fit_tabular_regression
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
@@ -76,6 +76,7 @@ __all__ = [
     "Optimizer",
     "OptimizerState",
     "ParameterUncertainty",
+    "RecipeResult",
     "PosteriorUncertainty",
     "PredictionIntervals",
     "RMSProp",

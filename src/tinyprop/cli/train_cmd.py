@@ -80,8 +80,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                               "or one of these two forced; or mini-batch gradient descent with the options below, "
                               "or plain least squares by Levenberg-Marquardt or L-BFGS (small networks)")
     fitting.add_argument("--restarts", type=_args.positive_int, metavar="N",
-                         help="evidence-lm: initialisations tried, the largest log evidence kept (default: 3 for "
-                              "small problems, else 1)")
+                         help="evidence-lm: initialisations tried, the largest log evidence kept (default 1)")
     fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
