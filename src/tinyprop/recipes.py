@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
@@ -58,7 +58,7 @@ from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
 from .solve import SolveResult, solve
 from .sweep import TrainingData
-from .train import EpochInfo, History, TrainingResult, train
+from .train import History, TrainingResult, train
 from .uncertainty import uncertainty_report
 
 __all__ = [
@@ -197,8 +197,7 @@ def fit_tabular_regression(
     for a given ``seed`` (``numpy.random.SeedSequence`` streams for the
     hold-out rows, the initial weights of each restart and the shuffling).
     """
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
+    seed = seed_value(seed, required=True)
     if method not in RECIPE_METHODS:
         raise ValueError(f"method must be one of {RECIPE_METHODS}, got {method!r}")
     X64, targets = _tabular_data(X, y)
@@ -314,8 +313,7 @@ class TabularRegression:
         object.__setattr__(self, "l2", real_in_range(self.l2, "l2", low=0.0))
         for name in ("batch_size", "max_epochs", "patience"):
             object.__setattr__(self, name, positive_int(getattr(self, name), name))
-        if seed_value(self.seed) is None:
-            raise TypeError("seed must be an integer >= 0, got None")
+        seed_value(self.seed, required=True)
 
     def __call__(self, setting: Mapping[str, Any], data: TrainingData) -> tuple[Network, TrainingResult]:
         """Train the network of ``setting`` on ``data.X``, ``data.y``; return ``(network, result)``."""
@@ -500,13 +498,11 @@ def fit(
     split: Split,
     settings: FitSettings,
     *,
-    callback: Callable[[EpochInfo], bool | None] | None = None,
     progress: bool = False,
 ) -> FitOutcome:
     """Step 3 of the recipe: changes ``net``'s weights in place.
 
-    ``callback`` goes to :func:`~tinyprop.train.train` (mini-batch), ``progress``
-    to :func:`~tinyprop.solve.solve` (least squares). For the default recipe's
+    ``progress`` shows the progress line on stderr. For the default recipe's
     methods (``auto``, ``evidence-lm``, ``adam-early-stopping``) ``net`` is
     ``None``: ``fit_tabular_regression(X_train, Y_train, hidden=settings.hidden,
     seed=settings.seed, method=settings.method, restarts=settings.restarts)``
@@ -531,7 +527,7 @@ def fit(
         result = train(
             net, X_train, Y_train, loss=MeanSquaredError(), optimizer=optimizer, epochs=settings.epochs,
             batch_size=settings.batch_size, validation=validation, patience=settings.patience,
-            seed=settings.seed, callback=callback,
+            seed=settings.seed, progress=progress,
         )
         summary = {
             "stop_reason": result.stop_reason,

@@ -17,7 +17,6 @@ from . import _args
 from ._common import (
     USAGE,
     CommandError,
-    EpochProgress,
     describe_os_error,
     numeric_columns,
     output_folder,
@@ -36,9 +35,10 @@ from ..recipes import (
     FitSettings,
     build_network,
     evaluate_all,
+    fit,
     least_squares_uncertainty,
 )
-from ._fit import architecture, fit_with_progress, model_metadata, report, split_for_command
+from ._fit import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 
@@ -129,7 +129,7 @@ def run(args: argparse.Namespace) -> int:
         print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
-        outcome = fit_with_progress(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
+        outcome = fit(net, data, split, settings, progress=not args.quiet)
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
     net = outcome.network
