@@ -45,6 +45,28 @@ class PredictionIntervals:
     lower: np.ndarray
     upper: np.ndarray
 
+    @classmethod
+    def from_variances(
+        cls, level: float, quantile: float, degrees_of_freedom: int | None, prediction: np.ndarray,
+        mean_variance: np.ndarray, noise_variance: float | np.ndarray,
+    ) -> "PredictionIntervals":
+        """Intervals ``prediction +- quantile * sqrt(variance)`` for the mean (``mean_variance``, ``g^T C g``)
+        and for a new observation (``noise_variance + mean_variance``; a scalar, or one per output)."""
+        mean_se = np.sqrt(mean_variance)
+        prediction_se = np.sqrt(noise_variance + mean_variance)
+        return cls(
+            level=level,
+            t_quantile=quantile,
+            degrees_of_freedom=degrees_of_freedom,
+            prediction=prediction,
+            mean_standard_error=mean_se,
+            prediction_standard_error=prediction_se,
+            mean_lower=prediction - quantile * mean_se,
+            mean_upper=prediction + quantile * mean_se,
+            lower=prediction - quantile * prediction_se,
+            upper=prediction + quantile * prediction_se,
+        )
+
     @property
     def half_width(self) -> np.ndarray:
         """Half-width of the prediction interval, ``t * sqrt(s^2 + g^T C g)``."""

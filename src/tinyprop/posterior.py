@@ -85,21 +85,8 @@ class PosteriorUncertainty:
         G = self.network.jacobian(X64)  # (m * n_out, p), row i * n_out + k
         B = linalg.solve_triangular(self._factor, G.T, lower=True)
         mean_variance = np.einsum("ij,ij->j", B, B).reshape(out.shape)
-        mean_se = np.sqrt(mean_variance)
-        prediction_se = np.sqrt(self.noise_sd**2 + mean_variance)
         z = float(stats.norm.ppf(0.5 + level / 2))
-        return PredictionIntervals(
-            level=level,
-            t_quantile=z,
-            degrees_of_freedom=None,
-            prediction=out,
-            mean_standard_error=mean_se,
-            prediction_standard_error=prediction_se,
-            mean_lower=out - z * mean_se,
-            mean_upper=out + z * mean_se,
-            lower=out - z * prediction_se,
-            upper=out + z * prediction_se,
-        )
+        return PredictionIntervals.from_variances(level, z, None, out, mean_variance, self.noise_sd**2)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able summary: the hyperparameters and, per parameter, its value and posterior standard deviation."""

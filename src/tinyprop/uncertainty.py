@@ -197,20 +197,9 @@ class ParameterUncertainty:
         G = self.network.jacobian(X64)
         B = (G / self.column_norms) @ self.right_singular_vectors / self.singular_values
         mean_variance = self.residual_variance * np.einsum("ij,ij->i", B, B).reshape(out.shape)
-        mean_se = np.sqrt(mean_variance)
-        prediction_se = np.sqrt(self.residual_variance + mean_variance)
         t = float(stats.t.ppf(0.5 + level / 2, self.degrees_of_freedom))
-        return PredictionIntervals(
-            level=level,
-            t_quantile=t,
-            degrees_of_freedom=self.degrees_of_freedom,
-            prediction=out,
-            mean_standard_error=mean_se,
-            prediction_standard_error=prediction_se,
-            mean_lower=out - t * mean_se,
-            mean_upper=out + t * mean_se,
-            lower=out - t * prediction_se,
-            upper=out + t * prediction_se,
+        return PredictionIntervals.from_variances(
+            level, t, self.degrees_of_freedom, out, mean_variance, self.residual_variance
         )
 
     def to_dict(self) -> dict[str, Any]:
