@@ -17,12 +17,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
-from tinyprop import evidence
-from tinyprop.normal_equations import accumulate, rows_per_block
-from tinyprop.solve import solve
 from net_strategies import networks
 from test_solve_nist import PROBLEMS, build, lre, parameters
+from tinyprop import evidence
 from tinyprop.datasets import load_nist
+from tinyprop.normal_equations import accumulate, rows_per_block
+from tinyprop.solve import solve
 
 SMOOTH = (tp.Tanh(), tp.Sigmoid(), tp.Softplus(), tp.Identity())
 

@@ -69,7 +69,8 @@ def library_split(n: int, seed: int, validation: float, test: float) -> tuple[np
     return order[n_test + n_val:], order[n_test:n_test + n_val], order[:n_test]
 
 
-def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation, seed: int) -> tp.Network:
+def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation,
+                    seed: int) -> tp.Network:
     mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], hidden=activation, seed=seed)
     return tp.Network([tp.Standardize.from_data(X), *mlp.layers, tp.Unstandardize.from_data(Y)], init=None)
 
@@ -99,7 +100,8 @@ def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimiz
     model = tmp_path / "cli.npz"
     result = run_cli(
         "train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--hidden", "7,5",
-        "--method", "mini-batch", "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01", "--seed", str(seed),
+        "--method", "mini-batch", "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01",
+        "--seed", str(seed),
         "--validation-fraction", "0.2", "--test-fraction", "0.1", "--out", str(model), "--quiet", *options,
     )
     assert result.returncode == 0, result.stderr
@@ -164,7 +166,8 @@ def test_train_by_levenberg_marquardt_reproduces_solve_and_reports_uncertainty(c
 
 def test_train_progress_has_no_terminal_codes_when_stderr_is_a_pipe(csv_file, tmp_path):
     path, _, _ = csv_file
-    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--method", "mini-batch", "--epochs", "20",
+    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--method", "mini-batch",
+                     "--epochs", "20",
                      "--hidden", "3", "--out", str(tmp_path / "m.npz"))
     assert result.returncode == 0, result.stderr
     assert "epoch 1/20" in result.stderr and "epoch 20/20" in result.stderr

@@ -11,7 +11,6 @@ import time
 import numpy as np
 import pytest
 
-import tinyprop as tp
 from tinyprop.recipes import choose_method, fit_tabular_regression
 
 

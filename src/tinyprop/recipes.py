@@ -49,10 +49,10 @@ from typing import Any
 import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
-from .activations import Activation, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .build import build_mlp
+from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
+from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
@@ -372,12 +372,9 @@ def _fit_tabular(
 
 
 # ---------------------------------------------------------------- the command line's recipe
+# the hidden-layer activations on offer: every built-in but Identity (a linear hidden layer adds nothing)
 ACTIVATIONS: dict[str, type[Activation]] = {
-    "tanh": Tanh,
-    "sigmoid": Sigmoid,
-    "relu": ReLU,
-    "leaky-relu": LeakyReLU,
-    "softplus": Softplus,
+    built_in_name(cls).replace("_", "-"): cls for cls in BUILT_IN_ACTIVATIONS if cls is not Identity
 }
 OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default learning rate
     "adam": (Adam, 1e-3),
@@ -427,7 +424,8 @@ class FitSettings:
                     f"early stopping), method {self.method}")
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
-        text = f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, {self.epochs} epochs"
+        text = (f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, "
+                f"{self.epochs} epochs")
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
 
@@ -451,7 +449,7 @@ class Split:
     test: np.ndarray
 
     def sizes(self) -> dict[str, int]:
-        return {"training": int(self.training.size), "validation": int(self.validation.size), "test": int(self.test.size)}
+        return {part: int(getattr(self, part).size) for part in ("training", "validation", "test")}
 
 
 @dataclass(frozen=True)

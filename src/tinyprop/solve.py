@@ -10,7 +10,8 @@ the residual vector ``r`` ordered like the rows of ``net.jacobian``:
 
 - ``method="levenberg-marquardt"``: ``scipy.optimize.least_squares`` with
   ``method="lm"`` (MINPACK's ``lmder``; Moré (1978), "The Levenberg-Marquardt
-  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer, pp. 105-116, pages from memory),
+  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer,
+  pp. 105-116, pages from memory),
   given the residuals and the exact Jacobian ``dr/dtheta = net.jacobian(X)``
   from backpropagation. Each iteration solves
   ``(J^T J + mu D^T D) delta = -J^T r`` with a trust-region choice of ``mu``
@@ -70,9 +71,9 @@ import numpy as np
 
 from ._progress import ProgressLine
 from ._validate import as_samples, as_targets, positive_int, real_in_range
-from .losses import SquaredError
 from .blocked_lm import minimise
 from .evidence import log_evidence
+from .losses import SquaredError
 from .network import Network
 
 __all__ = ["solve", "SolveResult", "METHODS"]
@@ -257,7 +258,7 @@ def solve(
 def _regularization(value: Any) -> str | float | None:
     if value is None or value == "evidence":
         return value
-    if isinstance(value, str) or isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+    if isinstance(value, (str, bool)) or not isinstance(value, (int, float, np.floating, np.integer)):
         raise ValueError(f"regularization must be None, 'evidence' or a penalty > 0, got {value!r}")
     return real_in_range(value, "regularization (the fixed penalty alpha)", low=0.0, low_open=True)
 

@@ -79,8 +79,8 @@ import numpy as np
 from ._json import finite_or_none
 from ._validate import as_samples, as_targets, real_in_range, require_finite
 from .activations import Identity, LeakyReLU, ReLU
-from .layers import Affine
 from .intervals import PredictionIntervals
+from .layers import Affine
 from .network import Network
 from .sensitivity import input_sensitivity
 from .solve import SolveResult

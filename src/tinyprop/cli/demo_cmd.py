@@ -22,12 +22,12 @@ import numpy as np
 from ..check import check_gradient
 from ..datasets.battery import BATTERY_COLUMNS, BATTERY_TARGET, battery_pack, write_battery_csv
 from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from ..modelfile import save
 from ..losses import MeanSquaredError
+from ..modelfile import save
 from ..network import Network
-from ._common import SAFETY, CommandError, output_folder, write_json, write_plots
 from ..recipes import Dataset, FitOutcome, FitSettings, evaluate_all, fit, split_rows
-from ._fit import architecture, model_metadata, report
+from ._common import SAFETY, CommandError, output_folder, write_json, write_plots
+from ._fit_report import architecture, model_metadata, report
 
 HELP = "the whole job on a synthetic battery state-of-charge scenario: check, train, test, save, export"
 
@@ -151,7 +151,9 @@ def _save_and_export(out: Path, net: Network, data: Dataset, outcome: FitOutcome
     }
 
 
-def _export_fixed_point(out: Path, net: Network, data: Dataset, training: np.ndarray, test: np.ndarray) -> FixedPointReport:
+def _export_fixed_point(
+    out: Path, net: Network, data: Dataset, training: np.ndarray, test: np.ndarray
+) -> FixedPointReport:
     """Integer-only C calibrated on the training rows (the test rows stay unseen, as on a device)."""
     metadata = {"inputs": [{"name": name, "unit": UNITS[name]} for name in BATTERY_COLUMNS],
                 "outputs": [{"name": BATTERY_TARGET, "unit": UNITS[BATTERY_TARGET]}]}
