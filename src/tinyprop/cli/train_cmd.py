@@ -175,7 +175,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {report_path}")
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
-        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+        written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
                                     list(data.target_names), Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
