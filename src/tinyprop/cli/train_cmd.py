@@ -45,7 +45,7 @@ HELP = "fit a network to columns of a CSV file; write the model file and a JSON 
 # (option, the option it depends on, the values of that option it applies to), checked in this order
 _APPLIES_ONLY_TO = (
     *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
+      for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
     ("max_evaluations", "method", ("levenberg-marquardt", "lbfgs")),
     ("restarts", "method", ("auto", "evidence-lm")),
     ("momentum", "optimizer", ("sgd",)),
@@ -90,6 +90,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument(
         "--learning-rate",
+        dest="lr",
         type=_args.positive_float,
         metavar="LR",
         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
@@ -228,8 +229,8 @@ def _applicability() -> str:
 
 
 def _flag(option: str) -> str:
-    """``batch_size`` -> ``--batch-size``."""
-    return "--" + option.replace("_", "-")
+    """``batch_size`` -> ``--batch-size``; ``lr`` (the library's name) -> ``--learning-rate``."""
+    return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
