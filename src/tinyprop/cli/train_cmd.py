@@ -236,10 +236,10 @@ def _flag(option: str) -> str:
 def _dataset(args: argparse.Namespace) -> Dataset:
     table = read_table(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
-    X, Y = numeric_columns(table, inputs, targets)
+    X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
