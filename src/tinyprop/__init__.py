@@ -49,7 +49,8 @@ from .modelfile import (
 )
 from .network import Network
 from .optim import SGD, Adam, Optimizer, RMSProp
-from .recipes import TabularRegression, fit_tabular_regression
+from .posterior import PosteriorUncertainty
+from .recipes import RecipeResult, TabularRegression, fit_tabular_regression
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
@@ -81,7 +82,7 @@ __all__ = [
     # least-squares fitting
     "solve", "SolveResult",
     # recipes
-    "fit_tabular_regression", "TabularRegression",
+    "fit_tabular_regression", "TabularRegression", "RecipeResult",
     # verification
     "check_gradient", "GradientReport", "check_activation", "ActivationReport",
     # model files
@@ -93,7 +94,8 @@ __all__ = [
     "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
     "UndeclaredActivation",
     # how far to trust a fit
-    "parameter_uncertainty", "ParameterUncertainty", "PredictionIntervals", "RankDeficientError", "parameter_labels",
+    "parameter_uncertainty", "ParameterUncertainty", "PosteriorUncertainty", "PredictionIntervals",
+    "RankDeficientError", "parameter_labels",
     "input_sensitivity", "SensitivityTable", "uncertainty_report",
     # many networks
     "sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "Ensemble",
