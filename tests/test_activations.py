@@ -106,6 +106,7 @@ _EXPORT_DECLARATIONS = ("_c_statements", "_python_statements", "_rounding")
 def _missing_declarations(activation: tp.Activation) -> list[str]:
     """What a built-in must declare on its class (DEVELOPERS.md, "Adding an activation") and does not."""
     from tinyprop.activations import declaration
+    from tinyprop.init import SCHEMES
 
     missing = [] if activation.declared_shape() is not None else ["declared_shape"]
     arguments = {"_c_statements": [("float", repr), ("double", repr)], "_python_statements": [()],
@@ -116,6 +117,8 @@ def _missing_declarations(activation: tp.Activation) -> list[str]:
             missing.append(method)
     if declaration(activation, "_fixed_point_form") is None:  # a decision by the class, even "not supported"
         missing.append("_fixed_point_form")
+    if activation.suggested_init not in SCHEMES:  # build_mlp(init="auto")
+        missing.append("suggested_init")
     z = np.linspace(-3.0, 3.0, 13)  # the uncertainty hint lists the positively homogeneous ones
     if activation.positively_homogeneous != np.allclose(activation.value(2.5 * z), 2.5 * activation.value(z)):
         missing.append("positively_homogeneous")
@@ -180,6 +183,17 @@ def test_declaration_check_names_what_a_class_lacks():
     """The check above can fail: a class with value and derivative alone lacks every declaration."""
     assert _missing_declarations(_Softsign()) == ["declared_shape", *_EXPORT_DECLARATIONS, "_fixed_point_form"]
     assert "_c_statements" in _missing_declarations(_ScaledTanh())
+
+
+@pytest.mark.parametrize(
+    ("activation", "scheme"),
+    [(tp.ReLU(), "he"), (tp.LeakyReLU(0.1), "he"), (tp.Tanh(), "glorot"), (tp.Softplus(), "glorot"),
+     (_Softsign(), "glorot")],
+)
+def test_build_mlp_auto_init_is_the_one_the_activation_suggests(activation, scheme):
+    auto = tp.build_mlp([3, 5, 1], activation=activation, seed=0)
+    named = tp.build_mlp([3, 5, 1], activation=activation, init=scheme, seed=0)
+    np.testing.assert_array_equal(auto.get_vector(), named.get_vector())
 
 
 @pytest.mark.parametrize("activation", [_Softsign(), _ScaledTanh()], ids=["undeclared", "subclass"])

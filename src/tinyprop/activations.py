@@ -46,6 +46,7 @@ __all__ = [
     "built_in_name",
     "IntegerTable",
     "declaration",
+    "declared",
 ]
 
 
@@ -133,6 +134,9 @@ class Activation(Configured):
 
     positively_homogeneous: bool = False
     """True when ``f(c z) = c f(z)`` for every ``c > 0`` (read by the uncertainty report's hint)."""
+
+    suggested_init: str = "glorot"
+    """The weight initialisation ``build_mlp(init="auto")`` picks for hidden layers of this activation."""
 
     def declared_shape(self) -> ActivationShape | None:
         """Pieces, curvature and rounding of ``f`` for :func:`tinyprop.output_bounds`; ``None`` if undeclared."""
@@ -286,6 +290,7 @@ class ReLU(Activation):
 
     kinks = (0.0,)
     positively_homogeneous = True
+    suggested_init = "he"  # He et al. 2015, derived for rectifiers
 
     def declared_shape(self) -> ActivationShape:
         """Linear on each side of the kink; exact."""
@@ -332,6 +337,7 @@ class LeakyReLU(Activation):
 
     kinks = (0.0,)
     positively_homogeneous = True
+    suggested_init = "he"  # He et al. 2015, derived for rectifiers
 
     def declared_shape(self) -> ActivationShape:
         """Linear on each side of the kink; ``slope`` rounded to the dtype, one multiplication."""
@@ -508,6 +514,13 @@ def declaration(activation: Activation, method: str) -> Callable[..., Any] | Non
     if defined_in is Activation or not all(issubclass(defined_in, owner(m)) for m in ("value", "derivative")):
         return None
     return getattr(activation, method)
+
+
+def declared(activation: Activation, method: str, *args: Any) -> Any:
+    """What ``activation`` declares through ``method`` called with ``args``; ``None`` when undeclared
+    (see :func:`declaration`)."""
+    found = declaration(activation, method)
+    return None if found is None else found(*args)
 
 
 def _logistic(u: float) -> float:

@@ -62,7 +62,7 @@ import math
 import re
 from typing import Callable
 
-from ..activations import BUILT_IN_ACTIVATIONS, Activation, Identity, built_in_name, declaration
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, Identity, built_in_name, declared
 
 __all__ = [
     "C_METHOD",
@@ -89,21 +89,15 @@ def activation_kind(act: Activation) -> str | None:
     return _KINDS.get(type(act), "custom")
 
 
-def _declared(act: Activation, method: str, *args: object) -> object | None:
-    """What ``act`` declares through ``method`` (see :func:`tinyprop.activations.declaration`), else ``None``."""
-    declared = declaration(act, method)
-    return None if declared is None else declared(*args)
-
-
 def c_body(act: Activation, ctype: str, literal: Callable[[float], str]) -> str:
     """The statements of ``static ctype f(ctype z)`` computing the activation.
 
     ``literal`` formats a number as a C constant of ``ctype``. Where
     :func:`c_input_limit` gives a limit, the function expects ``z`` clamped to it.
     """
-    statements = _declared(act, "_c_statements", ctype, literal)
+    statements = declared(act, "_c_statements", ctype, literal)
     if statements is not None:
-        return statements  # type: ignore[return-value]
+        return statements
     expression = check_c_expression(_custom_expression(act, C_METHOD, "C", ctype), type(act).__name__)
     return f"(void)z;\nreturn ({expression});"
 
@@ -116,14 +110,14 @@ def c_input_limit(act: Activation, ctype: str) -> float | None:
     its own in the generated code, so that compilers can vectorise both loops
     (``docs/export.md``).
     """
-    return _declared(act, "_c_input_limit", ctype)  # type: ignore[return-value]
+    return declared(act, "_c_input_limit", ctype)
 
 
 def python_body(act: Activation) -> str:
     """The statements of ``def f(z)`` computing the activation in Python floats."""
-    statements = _declared(act, "_python_statements")
+    statements = declared(act, "_python_statements")
     if statements is not None:
-        return statements  # type: ignore[return-value]
+        return statements
     expression = check_python_expression(_custom_expression(act, PYTHON_METHOD, "Python"), type(act).__name__)
     return f"return ({expression})"
 

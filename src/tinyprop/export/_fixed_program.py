@@ -57,7 +57,7 @@ from typing import Union
 
 import numpy as np
 
-from ..activations import BUILT_IN_ACTIVATIONS, Activation, declaration
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, declared
 from ._fixed_tables import OUT_BITS, Table, lookup, round_half_away, table_for
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep
 
@@ -244,8 +244,7 @@ _ELEMENTWISE = ("identity", "relu", "leaky_relu")
 
 def _form(activation: Activation) -> object:
     """The activation's declared fixed-point form (``_fixed_point_form``), ``None`` if it has none."""
-    form = declaration(activation, "_fixed_point_form")
-    return None if form is None else form()
+    return declared(activation, "_fixed_point_form")
 
 
 def _preserves_format(step) -> bool:

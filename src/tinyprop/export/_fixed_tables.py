@@ -52,7 +52,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..activations import BUILT_IN_ACTIVATIONS, Activation, IntegerTable, declaration
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, IntegerTable, declared
 
 __all__ = ["OUT_BITS", "Table", "TABLES", "table_for", "lookup", "c_function", "round_half_away"]
 
@@ -105,8 +105,7 @@ def _make(spec: IntegerTable) -> Table:
 
 def _declared_table(activation: Activation) -> IntegerTable | None:
     """The table ``activation`` declares as its fixed-point form (``_fixed_point_form``), else ``None``."""
-    form = declaration(activation, "_fixed_point_form")
-    spec = None if form is None else form()
+    spec = declared(activation, "_fixed_point_form")
     return spec if isinstance(spec, IntegerTable) else None
 
 

@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from .._validate import as_samples
-from ..activations import Activation, declaration
+from ..activations import Activation, declared
 from ..network import Network
 from ._plan import ActivationStep, AffineStep, ScalingStep, make_plan
 
@@ -113,8 +113,7 @@ def agreement_bound(net: Network, X: Any, *, dtype: Any = None, function_ulps: f
 def _activation_constants(step: ActivationStep, k: float) -> tuple[float, float]:
     """``(L, c)``: Lipschitz constant and relative error in units of ``u`` (see the module docstring)."""
     act: Activation = step.activation
-    rounding = declaration(act, "_rounding")
-    constants = None if rounding is None else rounding(k)
+    constants = declared(act, "_rounding", k)
     if constants is None:
         raise TypeError(
             f"agreement_bound knows the built-in activations only; layer {step.layer} is "
