@@ -170,7 +170,7 @@ class _Softsign(tp.Activation):
 
 
 class _ScaledTanh(tp.Tanh):
-    """``tanh(2 z)``: redefines value, so it must not inherit Tanh's forms (synthetic)."""
+    """``tanh(2 z)``: a subclass, which must not inherit Tanh's forms (synthetic)."""
 
     def value(self, z):
         return np.tanh(2.0 * z)

@@ -144,8 +144,7 @@ class Activation(Configured):
 
     # What the exporters need, declared by each built-in (see DEVELOPERS.md, "Adding an activation").
     # ``None`` means undeclared: export then asks for the custom-activation protocol or refuses.
-    # They are read through :func:`declaration`, so a subclass that redefines ``value`` does not
-    # inherit them.
+    # They are read through :func:`declaration`, so a subclass does not inherit them.
 
     def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str | None:
         """The statements of ``static ctype f(ctype z)``, the stable form operation for operation;
@@ -501,19 +500,11 @@ def works_in_place(activation: Activation) -> bool:
 def declaration(activation: Activation, method: str) -> Callable[..., Any] | None:
     """``activation``'s bound method ``method`` (an export declaration such as ``_c_statements``), or ``None``.
 
-    ``None`` when no class below :class:`Activation` defines it, or when the class that defines
-    it is above the one that defines ``value`` or ``derivative`` (a subclass that changes ``f``
-    must declare its own forms). The method itself may still return ``None``: undeclared.
+    Only the activation's own class counts: a subclass inherits no declaration, since it may
+    change ``f`` (a subclass of Tanh is not exported as tanh). The method itself may still
+    return ``None``: undeclared.
     """
-    mro = type(activation).__mro__
-
-    def owner(name: str) -> type:
-        return next(cls for cls in mro if name in cls.__dict__)
-
-    defined_in = owner(method)
-    if defined_in is Activation or not all(issubclass(defined_in, owner(m)) for m in ("value", "derivative")):
-        return None
-    return getattr(activation, method)
+    return getattr(activation, method) if method in type(activation).__dict__ else None
 
 
 def declared(activation: Activation, method: str, *args: Any) -> Any:

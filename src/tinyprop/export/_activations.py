@@ -15,9 +15,9 @@ Softplus    ``(z < 0 ? 0 : z) + log1p(exp(-|z|))`` (never overflows)
 Identity    no code at all
 ==========  ============================================================
 
-A subclass that redefines ``value`` or ``derivative`` does not inherit its
-parent's forms (:func:`tinyprop.activations.declaration`): it declares its own
-or describes itself through the protocol below.
+A subclass does not inherit its parent's forms
+(:func:`tinyprop.activations.declaration`): it declares its own or describes
+itself through the protocol below.
 
 **Tanh in float C.** The float export evaluates tanh with arithmetic alone
 instead of calling ``tanhf`` (why: ``docs/export.md``, "How the layout was

@@ -372,5 +372,4 @@ def _check_activations(plan: Plan) -> None:
             raise TypeError(
                 f"layer {step.layer} has the activation {type(act).__name__}, which the fixed-point "
                 f"export does not support; supported are {supported} (LeakyReLU with slope < 1; "
-                "a custom activation or a subclass that redefines value() only with its own "
-                "fixed-point form)")
+                "a custom activation or a subclass only with its own fixed-point form)")
