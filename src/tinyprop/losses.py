@@ -30,7 +30,15 @@ __all__ = [
 
 
 class Loss(Configured):
-    """Base class: ``value(y_hat, y) -> float`` and ``gradient(y_hat, y) -> array``."""
+    """Base class: ``value(y_hat, y) -> float`` and ``gradient(y_hat, y) -> array``.
+
+    ``sums_over_samples`` says how the value grows with the rows: ``False``
+    (the default) for a mean over samples, ``True`` for a sum
+    (:class:`SquaredError`). :func:`tinyprop.train` uses it to assemble an
+    epoch's training loss from its mini-batch losses.
+    """
+
+    sums_over_samples: bool = False
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         raise NotImplementedError
@@ -72,6 +80,8 @@ class SquaredError(Loss):
 
     The classical backpropagation error; its value grows with the batch size.
     """
+
+    sums_over_samples = True
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         y_hat, y = _pair(y_hat, y)

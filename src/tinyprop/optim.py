@@ -139,6 +139,35 @@ class Optimizer:
                 )
 
     # ----------------------------------------------------------------- state
+    def _mark(self) -> None:
+        """Remember the current state (update count and state arrays) for :meth:`_rewind`.
+
+        The copies go into buffers kept for the purpose, so marking before
+        every epoch allocates nothing after the first time.
+        """
+        if self._layout is None:
+            self._marked: tuple[int, dict[str, list[np.ndarray]] | None] = (self.steps, None)
+            return
+        previous = getattr(self, "_marked", (0, None))[1]
+        if previous is None or any(len(previous[k]) != len(v) for k, v in self._slots.items()):
+            previous = {name: [a.copy() for a in slot] for name, slot in self._slots.items()}
+        else:
+            for name, slot in self._slots.items():
+                for copy, array in zip(previous[name], slot):
+                    np.copyto(copy, array)
+        self._marked = (self.steps, previous)
+
+    def _rewind(self) -> None:
+        """Return to the state of the last :meth:`_mark`."""
+        steps, arrays = self._marked
+        self.steps = steps
+        if arrays is None:
+            self._layout, self._slots, self._work, self._clipped = None, {}, [], []
+            return
+        for name, slot in self._slots.items():
+            for array, copy in zip(slot, arrays[name]):
+                np.copyto(array, copy)
+
     def settings(self) -> dict[str, Any]:
         """JSON-able constructor arguments (the schedule as its own settings dict)."""
         return {
