@@ -28,6 +28,7 @@ from .registry import register_activation
 from .ensemble import Ensemble
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .solve import SolveResult, solve
+from .stacked import train_stacked
 from .sweep import SweepRecord, SweepResult, TabularRegression, TrainingData, sweep
 from .uncertainty import (
     ParameterUncertainty,
@@ -123,6 +124,7 @@ __all__ = [
     "solve",
     "sweep",
     "train",
+    "train_stacked",
     "uncertainty_report",
     "__version__",
 ]

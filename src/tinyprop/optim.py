@@ -168,6 +168,21 @@ class Optimizer:
             for array, copy in zip(slot, arrays[name]):
                 np.copyto(array, copy)
 
+    def _take_state(
+        self, steps: int, layout: list[tuple[tuple[int, ...], np.dtype]] | None, slots: dict[str, list[np.ndarray]]
+    ) -> None:
+        """Adopt ``steps``, the parameter ``layout`` and the state arrays ``slots`` as they are.
+
+        Unchecked (the arrays may be non-finite): for :func:`tinyprop.train_stacked`,
+        which hands every optimizer the state its network reached in the stack.
+        """
+        self.steps = int(steps)
+        self._layout, self._slots = layout, slots
+        if layout is None:
+            self._work, self._clipped = [], []
+        else:
+            self._allocate_buffers()
+
     def settings(self) -> dict[str, Any]:
         """JSON-able constructor arguments (the schedule as its own settings dict)."""
         return {

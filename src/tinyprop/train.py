@@ -648,13 +648,16 @@ class _Run:
             with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
                 problem = self._epoch()
             if problem is not None:
-                self._finish_progress()
-                result = self._result(STOP_DIVERGED, problem)
+                result = self._finish(STOP_DIVERGED, problem)
                 raise TrainingDiverged(result.message, result)
             reason = self._after_epoch()
+        return self._finish(reason)
+
+    def _finish(self, reason: str, problem: str | None = None) -> TrainingResult:
+        """The result; after early stopping (not divergence) the network gets the best epoch's weights."""
         self._finish_progress()
-        result = self._result(reason, None)
-        if self.patience is not None and self.best_epoch is not None:
+        result = self._result(reason, problem)
+        if reason != STOP_DIVERGED and self.patience is not None and self.best_epoch is not None:
             _copy_into(self.params, self.best_weights or [], "best weights")
         return result
 
@@ -674,7 +677,18 @@ class _Run:
             np.copyto(vector, self.backup)
             self.optimizer._rewind()
             problem = self._updates(X, y, vector, every_check=True)[0] or problem
-            return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+            return self._where(problem)
+        return self._end_epoch(epoch_loss)
+
+    def _where(self, problem: str) -> str:
+        """A divergence found during the epoch's updates, with the epoch and update it happened in."""
+        return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+
+    def _end_epoch(self, epoch_loss: float) -> str | None:
+        """Count the epoch done and record its losses (``epoch_loss``: the running training loss).
+
+        Returns a description of a non-finite loss, or ``None``.
+        """
         self.epoch += 1
         if self.exact_training_loss:
             epoch_loss = self.loss.value(self.net.predict(self.X), self.y)
