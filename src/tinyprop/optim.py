@@ -34,6 +34,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ._validate import real_in_range
+from ._views import flat_vector, views_of
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 
 __all__ = ["Optimizer", "OptimizerState", "SGD", "RMSProp", "Adam", "optimizer_from_state"]
@@ -80,19 +81,49 @@ class Optimizer:
         self._layout: list[tuple[tuple[int, ...], np.dtype]] | None = None
         self._slots: dict[str, list[np.ndarray]] = {}
         self._work: list[np.ndarray] = []
+        self._flat_slots: dict[str, list[np.ndarray]] = {}
+        self._flat_work: list[np.ndarray] = []
         self._clipped: list[np.ndarray] = []
 
     # ----------------------------------------------------------------- the step
     def update(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
-        """Apply one update to ``params`` in place, using ``grads`` (not modified)."""
+        """Apply one update to ``params`` in place, using ``grads`` (not modified).
+
+        When ``params`` is ``net.params`` and ``grads`` comes from
+        ``net.backward`` (lists of views of one flat vector each) and there is
+        no clipping, every array is updated at once through the flat vectors:
+        the same operations element for element, a few calls instead of a few
+        per array.
+        """
         if self._layout is None:
             self._allocate(params)
-        self._check(params, grads)
+        flat = None if self.clip_norm is not None else self._flat_pair(params, grads)
+        if flat is None:
+            self._check(params, grads)
         multiplier = 1.0 if self.schedule is None else self.schedule.multiplier(self.steps)
+        if flat is not None:
+            self.steps += 1
+            slots, work = self._slots, self._work
+            self._slots, self._work = self._flat_slots, self._flat_work
+            try:
+                self._apply(0, flat[0], flat[1], multiplier)
+            finally:
+                self._slots, self._work = slots, work
+            return
         grads = self._clip(grads)
         self.steps += 1
         for i, (p, g) in enumerate(zip(params, grads)):
             self._apply(i, p, g, multiplier)
+
+    def _flat_pair(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> tuple[np.ndarray, np.ndarray] | None:
+        """The flat vectors behind ``params`` and ``grads`` when both fit this optimizer's layout, else ``None``."""
+        P, G = flat_vector(params), flat_vector(grads)
+        if P is None or G is None or not self._flat_work:
+            return None
+        shapes = self._shapes
+        if params.shapes != shapes or grads.shapes != shapes or P.dtype != self._flat_work[0].dtype:  # type: ignore[attr-defined]
+            return None  # not the layout of the first update: the per-array check explains
+        return P, G
 
     def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
         raise NotImplementedError
@@ -118,9 +149,21 @@ class Optimizer:
         self._allocate_buffers()
 
     def _allocate_buffers(self) -> None:
+        """Scratch arrays; and each slot and the scratch as views of one flat array, for flat updates."""
         assert self._layout is not None
         self._work = [np.empty(shape, dtype) for shape, dtype in self._layout]
         self._clipped = [np.empty(shape, dtype) for shape, dtype in self._layout] if self.clip_norm else []
+        self._flat_slots: dict[str, list[np.ndarray]] = {}
+        self._flat_work: list[np.ndarray] = []
+        self._shapes = tuple(shape for shape, _ in self._layout)
+        if len({dtype for _, dtype in self._layout}) != 1:
+            return  # arrays of several dtypes are updated one by one
+        for name, slot in self._slots.items():
+            flat = np.concatenate([a.reshape(-1) for a in slot])
+            self._slots[name] = views_of(flat, [shape for shape, _ in self._layout])
+            self._flat_slots[name] = [flat]
+        flat = np.empty(sum(math.prod(shape) for shape, _ in self._layout), self._layout[0][1])
+        self._work, self._flat_work = views_of(flat, [shape for shape, _ in self._layout]), [flat]
 
     def _check(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
         layout = self._layout
