@@ -23,11 +23,11 @@ class ViewList(list):
 
     __slots__ = ("vector", "shapes", "_items")
 
-    def __init__(self, arrays: Sequence[np.ndarray], vector: np.ndarray) -> None:
-        super().__init__(arrays)
+    def __init__(self, arrays: tuple[np.ndarray, ...], vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> None:
+        list.__init__(self, arrays)
         self.vector = vector
-        self._items = tuple(arrays)
-        self.shapes = tuple(a.shape for a in self._items)
+        self._items = arrays  # what the list held when it was made
+        self.shapes = shapes
 
 
 ViewList.__name__ = "list"  # a list in every respect; error messages that name the type say so
@@ -46,11 +46,11 @@ def flat_vector(arrays: Sequence[np.ndarray]) -> np.ndarray | None:
     return arrays.vector
 
 
-def views_of(vector: np.ndarray, shapes: Sequence[tuple[int, ...]]) -> ViewList:
+def views_of(vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> ViewList:
     """Consecutive views of ``vector`` with the given shapes (their sizes must add up to its length)."""
     arrays, start = [], 0
     for shape in shapes:
-        size = math.prod(shape)
-        arrays.append(vector[start:start + size].reshape(shape))
-        start += size
-    return ViewList(arrays, vector)
+        stop = start + math.prod(shape)
+        arrays.append(vector[start:stop].reshape(shape))
+        start = stop
+    return ViewList(tuple(arrays), vector, shapes)

@@ -134,7 +134,7 @@ class Network:
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
         )
         self._backward_plan = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._plan))))
-        self._shapes = [p.shape for p in self.params]
+        self._shapes = tuple(p.shape for p in self._linked)
         self._ones_for: dict[int, np.ndarray] = {}  # rows -> read-only vector of ones (never handed out)
         self._grad_slot = {}  # affine layer index -> index of its weight in params
         for i, layer in enumerate(self.layers):
@@ -151,10 +151,13 @@ class Network:
         that ``opt.update(net.params, grads)`` can update all of them at once.
         """
         params = [p for layer in self._affine for p in layer.params]
-        vector, linked = self._vector, self._linked
-        if len(params) == len(linked) and all(a is b and a.base is vector for a, b in zip(params, linked)):
-            return ViewList(params, self._vector)
-        return params
+        linked = self._linked
+        if len(params) != len(linked):
+            return params
+        for a, b in zip(params, linked):
+            if a is not b:
+                return params  # replaced by assignment: vector re-links them
+        return ViewList(linked, self._vector, self._shapes)
 
     @property
     def n_params(self) -> int:
@@ -197,6 +200,11 @@ class Network:
         if theta.shape != (self.n_params,):
             raise ValueError(f"theta must have shape ({self.n_params},), got shape {theta.shape}")
         self.vector[...] = theta
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        """Unpickling copies every array separately: make the parameters views of the vector again."""
+        self.__dict__.update(state)
+        self._link_vector()
 
     # ----------------------------------------------------------------- forward
     def predict(self, X: Any) -> np.ndarray:

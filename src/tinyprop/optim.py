@@ -160,10 +160,10 @@ class Optimizer:
             return  # arrays of several dtypes are updated one by one
         for name, slot in self._slots.items():
             flat = np.concatenate([a.reshape(-1) for a in slot])
-            self._slots[name] = views_of(flat, [shape for shape, _ in self._layout])
+            self._slots[name] = views_of(flat, tuple(shape for shape, _ in self._layout))
             self._flat_slots[name] = [flat]
         flat = np.empty(sum(math.prod(shape) for shape, _ in self._layout), self._layout[0][1])
-        self._work, self._flat_work = views_of(flat, [shape for shape, _ in self._layout]), [flat]
+        self._work, self._flat_work = views_of(flat, tuple(shape for shape, _ in self._layout)), [flat]
 
     def _check(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
         layout = self._layout

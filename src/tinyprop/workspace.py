@@ -69,7 +69,7 @@ class Workspace:
         self._scratch_for: dict[tuple[int, int], np.ndarray] = {}  # (rows, width) -> scratch(rows, width)
         self.grad_vector = np.empty(network.n_params, dtype)
         """All gradients as one flat array, aligned with ``network.vector``."""
-        self.grads = views_of(self.grad_vector, [p.shape for p in network.params])
+        self.grads = views_of(self.grad_vector, tuple(p.shape for p in network.params))
         """The gradient arrays, aligned with ``network.params`` (views into :attr:`grad_vector`)."""
         self.generation = 0
 
