@@ -106,25 +106,48 @@ def _bar_text(bar: str) -> str:
     return f"{limit[0]}..{limit[1]}" if comparison == "in" else f"{comparison} {limit:g}"
 
 
-def verdicts(results: dict[str, Any]) -> list[dict[str, Any]]:
-    """Every figure that has a bar: its name, value, bar and whether it is met (``None``: not measured)."""
-    rows: list[tuple[str, str, float | None]] = []
+def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | None]]:
+    """Every figure in table order: ``(name, measured, ratio, bar)``; ``bar`` is a key of :data:`BARS` or ``None``."""
+    rows: list[tuple[str, str, float | None, str | None]] = []
+    for r in results["floor"]:
+        rows.append((f"floor ratio, batch {r['batch']} {r['dtype']}", f"{r['step_s'] * 1e3:.3f} ms", r["ratio"], None))
     for r in results["floor"]:
         bar = "step_floor_update_4096" if r["batch"] >= 4096 else "step_floor_update_256"
-        rows.append((f"step / (floor + Adam update), batch {r['batch']} {r['dtype']}", bar, r["ratio_floor_update"]))
+        rows.append((f"step / (floor + Adam update), batch {r['batch']} {r['dtype']}",
+                     f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], bar))
     for r in results["train_epoch"]:
-        rows.append((f"train epoch / {r['steps']} steps, batch {r['batch']} {r['dtype']}", "train_epoch", r["ratio"]))
-    for r in results["tax"]:
-        rows.append((f"abstraction tax, {r['network']} batch {r['batch']}", "tax", r["ratio"]))
-    for r in results["light_path"]:
-        rows.append((f"no-workspace path tax, {r['network']} batch {r['batch']}", "light_path", r["ratio"]))
+        rows.append((f"train epoch / {r['steps']} steps, batch {r['batch']} {r['dtype']}", f"{r['epoch_s'] * 1e3:.2f} ms",
+                     r["ratio"], "train_epoch"))
+    for key, label in (("tax", "abstraction tax"), ("light_path", "no-workspace path tax")):
+        for r in results[key]:
+            rows.append((f"{label}, {r['network']} batch {r['batch']}", f"{r['step_s'] * 1e6:.1f} us", r["ratio"], key))
     for r in results["stacked"]:
-        rows.append((f"stacked speed-up, {r['members']} x {r['network']} batch {r['batch']} {r['dtype']}", r["case"], r["speedup"]))
+        rows.append((f"stacked speed-up, {r['members']} x {r['network']} batch {r['batch']} {r['dtype']}",
+                     f"{r['stacked_s'] * 1e3:.1f} ms", r["speedup"], r["case"]))
     for r in results["memory"]:
-        rows.append((f"memory ratio, batch {r['batch']} {r['dtype']}", "memory", r["ratio"]))
-    rows.append(("scaling exponent", "exponent", results["scaling"]["exponent"]))
-    rows.append(("predict / exported C", "c_speedup", results["inference"]["c_speedup"]))
-    return [{"figure": name, "value": value, "bar": _bar_text(bar), "met": _met(bar, value)} for name, bar, value in rows]
+        rows.append((f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], "memory"))
+    s = results["scaling"]
+    for n, sec in zip(s["samples"], s["seconds_per_epoch"]):
+        rows.append((f"epoch time, n = {n:.0e}", f"{sec * 1e3:.2f} ms", None, None))
+    rows.append(("scaling exponent (time ~ n^k)", "", s["exponent"], "exponent"))
+    for r in results["second_order"]:
+        rows.append((f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians, LRE {r['rss_lre']:.1f})",
+                     f"{r['seconds'] * 1e3:.1f} ms", None, None))
+    i = results["inference"]
+    rows.append(("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, None))
+    rows.append(("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"], None))
+    measured = "no compiler" if i["c_s"] is None else f"{i['c_s'] * 1e9:.0f} ns"
+    rows.append(("inference: predict / exported C (speed-up)", measured, i["c_speedup"], "c_speedup"))
+    return rows
+
+
+def verdicts(results: dict[str, Any]) -> list[dict[str, Any]]:
+    """Every figure that has a bar: its name, value, bar and whether it is met (``None``: not measured)."""
+    return [
+        {"figure": name, "value": value, "bar": _bar_text(bar), "met": _met(bar, value)}
+        for name, _, value, bar in _rows(results)
+        if bar is not None
+    ]
 
 
 def table(results: dict[str, Any]) -> str:
@@ -135,54 +158,15 @@ def table(results: dict[str, Any]) -> str:
         f"machine: {m['cpu']}, {m['cores']} cores, Python {m['python']}, numpy {m['numpy']}, BLAS {m['blas']}"
         f", BLAS threads: {m.get('blas_threads', 'default')}",
         "",
-        f"{'figure':<52} {'measured':>12} {'ratio':>8} {'bar':>10}  verdict",
+        f"{'figure':<60} {'measured':>12} {'ratio':>8} {'bar':>10}  verdict",
     ]
-    verdict = {v["figure"]: v for v in results.get("verdicts") or verdicts(results)}
-
-    def row(name: str, measured: str, ratio: float | None, checked: str | None = None) -> None:
+    judged = verdicts(results)
+    for name, measured, ratio, bar in _rows(results):
         shown = "-" if ratio is None else f"{ratio:.2f}"
-        bar, met = "", ""
-        if checked is not None:
-            bar = verdict[checked]["bar"]
-            met = {True: "met", False: "NOT MET", None: "not measured"}[verdict[checked]["met"]]
-        lines.append(f"{name:<52} {measured:>12} {shown:>8} {bar:>10}  {met}".rstrip())
-
-    for r in results["floor"]:
-        row(f"floor ratio, batch {r['batch']} {r['dtype']}", f"{r['step_s'] * 1e3:.3f} ms", r["ratio"])
-    for r in results["floor"]:
-        name = f"step / (floor + Adam update), batch {r['batch']} {r['dtype']}"
-        row(name, f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], name)
-    for r in results["train_epoch"]:
-        name = f"train epoch / {r['steps']} steps, batch {r['batch']} {r['dtype']}"
-        row(name, f"{r['epoch_s'] * 1e3:.2f} ms", r["ratio"], name)
-    for r in results["tax"]:
-        name = f"abstraction tax, {r['network']} batch {r['batch']}"
-        row(name, f"{r['step_s'] * 1e6:.1f} us", r["ratio"], name)
-    for r in results["light_path"]:
-        name = f"no-workspace path tax, {r['network']} batch {r['batch']}"
-        row(name, f"{r['step_s'] * 1e6:.1f} us", r["ratio"], name)
-    for r in results["stacked"]:
-        name = f"stacked speed-up, {r['members']} x {r['network']} batch {r['batch']} {r['dtype']}"
-        row(name, f"{r['stacked_s'] * 1e3:.1f} ms", r["speedup"], name)
-    for r in results["memory"]:
-        name = f"memory ratio, batch {r['batch']} {r['dtype']}"
-        row(name, f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], name)
-    s = results["scaling"]
-    for n, sec in zip(s["samples"], s["seconds_per_epoch"]):
-        row(f"epoch time, n = {n:.0e}", f"{sec * 1e3:.2f} ms", None)
-    row("scaling exponent (time ~ n^k)", "", s["exponent"], "scaling exponent")
-    for r in results["second_order"]:
-        row(f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians)", f"{r['seconds'] * 1e3:.1f} ms", None)
-        lines[-1] += f"  (LRE {r['rss_lre']:.1f})"
-    i = results["inference"]
-    row("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0)
-    row("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"])
-    if i["c_s"] is None:
-        row("inference: exported C", "no compiler", None, "predict / exported C")
-    else:
-        row("inference: predict / exported C (speed-up)", f"{i['c_s'] * 1e9:.0f} ns", i["c_speedup"], "predict / exported C")
-    missed = [v["figure"] for v in verdict.values() if v["met"] is False]
-    lines += ["", f"bars: {sum(v['met'] is True for v in verdict.values())} met, {len(missed)} not met"
+        met = "" if bar is None else {True: "met", False: "NOT MET", None: "not measured"}[_met(bar, ratio)]
+        lines.append(f"{name:<60} {measured:>12} {shown:>8} {'' if bar is None else _bar_text(bar):>10}  {met}".rstrip())
+    missed = [v["figure"] for v in judged if v["met"] is False]
+    lines += ["", f"bars: {sum(v['met'] is True for v in judged)} met, {len(missed)} not met"
               + (f" ({'; '.join(missed)})" if missed else "")]
     return "\n".join(lines)
 
