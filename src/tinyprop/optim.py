@@ -145,25 +145,40 @@ class Optimizer:
             if p.dtype.kind != "f":
                 raise TypeError(f"params[{i}] must be a float array, got dtype {p.dtype}")
         self._layout = [(p.shape, p.dtype) for p in arrays]
-        self._slots = {name: [np.zeros_like(p) for p in arrays] for name in self._slot_names}
+        self._slots = {name: self._new_arrays(np.zeros) for name in self._slot_names}
         self._allocate_buffers()
 
-    def _allocate_buffers(self) -> None:
-        """Scratch arrays; and each slot and the scratch as views of one flat array, for flat updates."""
+    def _new_arrays(self, make: Any) -> list[np.ndarray]:
+        """Arrays of the layout from ``make(size, dtype)``: views of one flat array when the dtypes agree."""
         assert self._layout is not None
-        self._work = [np.empty(shape, dtype) for shape, dtype in self._layout]
-        self._clipped = [np.empty(shape, dtype) for shape, dtype in self._layout] if self.clip_norm else []
+        shapes = tuple(shape for shape, _ in self._layout)
+        dtypes = {dtype for _, dtype in self._layout}
+        if len(dtypes) == 1:
+            return views_of(make(sum(math.prod(shape) for shape in shapes), dtypes.pop()), shapes)
+        return [make(shape, dtype) for shape, dtype in self._layout]
+
+    def _allocate_buffers(self) -> None:
+        """Scratch arrays; each slot and the scratch as views of one flat array too, for flat updates.
+
+        Slot arrays that are not yet views of one flat array (state set from
+        outside) are copied into one.
+        """
+        assert self._layout is not None
+        self._work = self._new_arrays(np.empty)
+        self._clipped = self._new_arrays(np.empty) if self.clip_norm else []
         self._flat_slots: dict[str, list[np.ndarray]] = {}
         self._flat_work: list[np.ndarray] = []
         self._shapes = tuple(shape for shape, _ in self._layout)
-        if len({dtype for _, dtype in self._layout}) != 1:
+        flat_work = flat_vector(self._work)
+        if flat_work is None:
             return  # arrays of several dtypes are updated one by one
         for name, slot in self._slots.items():
-            flat = np.concatenate([a.reshape(-1) for a in slot])
-            self._slots[name] = views_of(flat, tuple(shape for shape, _ in self._layout))
+            flat = flat_vector(slot)
+            if flat is None:
+                flat = np.concatenate([a.reshape(-1) for a in slot])
+                self._slots[name] = views_of(flat, self._shapes)
             self._flat_slots[name] = [flat]
-        flat = np.empty(sum(math.prod(shape) for shape, _ in self._layout), self._layout[0][1])
-        self._work, self._flat_work = views_of(flat, tuple(shape for shape, _ in self._layout)), [flat]
+        self._flat_work = [flat_work]
 
     def _check(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
         layout = self._layout

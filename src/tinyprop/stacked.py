@@ -324,7 +324,7 @@ class _Stacked:
         losses, gradient = self._loss(values[-1], yb)
         bad = ~np.isfinite(losses)
         if bad.any():
-            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses], made=False), False
+            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses]), False
         self._backward(values, gradient)
         if self.l2:
             for i in self.affine:
@@ -333,7 +333,7 @@ class _Stacked:
         squared = np.matmul(flat, flat.transpose(0, 2, 1)).reshape(-1).astype(np.float64)  # np.vdot(g, g)
         bad = ~np.isfinite(squared)
         if bad.any():
-            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared], made=False), False
+            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared]), False
         totals += losses if self.summed else losses * xb.shape[1]
         np.copyto(self.backup, self.theta)
         self.optimizer.update([self.theta], [self.grad])
@@ -344,9 +344,9 @@ class _Stacked:
             return None  # only the sum overflowed
         self.theta[bad] = self.backup[bad]
         message = "the update made a weight non-finite (the weights before it were restored)"
-        return self._diverged(bad, [message] * len(bad), made=True), True
+        return self._diverged(bad, [message] * len(bad)), True
 
-    def _diverged(self, bad: np.ndarray, problems: list[str], made: bool) -> np.ndarray:
+    def _diverged(self, bad: np.ndarray, problems: list[str]) -> np.ndarray:
         """Finish the networks marked in ``bad`` as diverged and drop them; return the rows kept."""
         for row in np.flatnonzero(bad):
             k = self.active[row]

@@ -319,8 +319,10 @@ def train(
         The network and its training data: ``X`` ``(n, n_in)``, ``y``
         ``(n, n_out)`` (1-D allowed for one output). Converted once to the
         network's dtype; the caller's arrays are not modified. Memory: one
-        shuffled copy of ``X`` and ``y``, refilled every epoch, plus the
-        network's workspace for one mini-batch.
+        shuffled copy of ``X`` and ``y``, refilled every epoch, the network's
+        workspace for one mini-batch, and a copy of the weights and of the
+        optimizer's state taken at the start of every epoch (for the
+        divergence guard's replay).
     loss:
         A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
         losses (``MeanSquaredError``, the cross-entropies) make the step size
@@ -562,7 +564,7 @@ class _Run:
         self.params = net.params
         self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
-        self.step_backup = np.empty_like(net.vector)  # the weights before one update (during a replay)
+        self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
         self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
         self.checkpoint: str | os.PathLike[str] | None = None
@@ -726,6 +728,8 @@ class _Run:
             if not math.isfinite(squared_norm):
                 return f"the squared gradient norm is {squared_norm}", total
             if every_check:
+                if self.step_backup is None:
+                    self.step_backup = np.empty_like(vector)
                 np.copyto(self.step_backup, vector)
             self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
             if every_check and not np.isfinite(vector).all():
