@@ -56,6 +56,11 @@ class Loss(Configured):
 
 def _pair(y_hat: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Check shapes; bring a 1-D target to ``(n, 1)``; match ``y``'s dtype to ``y_hat``."""
+    if (
+        type(y_hat) is np.ndarray and type(y) is np.ndarray and y_hat.ndim == 2 and y.shape == y_hat.shape
+        and y.dtype == y_hat.dtype and y_hat.dtype.kind == "f"
+    ):
+        return y_hat, y  # already right: the common case in a training loop
     y_hat = np.asarray(y_hat)
     y = np.asarray(y)
     if y.ndim == 1 and y_hat.ndim == 2 and y_hat.shape[1] == 1:

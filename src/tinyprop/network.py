@@ -150,14 +150,10 @@ class Network:
         of :attr:`vector`, and the list says so (it is a ``list`` subclass), so
         that ``opt.update(net.params, grads)`` can update all of them at once.
         """
-        params = [p for layer in self._affine for p in layer.params]
-        linked = self._linked
-        if len(params) != len(linked):
-            return params
-        for a, b in zip(params, linked):
-            if a is not b:
-                return params  # replaced by assignment: vector re-links them
-        return ViewList(linked, self._vector, self._shapes)
+        for layer, name, linked in self._sources:
+            if getattr(layer, name) is not linked:  # replaced by assignment: vector re-links them
+                return [p for layer in self._affine for p in layer.params]
+        return ViewList(self._linked, self._vector, self._shapes)
 
     @property
     def n_params(self) -> int:
@@ -177,18 +173,21 @@ class Network:
 
     def _link_vector(self) -> None:
         """Copy every parameter array into ``_vector`` and make the layers hold views of it."""
-        start, linked = 0, []
+        start, linked, sources = 0, [], []
         for layer in self._affine:
             for name in ("weight", "bias"):
                 array = getattr(layer, name)
                 if array is None:
+                    sources.append((layer, name, None))
                     continue
                 view = self._vector[start:start + array.size].reshape(array.shape)
                 view[...] = array
                 setattr(layer, name, view)
                 linked.append(view)
+                sources.append((layer, name, view))
                 start += array.size
         self._linked = tuple(linked)
+        self._sources = tuple(sources)  # (layer, attribute, the array it held when linked)
 
     def get_vector(self) -> np.ndarray:
         """All parameters as one new flat vector, in the order of :attr:`params`."""
