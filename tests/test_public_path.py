@@ -104,3 +104,9 @@ def test_params_stop_being_flat_views_when_a_layer_array_is_replaced_or_pickled(
     before = copy.predict(X)
     SGD(0.5).update(copy.params, grads)
     assert not np.array_equal(copy.predict(X), before)  # the layers' own arrays were updated
+
+
+def test_a_bias_added_after_construction_is_updated_too():
+    net = tp.Network([tp.Affine(2, 1, bias=False)], seed=0)
+    net.layers[0].bias = np.zeros(1)  # not part of the linked vector: params is an ordinary list again
+    assert type(net.params) is list and len(net.params) == 2

@@ -231,7 +231,9 @@ class Network:
     def forward(self, X: Any, *, workspace: Workspace | None = None) -> tuple[np.ndarray, Trace]:
         """Output and the :class:`Trace` that :meth:`backward` needs.
 
-        With a ``workspace`` (see :meth:`workspace`) the arrays are the
+        Without a workspace the output and the trace's values are new arrays
+        that no later call writes into (the caller may keep them), and the
+        trace can serve any number of :meth:`backward` calls. With a ``workspace`` (see :meth:`workspace`) the arrays are the
         workspace's and no large array is allocated. A batch that already has
         the network's dtype and shape is then used as it is, without the scan
         for NaN and infinity: training checks its data once before the first
@@ -288,8 +290,10 @@ class Network:
         (``dE/dW = delta^T x``, ``dE/db = sum of delta`` per affine layer) and
         ``d_input = dE/dX`` of shape ``(n, n_in)`` (``None`` when
         ``need_input=False``, which skips that last product). For a trace made
-        with a workspace, ``grads`` are the workspace's arrays, overwritten by
-        the next backward pass.
+        without a workspace, ``grads`` and ``d_input`` are new arrays (``grads``
+        views of one new flat vector, ``grads.vector``) that no later call
+        writes into. For a trace made with a workspace, ``grads`` are the
+        workspace's arrays, overwritten by the next backward pass.
         """
         d_out = self._check_d_out(trace, d_out)
         work = trace.workspace
