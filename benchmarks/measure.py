@@ -122,7 +122,8 @@ def train_epoch(batch: int, dtype: Any, *, rounds: int, steps: int = 16) -> dict
 
     def run(epochs: int) -> Callable[[], None]:
         def fn() -> None:
-            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-6), epochs=epochs, batch_size=batch, seed=0)
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-6), epochs=epochs, batch_size=batch,
+                     seed=0)
         return fn
 
     def isolated_steps() -> None:

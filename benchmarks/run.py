@@ -51,7 +51,8 @@ def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
 
     def starting(part: str) -> None:
         if progress:
-            print(f"[{PARTS.index(part) + 1}/{len(PARTS)}] measuring {part.replace('_', '-')} ...", file=sys.stderr, flush=True)
+            number = f"[{PARTS.index(part) + 1}/{len(PARTS)}]"
+            print(f"{number} measuring {part.replace('_', '-')} ...", file=sys.stderr, flush=True)
 
     results: dict[str, Any] = {"machine": measure.machine(), "quick": quick}
     starting("floor")
@@ -62,7 +63,9 @@ def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
     ]
     starting("train_epoch")
     results["train_epoch"] = [
-        measure.train_epoch(b, dtype, rounds=1 if quick else 5, steps=2 if quick else 16) for dtype in dtypes for b in batches
+        measure.train_epoch(b, dtype, rounds=1 if quick else 5, steps=2 if quick else 16)
+        for dtype in dtypes
+        for b in batches
     ]
     starting("tax")
     results["tax"] = [
@@ -116,8 +119,8 @@ def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | N
         rows.append((f"step / (floor + Adam update), batch {r['batch']} {r['dtype']}",
                      f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], bar))
     for r in results["train_epoch"]:
-        rows.append((f"train epoch / {r['steps']} steps, batch {r['batch']} {r['dtype']}", f"{r['epoch_s'] * 1e3:.2f} ms",
-                     r["ratio"], "train_epoch"))
+        rows.append((f"train epoch / {r['steps']} steps, batch {r['batch']} {r['dtype']}",
+                     f"{r['epoch_s'] * 1e3:.2f} ms", r["ratio"], "train_epoch"))
     for key, label in (("tax", "abstraction tax"), ("light_path", "no-workspace path tax")):
         for r in results[key]:
             rows.append((f"{label}, {r['network']} batch {r['batch']}", f"{r['step_s'] * 1e6:.1f} us", r["ratio"], key))
@@ -125,14 +128,15 @@ def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | N
         rows.append((f"stacked speed-up, {r['members']} x {r['network']} batch {r['batch']} {r['dtype']}",
                      f"{r['stacked_s'] * 1e3:.1f} ms", r["speedup"], r["case"]))
     for r in results["memory"]:
-        rows.append((f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], "memory"))
+        rows.append((f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB",
+                     r["ratio"], "memory"))
     s = results["scaling"]
     for n, sec in zip(s["samples"], s["seconds_per_epoch"]):
         rows.append((f"epoch time, n = {n:.0e}", f"{sec * 1e3:.2f} ms", None, None))
     rows.append(("scaling exponent (time ~ n^k)", "", s["exponent"], "exponent"))
     for r in results["second_order"]:
-        rows.append((f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians, LRE {r['rss_lre']:.1f})",
-                     f"{r['seconds'] * 1e3:.1f} ms", None, None))
+        name = f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians, LRE {r['rss_lre']:.1f})"
+        rows.append((name, f"{r['seconds'] * 1e3:.1f} ms", None, None))
     i = results["inference"]
     rows.append(("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, None))
     rows.append(("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"], None))
@@ -164,7 +168,8 @@ def table(results: dict[str, Any]) -> str:
     for name, measured, ratio, bar in _rows(results):
         shown = "-" if ratio is None else f"{ratio:.2f}"
         met = "" if bar is None else {True: "met", False: "NOT MET", None: "not measured"}[_met(bar, ratio)]
-        lines.append(f"{name:<60} {measured:>12} {shown:>8} {'' if bar is None else _bar_text(bar):>10}  {met}".rstrip())
+        bar_text = "" if bar is None else _bar_text(bar)
+        lines.append(f"{name:<60} {measured:>12} {shown:>8} {bar_text:>10}  {met}".rstrip())
     missed = [v["figure"] for v in judged if v["met"] is False]
     lines += ["", f"bars: {sum(v['met'] is True for v in judged)} met, {len(missed)} not met"
               + (f" ({'; '.join(missed)})" if missed else "")]

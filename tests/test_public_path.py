@@ -54,7 +54,7 @@ def test_arrays_the_caller_keeps_are_not_overwritten_by_later_calls():
 def test_update_of_the_network_lists_equals_the_array_by_array_update(make, dtype):
     X, y = _data(3)
     loss = tp.MeanSquaredError()
-    at_once, one_by_one = tp.build_mlp([4, 8, 8, 1], seed=1, dtype=dtype), tp.build_mlp([4, 8, 8, 1], seed=1, dtype=dtype)
+    at_once, one_by_one = (tp.build_mlp([4, 8, 8, 1], seed=1, dtype=dtype) for _ in range(2))
     opt_at_once, opt_one_by_one = make(), make()
     for _ in range(5):
         for net, opt, plain in ((at_once, opt_at_once, False), (one_by_one, opt_one_by_one, True)):
@@ -95,7 +95,7 @@ def test_params_stop_being_flat_views_when_a_layer_array_is_replaced_or_pickled(
     layer = net.layers[0]
     layer.weight = layer.weight.copy()  # replaced by assignment
     assert type(net.params) is list
-    net.vector  # re-links the vector to the layers' arrays
+    _ = net.vector  # re-links the vector to the layers' arrays
     assert net.params[0] is layer.weight and layer.weight.base is net.vector
     copy = pickle.loads(pickle.dumps(net))  # views do not survive pickling
     X, y = _data(0, rows=5)[0][:, :2], np.ones((5, 1))

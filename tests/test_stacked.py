@@ -15,9 +15,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
+from net_strategies import LOSSES, _targets, networks
 from tinyprop.optim import SGD, Adam, RMSProp
 from tinyprop.train import TrainingDiverged
-from net_strategies import LOSSES, _targets, networks
 
 OPTIMIZERS = {
     "sgd": lambda lr, decay: SGD(lr),
@@ -113,7 +113,8 @@ def test_one_hundred_steps_of_eight_networks_are_bit_identical(dtype):
                                batch_size=16, seeds=list(range(100, 108)))
     for k in range(8):
         optimizer = Adam(lrs[k], decoupled_decay=1e-3 * (k % 2))
-        alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, 100 + k, epochs=10, batch_size=16)
+        alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, 100 + k, epochs=10,
+                                  batch_size=16)
         assert reference.updates == 100
         _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
 
@@ -152,11 +153,15 @@ def _stack_args(K=2, **changes):
         (dict(nets=[]), ValueError, "nets is empty"),
         (dict(seeds=[0]), ValueError, "need one optimizer and one seed per network: 2 nets, 2 optimizers, 1 seeds"),
         (dict(nets=tp.build_mlp([2, 3, 1])), TypeError, "nets must be a list with one entry per network, got Network"),
-        (dict(nets=[tp.build_mlp([2, 3, 1]), tp.build_mlp([2, 4, 1])]), ValueError, r"nets\[1\] .* does not have the layers"),
-        (dict(nets=[tp.build_mlp([2, 3, 1]), tp.build_mlp([2, 3, 1], dtype=np.float32)]), ValueError, "does not have the layers and dtype"),
+        (dict(nets=[tp.build_mlp([2, 3, 1]), tp.build_mlp([2, 4, 1])]), ValueError,
+         r"nets\[1\] .* does not have the layers"),
+        (dict(nets=[tp.build_mlp([2, 3, 1]), tp.build_mlp([2, 3, 1], dtype=np.float32)]), ValueError,
+         "does not have the layers and dtype"),
         (dict(optimizers=[Adam(1e-3), SGD(1e-3)]), ValueError, "every optimizer must be of one kind"),
-        (dict(optimizers=[Adam(1e-3), Adam(1e-3, beta2=0.99)]), ValueError, r"only \['lr', 'decoupled_decay'\] may differ"),
-        (dict(optimizers=[Adam(1e-3, clip_norm=1.0), Adam(1e-3, clip_norm=1.0)]), ValueError, "cannot clip per network"),
+        (dict(optimizers=[Adam(1e-3), Adam(1e-3, beta2=0.99)]), ValueError,
+         r"only \['lr', 'decoupled_decay'\] may differ"),
+        (dict(optimizers=[Adam(1e-3, clip_norm=1.0), Adam(1e-3, clip_norm=1.0)]), ValueError,
+         "cannot clip per network"),
         (dict(X=np.zeros((3, 20, 2))), ValueError, r"X with one block of rows per network must have shape \(2, n, 2\)"),
         (dict(X=np.zeros((2, 20, 2)), y=np.zeros((2, 19, 1))), ValueError, r"y must have shape \(2, 20, 1\)"),
     ],
@@ -178,7 +183,8 @@ def test_refuses_shared_and_used_optimizers_and_subclasses():
     class Mine(SGD):
         pass
 
-    with pytest.raises(TypeError, match=r"optimizers\[0\] must be a tinyprop SGD, RMSProp or Adam \(not a subclass\), got Mine"):
+    expected = r"optimizers\[0\] must be a tinyprop SGD, RMSProp or Adam \(not a subclass\), got Mine"
+    with pytest.raises(TypeError, match=expected):
         tp.train_stacked(**_stack_args(optimizers=[Mine(1e-3), Mine(1e-3)]))
 
 

@@ -233,7 +233,8 @@ class Network:
 
         Without a workspace the output and the trace's values are new arrays
         that no later call writes into (the caller may keep them), and the
-        trace can serve any number of :meth:`backward` calls. With a ``workspace`` (see :meth:`workspace`) the arrays are the
+        trace can serve any number of :meth:`backward` calls. With a
+        ``workspace`` (see :meth:`workspace`) the arrays are the
         workspace's and no large array is allocated. A batch that already has
         the network's dtype and shape is then used as it is, without the scan
         for NaN and infinity: training checks its data once before the first

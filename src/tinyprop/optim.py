@@ -115,7 +115,9 @@ class Optimizer:
         for i, (p, g) in enumerate(zip(params, grads)):
             self._apply(i, p, g, multiplier)
 
-    def _flat_pair(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> tuple[np.ndarray, np.ndarray] | None:
+    def _flat_pair(
+        self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray] | None:
         """The flat vectors behind ``params`` and ``grads`` when both fit this optimizer's layout, else ``None``."""
         P, G = flat_vector(params), flat_vector(grads)
         if P is None or G is None or not self._flat_work:

@@ -72,12 +72,11 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ._validate import as_samples, as_targets
+from ._validate import _sum_is_finite, as_samples, as_targets
 from .layers import Affine
 from .losses import Loss, MeanSquaredError, SquaredError
 from .network import _ACTIVATION_IN_PLACE, _AFFINE, _SCALING, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
-from ._validate import _sum_is_finite
 from .train import STOP_DIVERGED, TRAINING_LOSS_RUNNING, TrainingResult, _Run
 
 __all__ = ["train_stacked"]
@@ -447,7 +446,9 @@ def _count(nets: Any, optimizers: Any, seeds: Any) -> int:
     if K == 0:
         raise ValueError("nets is empty; train_stacked needs at least one network")
     if len(optimizers) != K or len(seeds) != K:
-        raise ValueError(f"need one optimizer and one seed per network: {K} nets, {len(optimizers)} optimizers, {len(seeds)} seeds")
+        raise ValueError(
+            f"need one optimizer and one seed per network: {K} nets, {len(optimizers)} optimizers, {len(seeds)} seeds"
+        )
     for name, value in (("nets", nets), ("optimizers", optimizers)):
         if len({id(v) for v in value}) != K:
             raise ValueError(f"{name} must be {K} distinct objects (the same object appears twice)")
@@ -484,11 +485,18 @@ def _check_optimizers(optimizers: Sequence[Optimizer]) -> None:
                 f"optimizers[{k}] must be a tinyprop SGD, RMSProp or Adam (not a subclass), got {type(opt).__name__}"
             )
         if type(opt) is not type(first):
-            raise ValueError(f"every optimizer must be of one kind: optimizers[0] is {type(first).__name__}, optimizers[{k}] {type(opt).__name__}")
+            raise ValueError(
+                f"every optimizer must be of one kind: optimizers[0] is {type(first).__name__}, "
+                f"optimizers[{k}] {type(opt).__name__}"
+            )
         if opt.steps != 0 or opt._layout is not None:
-            raise ValueError(f"optimizers[{k}] has already made {opt.steps} updates; train_stacked needs new optimizers")
+            raise ValueError(
+                f"optimizers[{k}] has already made {opt.steps} updates; train_stacked needs new optimizers"
+            )
         if opt.clip_norm is not None:
-            raise ValueError(f"optimizers[{k}] has clip_norm={opt.clip_norm}; train_stacked cannot clip per network, use train")
+            raise ValueError(
+                f"optimizers[{k}] has clip_norm={opt.clip_norm}; train_stacked cannot clip per network, use train"
+            )
         shared = {key: v for key, v in opt.settings().items() if key not in _PER_NETWORK}
         expected = {key: v for key, v in first.settings().items() if key not in _PER_NETWORK}
         if shared != expected:
