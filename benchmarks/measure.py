@@ -75,7 +75,7 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
     ``tanh`` per hidden layer, and the backward products ``delta^T x`` and
     ``delta W`` (not below the first layer).
     """
-    net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+    net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
     X, y = _synthetic(batch, 64, dtype)
     step = _training_step(net, Adam(1e-6), X, y)
     W1, W2, W3 = (layer.weight for layer in net.layers if isinstance(layer, tp.Affine))
@@ -117,7 +117,7 @@ def train_epoch(batch: int, dtype: Any, *, rounds: int, steps: int = 16) -> dict
     figure's public-API step on one batch. Timed in alternating rounds.
     """
     X, y = _synthetic(steps * batch, 64, dtype)
-    net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+    net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
     step = _training_step(net, Adam(1e-6), X[:batch], y[:batch])
 
     def run(epochs: int) -> Callable[[], None]:
@@ -143,7 +143,7 @@ def light_path(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict
     loss.gradient(out, y), need_input=False)``; ``opt.update(net.params, grads)``
     (the hand-written step does not form ``dE/dX`` either).
     """
-    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=0)
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)
     X, y = _synthetic(batch, sizes[0], np.float64)
     loss, optimizer = tp.MeanSquaredError(), SGD(1e-6)
 
@@ -192,7 +192,7 @@ def stacked_speedup(
 
 def abstraction_tax(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
     """Plain-SGD step through tinyprop's public API over the hand-written numpy step (handwritten.py)."""
-    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=0)
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)
     X, y = _synthetic(batch, sizes[0], np.float64)
     step = _training_step(net, SGD(1e-6), X, y)
     weights = [layer.weight.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
@@ -216,7 +216,7 @@ def memory_ratio(batch: int, dtype: Any = np.float64) -> dict[str, Any]:
     X, y = _synthetic(batch, 64, dtype)
     tracemalloc.start()
     try:
-        net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+        net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
         step = _training_step(net, Adam(1e-6), X, y)
         step()
         step()
@@ -241,7 +241,8 @@ def scaling(sample_counts: list[int], *, batch: int = 256) -> dict[str, Any]:
         def run(epochs: int) -> float:
             net = tp.build_mlp([8, 32, 32, 1], seed=0)
             start = time.perf_counter()
-            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch, seed=0)
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch,
+                     seed=0)
             return time.perf_counter() - start
 
         one = min(run(1) for _ in range(2))
@@ -271,8 +272,61 @@ def second_order(names: tuple[str, ...] = ("Rat42",)) -> list[dict[str, Any]]:
         result = tp.solve(net, problem.x, problem.y, method="levenberg-marquardt")
         wall = time.perf_counter() - start
         lre = -math.log10(abs(result.rss - problem.certified_rss) / problem.certified_rss)
-        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations, "rss_lre": lre})
+        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations,
+                     "rss_lre": lre})
     return rows
+
+
+def blocked_memory(rows: int, widths: list[int]) -> dict[str, Any]:
+    """Peak memory (tracemalloc) of one blocked Levenberg-Marquardt iteration beyond the data, and its time.
+
+    One iteration: the normal equations over all rows (one Jacobian pass, block by block), one Cholesky
+    step and its trial evaluation. Synthetic data (seeded normal inputs, a smooth target).
+    """
+    from tinyprop.blocked_lm import minimise
+
+    X, y = _synthetic(rows, widths[0], np.float64)
+    net = tp.build_mlp(widths, seed=0)
+    minimise(net.copy(), X[:100], y[:100], regularization=None, tolerance=1e-15, progress_tolerance=0.0,
+             window=10, max_evaluations=2)  # untimed: imports scipy.linalg
+    tracemalloc.start()
+    try:
+        start = time.perf_counter()
+        fit = minimise(net, X, y, regularization=None, tolerance=1e-15, progress_tolerance=0.0, window=10,
+                       max_evaluations=2)
+        seconds = time.perf_counter() - start
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    return {
+        "rows": rows, "n_params": net.n_params, "seconds": seconds, "peak_bytes": peak,
+        "data_bytes": X.nbytes + y.nbytes, "whole_jacobian_bytes": rows * net.n_params * 8,
+        "evaluations": fit.function_evaluations,
+    }
+
+
+def blocked_speed(rows: int, widths: list[int]) -> dict[str, Any]:
+    """Seconds per iteration: the blocked engine against MINPACK (``scipy.optimize.least_squares``), one run.
+
+    Both start from the same synthetic problem. MINPACK's iteration is one Jacobian
+    (``net.jacobian`` over all rows) and its QR factorisation; the blocked one the normal
+    equations over row blocks and a Cholesky step. Each is run for a few evaluations and
+    its time divided by its Jacobian evaluations.
+    """
+    X, y = _synthetic(rows, widths[0], np.float64)
+    net = tp.build_mlp(widths, seed=0)
+    y = y + 0.1 * np.random.default_rng(1).normal(size=y.shape)  # synthetic noise: no exact fit
+    tp.solve(net.copy(), X[:50], y[:50], method="blocked-levenberg-marquardt", max_evaluations=2)  # imports
+    start = time.perf_counter()
+    blocked = tp.solve(net.copy(), X, y, method="blocked-levenberg-marquardt", max_evaluations=6)
+    blocked_s = (time.perf_counter() - start) / blocked.jacobian_evaluations
+    start = time.perf_counter()
+    minpack = tp.solve(net.copy(), X, y, method="levenberg-marquardt", max_evaluations=3)
+    minpack_s = (time.perf_counter() - start) / minpack.jacobian_evaluations
+    return {
+        "rows": rows, "n_params": net.n_params, "blocked_s": blocked_s, "minpack_s": minpack_s,
+        "speedup": minpack_s / blocked_s,
+    }
 
 
 def inference(*, calls: int, rounds: int, c_calls: int) -> dict[str, Any]:
@@ -335,7 +389,8 @@ def _c_latency(net: tp.Network, folder: Path, calls: int) -> float | None:
     (folder / "driver.c").write_text(_C_DRIVER)
     binary = folder / "driver"
     subprocess.run(
-        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
+        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"),
+         str(folder / "bench_model.c"), "-lm"],
         check=True,
         capture_output=True,
     )

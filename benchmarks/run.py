@@ -37,9 +37,13 @@ BARS: dict[str, tuple[str, Any]] = {
     "stacked_small": (">=", 10.0),
     "stacked_medium": (">=", 2.0),
     "c_speedup": (">=", 50.0),
+    "blocked_memory_mb": ("<=", 200.0),
+    "blocked_speedup": (">=", 10.0),
 }
 STACKED_CASES = {"stacked_small": ([4, 16, 16, 1], 64, 32), "stacked_medium": ([8, 64, 64, 1], 16, 32)}
-PARTS = ("floor", "train_epoch", "tax", "light_path", "stacked", "memory", "scaling", "second_order", "inference")
+PARTS = (
+    "floor", "train_epoch", "tax", "light_path", "stacked", "memory", "scaling", "second_order", "blocked_lm", "inference",
+)
 
 
 def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
@@ -87,6 +91,11 @@ def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
     results["scaling"] = measure.scaling([300, 1000] if quick else [1000, 10000, 100000, 1000000])
     starting("second_order")
     results["second_order"] = measure.second_order()
+    starting("blocked_lm")
+    results["blocked_lm"] = {
+        "memory": measure.blocked_memory(10_000 if quick else 1_000_000, [4, 50, 1]),
+        "speed": measure.blocked_speed(400 if quick else 8_000, [8, 10, 1] if quick else [8, 100, 1]),
+    }
     starting("inference")
     results["inference"] = measure.inference(calls=small_calls, rounds=rounds, c_calls=1000 if quick else 2000000)
     results["verdicts"] = verdicts(results)
@@ -137,6 +146,14 @@ def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | N
     for r in results["second_order"]:
         name = f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians, LRE {r['rss_lre']:.1f})"
         rows.append((name, f"{r['seconds'] * 1e3:.1f} ms", None, None))
+    memory, speed = results["blocked_lm"]["memory"], results["blocked_lm"]["speed"]
+    rows.append((f"blocked LM iteration, {memory['rows']:.0e} x {memory['n_params']}: peak extra memory (MiB)",
+                 f"{memory['peak_bytes'] / 2**20:.1f} MiB", memory["peak_bytes"] / 2**20, "blocked_memory_mb"))
+    rows.append(("  (the whole Jacobian would take)", f"{memory['whole_jacobian_bytes'] / 2**20:.0f} MiB", None, None))
+    rows.append(("  time of that iteration", f"{memory['seconds']:.2f} s", None, None))
+    rows.append((f"LM iteration {speed['rows']} x {speed['n_params']}: MINPACK / blocked", f"{speed['blocked_s']:.3f} s",
+                 speed["speedup"], "blocked_speedup"))
+    rows.append(("  MINPACK iteration", f"{speed['minpack_s']:.3f} s", None, None))
     i = results["inference"]
     rows.append(("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, None))
     rows.append(("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"], None))
@@ -182,7 +199,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", metavar="PATH", help="also write the results as JSON to PATH")
     parser.add_argument(
         "--threads", type=int, metavar="N",
-        help="BLAS threads (set before numpy starts, so the benchmark runs in a fresh process); default: BLAS's own choice",
+        help="BLAS threads (set before numpy starts, so the benchmark runs in a fresh process); "
+        "default: BLAS's own choice",
     )
     parser.add_argument(
         "--strict", action="store_true",

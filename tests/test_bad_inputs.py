@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.io import ModelFileError, fingerprint, load, save
+from tinyprop.modelfile import ModelFileError, fingerprint, load, save
 from tinyprop.optim import SGD, Adam
 from tinyprop.registry import register_activation
 from tinyprop.solve import solve
@@ -105,7 +105,8 @@ def snapshot(inputs: Inputs) -> dict[str, Any]:
     return {
         "params": [p.copy() for p in inputs.net.params],
         "user": copy.deepcopy(inputs.user),
-        "optimizer": (state.steps, {k: [a.copy() for a in v] if isinstance(v, list) else np.copy(v) for k, v in state.arrays.items()}),
+        "optimizer": (state.steps, {k: [a.copy() for a in v] if isinstance(v, list) else np.copy(v)
+                                    for k, v in state.arrays.items()}),
         "file": inputs.path.read_bytes(),
     }
 
@@ -147,7 +148,8 @@ def _train(inputs: Inputs, X: Any = None, y: Any = None, **options: Any) -> Any:
 
 def _resume_with_other_batch_size(inputs: Inputs) -> Any:
     other = inputs.net.copy()
-    first = train(other, inputs.X, inputs.y, loss=tp.MeanSquaredError(), optimizer=Adam(lr=0.01), epochs=1, batch_size=4, seed=0)
+    first = train(other, inputs.X, inputs.y, loss=tp.MeanSquaredError(), optimizer=Adam(lr=0.01), epochs=1,
+                  batch_size=4, seed=0)
     return _train(inputs, batch_size=2, seed=0, resume=first.state)
 
 
@@ -197,48 +199,64 @@ ROWS = [
     Row("affine-zero-units", lambda i: tp.Affine(3, 0), ValueError, r"n_out must be a positive integer, got 0"),
     Row("standardize-zero-scale", lambda i: tp.Standardize([0.0, 1.0], [1.0, 0.0]), ValueError,
         r"scale must be positive, got 0\.0 at column 1"),
-    Row("leaky-relu-negative-slope", lambda i: tp.LeakyReLU(-0.1), ValueError, r"slope must be a finite number >= 0, got -0\.1"),
+    Row("leaky-relu-negative-slope", lambda i: tp.LeakyReLU(-0.1), ValueError,
+        r"slope must be a finite number >= 0, got -0\.1"),
     Row("predict-wrong-columns", lambda i: i.net.predict(i.X_two_columns), ValueError,
         r"X must have shape \(n_samples, 3\), got shape \(8, 2\)"),
-    Row("predict-nan", lambda i: i.net.predict(i.X_nan), ValueError, r"X has a non-finite value \(nan\) at row 2, column 1"),
-    Row("predict-one-sample-as-1d", lambda i: i.net.predict(i.X[0]), ValueError, r"for one sample use X\.reshape\(1, -1\)"),
-    Row("predict-text", lambda i: i.net.predict([["a", "b", "c"]]), TypeError, r"X must hold real numbers .*got dtype <U1"),
+    Row("predict-nan", lambda i: i.net.predict(i.X_nan), ValueError,
+        r"X has a non-finite value \(nan\) at row 2, column 1"),
+    Row("predict-one-sample-as-1d", lambda i: i.net.predict(i.X[0]), ValueError,
+        r"for one sample use X\.reshape\(1, -1\)"),
+    Row("predict-text", lambda i: i.net.predict([["a", "b", "c"]]), TypeError,
+        r"X must hold real numbers .*got dtype <U1"),
     Row("set-vector-wrong-length", lambda i: i.net.set_vector(i.theta_short), ValueError,
         r"theta must have shape \(26,\), got shape \(3,\)"),
-    Row("set-vector-nan", lambda i: i.net.set_vector(i.theta_nan), ValueError, r"theta has a non-finite value \(nan\) at entry 4"),
+    Row("set-vector-nan", lambda i: i.net.set_vector(i.theta_nan), ValueError,
+        r"theta has a non-finite value \(nan\) at entry 4"),
     Row("backward-wrong-d-out", lambda i: i.net.backward(i.net.forward(i.X)[1], i.d_out_wrong), ValueError,
         r"d_out must have the output's shape \(8, 2\), got shape \(8, 3\)"),
     # ------------------------------------------------------------ train
     Row("train-targets-wrong-rows", lambda i: _train(i, y=i.y_seven_rows), ValueError,
         r"y must have shape \(8, 2\) to match the 8 samples and 2 network outputs, got shape \(7, 2\)"),
-    Row("train-targets-infinite", lambda i: _train(i, y=i.y_nan), ValueError, r"y has a non-finite value \(inf\) at row 5, column 0"),
-    Row("train-inputs-nan", lambda i: _train(i, X=i.X_nan), ValueError, r"X has a non-finite value \(nan\) at row 2, column 1"),
-    Row("train-batch-size-zero", lambda i: _train(i, batch_size=0), ValueError, r"batch_size must be a positive integer, got 0"),
-    Row("train-epochs-not-integer", lambda i: _train(i, epochs=2.5), TypeError, r"epochs must be a positive integer, got 2\.5"),
+    Row("train-targets-infinite", lambda i: _train(i, y=i.y_nan), ValueError,
+        r"y has a non-finite value \(inf\) at row 5, column 0"),
+    Row("train-inputs-nan", lambda i: _train(i, X=i.X_nan), ValueError,
+        r"X has a non-finite value \(nan\) at row 2, column 1"),
+    Row("train-batch-size-zero", lambda i: _train(i, batch_size=0), ValueError,
+        r"batch_size must be a positive integer, got 0"),
+    Row("train-epochs-not-integer", lambda i: _train(i, epochs=2.5), TypeError,
+        r"epochs must be a positive integer, got 2\.5"),
     Row("train-loss-as-text", lambda i: _train(i, loss="mse"), TypeError, r"loss must be a tinyprop Loss .*got str"),
-    Row("train-optimizer-missing", lambda i: _train(i, optimizer=None), TypeError, r"optimizer must be a tinyprop Optimizer .*got NoneType"),
+    Row("train-optimizer-missing", lambda i: _train(i, optimizer=None), TypeError,
+        r"optimizer must be a tinyprop Optimizer .*got NoneType"),
     Row("train-patience-without-validation", lambda i: _train(i, patience=3), ValueError,
         r"patience \(early stopping\) needs validation data"),
     Row("train-validation-wrong-columns", lambda i: _train(i, validation=(i.X_val_wrong, i.y[:4])), ValueError,
         r"validation X must have shape \(n_samples, 3\), got shape \(4, 2\)"),
-    Row("train-negative-l2", lambda i: _train(i, l2=-1e-3), ValueError, r"l2 must be a finite number in \[0\.0, inf\], got -0\.001"),
-    Row("train-negative-seed", lambda i: _train(i, seed=-1), ValueError, r"seed must be None or an integer >= 0, got -1"),
+    Row("train-negative-l2", lambda i: _train(i, l2=-1e-3), ValueError,
+        r"l2 must be a finite number in \[0\.0, inf\], got -0\.001"),
+    Row("train-negative-seed", lambda i: _train(i, seed=-1), ValueError,
+        r"seed must be None or an integer >= 0, got -1"),
     Row("train-resume-other-settings", _resume_with_other_batch_size, ValueError,
         r"resume state does not match this training run \(batch_size: state has 4, this call 2\)"),
     Row("sgd-negative-learning-rate", lambda i: SGD(lr=-0.1), ValueError, r"lr must be"),
     # ------------------------------------------------------------ solve
     Row("solve-unknown-method", lambda i: solve(i.net, i.X, i.y, method="gauss-newton"), ValueError,
-        r"method must be one of \('levenberg-marquardt', 'lbfgs'\), got 'gauss-newton'"),
+        r"method must be one of \('levenberg-marquardt', 'blocked-levenberg-marquardt', 'lbfgs'\) or None, "
+        r"got 'gauss-newton'"),
     Row("solve-too-few-residuals", lambda i: solve(i.net, i.X, i.y), ValueError,
         r"needs at least as many residuals as parameters: 16 residuals .* for 26 parameters; use method='lbfgs'"),
-    Row("solve-zero-tolerance", lambda i: solve(i.net, i.X, i.y, method="lbfgs", tolerance=0.0), ValueError, r"tolerance must be a finite number in \("),
+    Row("solve-zero-tolerance", lambda i: solve(i.net, i.X, i.y, method="lbfgs", tolerance=0.0), ValueError,
+        r"tolerance must be a finite number in \("),
     Row("solve-targets-wrong-rows", lambda i: solve(i.net, i.X, i.y_seven_rows, method="lbfgs"), ValueError,
         r"y must have shape \(8, 2\)"),
-    Row("solve-not-a-network", lambda i: solve([i.net], i.X, i.y), TypeError, r"net must be a tinyprop Network, got list"),
+    Row("solve-not-a-network", lambda i: solve([i.net], i.X, i.y), TypeError,
+        r"net must be a tinyprop Network, got list"),
     # ------------------------------------------------------------ check_*
     Row("check-gradient-loss-class", lambda i: tp.check_gradient(i.net, i.X, i.y, tp.SquaredError), TypeError,
         r"loss must be a tinyprop Loss \(e\.g\. tp\.SquaredError\(\)\), got the class SquaredError; pass an instance"),
-    Row("check-gradient-targets-wrong-shape", lambda i: tp.check_gradient(i.net, i.X, i.y_seven_rows, tp.SquaredError()), ValueError,
+    Row("check-gradient-targets-wrong-shape", lambda i: tp.check_gradient(i.net, i.X, i.y_seven_rows,
+                                                                          tp.SquaredError()), ValueError,
         r"y must have shape \(8, 2\)"),
     Row("check-gradient-exactly-on-a-kink", _kink, ValueError, r"kink"),
     Row("check-activation-class-not-instance", lambda i: tp.check_activation(tp.Tanh), TypeError,
@@ -246,21 +264,28 @@ ROWS = [
     Row("check-activation-nan-points", lambda i: tp.check_activation(tp.Tanh(), points=i.points_nan), ValueError,
         r"points must be a non-empty list of finite numbers"),
     # ------------------------------------------------------------ save, load, fingerprint
-    Row("save-unregistered-activation", lambda i: save(tp.Network([tp.Affine(1, 1), NotRegistered()], seed=0), i.path), ModelFileError,
-        r"layer 1 is the activation .*NotRegistered, which is not registered; call tinyprop\.registry\.register_activation"),
+    Row("save-unregistered-activation", lambda i: save(tp.Network([tp.Affine(1, 1), NotRegistered()], seed=0), i.path),
+        ModelFileError,
+        r"layer 1 is the activation .*NotRegistered, which is not registered; "
+        r"call tinyprop\.registry\.register_activation"),
     Row("save-tuple-in-metadata", lambda i: save(i.net, i.path, metadata=i.metadata_tuple), ModelFileError,
         r"metadata\['hidden'\] has type tuple, which JSON cannot hold \(use a list\)"),
     Row("save-array-in-metadata", lambda i: save(i.net, i.path, metadata=i.metadata_array), ModelFileError,
         r"metadata\['mean'\] has type ndarray, which JSON cannot hold \(convert it with .*\.tolist\(\)\)"),
-    Row("save-not-a-network", lambda i: save(i.net.params, i.path), TypeError, r"expected a tinyprop Network, got list"),
+    Row("save-not-a-network", lambda i: save(i.net.params, i.path), TypeError,
+        r"expected a tinyprop Network, got list"),
     Row("save-into-missing-folder", lambda i: save(i.net, i.path.parent / "missing" / "m.npz"), FileNotFoundError,
         r"cannot write .*missing/m\.npz: the folder does not exist"),
     Row("load-missing-file", lambda i: load(i.path.with_name("absent.npz")), FileNotFoundError, r"absent\.npz"),
-    Row("load-text-file", _write_text, ModelFileError, r"notes\.npz: not a tinyprop archive: it does not start with a ZIP signature"),
-    Row("load-tampered-weights", _tampered, ModelFileError, r"tampered\.npz: the archive is damaged or truncated \(BadZipFile: Bad CRC-32 for file 'layer0\.weight\.npy'\)"),
+    Row("load-text-file", _write_text, ModelFileError,
+        r"notes\.npz: not a tinyprop archive: it does not start with a ZIP signature"),
+    Row("load-tampered-weights", _tampered, ModelFileError,
+        r"tampered\.npz: the archive is damaged or truncated "
+        r"\(BadZipFile: Bad CRC-32 for file 'layer0\.weight\.npy'\)"),
     Row("load-unknown-activation", _names_unknown_activation, ModelFileError,
         r"names the activation 'test_bad_inputs\.Halving', which is not registered in this program"),
-    Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError, r"expected a tinyprop Network, got str"),
+    Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError,
+        r"expected a tinyprop Network, got str"),
     Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError,
         r"seed must be None or an integer >= 0, got -1"),
     Row("network-fractional-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=1.5), TypeError,

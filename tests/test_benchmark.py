@@ -14,7 +14,7 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
     printed, progress = capsys.readouterr()
     results = json.loads(path.read_text())
     for key in ("machine", "floor", "train_epoch", "tax", "light_path", "stacked", "memory", "scaling", "second_order",
-                "inference", "verdicts"):
+                "blocked_lm", "inference", "verdicts"):
         assert key in results
     for row in results["train_epoch"] + results["light_path"]:
         assert row["ratio"] > 0
@@ -26,8 +26,12 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
     for row in results["floor"]:  # the step is timed against the floor alone and the floor plus the update
         assert row["floor_update_s"] > 0 and row["ratio_floor_update"] > 0
     assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
-    assert progress.splitlines()[0] == "[1/9] measuring floor ..." and "[9/9] measuring inference" in progress
-    assert "floor ratio" in printed and "floor + Adam update" in printed and "abstraction tax" in printed and "scaling exponent" in printed
+    assert progress.splitlines()[0] == "[1/10] measuring floor ..." and "[10/10] measuring inference" in progress
+    memory, speed = results["blocked_lm"]["memory"], results["blocked_lm"]["speed"]
+    assert 0 < memory["peak_bytes"] and memory["evaluations"] >= 2 and speed["speedup"] > 0
+    for heading in ("floor ratio", "floor + Adam update", "abstraction tax", "scaling exponent",
+                    "blocked LM iteration", "MINPACK / blocked"):
+        assert heading in printed
 
 
 def test_table_marks_a_missing_compiler():

@@ -114,4 +114,4 @@ def test_bad_checkpoint_arguments():
         tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=tp.Adam(0.01), epochs=1, batch_size=16,
                  checkpoint="x.ckpt", checkpoint_every=0)
     with pytest.raises(TypeError, match="TrainingState"):
-        tp.save_checkpoint("x.ckpt", {"epoch": 1})
+        tp.save_checkpoint({"epoch": 1}, "x.ckpt")

@@ -7,7 +7,6 @@ command adds nothing hidden. Data here are synthetic (a smooth formula of our ow
 
 from __future__ import annotations
 
-import io
 import json
 import math
 import shutil
@@ -20,10 +19,8 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.cli import main
-from tinyprop.cli._common import EpochProgress
+from tinyprop.layers import ColumnScaling
 from tinyprop.registry import register_activation
-from tinyprop.train import EpochInfo
-from fake_terminal import FakeTerminal
 
 INPUTS = ["x0", "x1", "x2"]
 TARGETS = ["y1", "y2"]
@@ -61,7 +58,7 @@ def demo_model(tmp_path_factory) -> Path:
     path = folder / "synthetic.csv"
     write_synthetic_csv(path)
     result = run_cli("train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--hidden", "6",
-                     "--epochs", "5", "--out", str(folder / "m.npz"), "--quiet")
+                     "--method", "mini-batch", "--epochs", "5", "--out", str(folder / "m.npz"), "--quiet")
     assert result.returncode == 0, result.stderr
     return folder / "m.npz"
 
@@ -73,8 +70,9 @@ def library_split(n: int, seed: int, validation: float, test: float) -> tuple[np
     return order[n_test + n_val:], order[n_test:n_test + n_val], order[:n_test]
 
 
-def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation, seed: int) -> tp.Network:
-    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], hidden=activation, seed=seed)
+def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation,
+                    seed: int) -> tp.Network:
+    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], activation=activation, seed=seed)
     return tp.Network([tp.Standardize.from_data(X), *mlp.layers, tp.Unstandardize.from_data(Y)], init=None)
 
 
@@ -83,7 +81,7 @@ def assert_same_network(a: tp.Network, b: tp.Network) -> None:
     for p, q in zip(a.params, b.params):
         assert p.dtype == q.dtype and np.array_equal(p, q)
     for la, lb in zip(a.layers, b.layers):
-        if isinstance(la, tp.ColumnScaling):
+        if isinstance(la, ColumnScaling):
             assert np.array_equal(la.mean, lb.mean) and np.array_equal(la.scale, lb.scale)
 
 
@@ -103,7 +101,8 @@ def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimiz
     model = tmp_path / "cli.npz"
     result = run_cli(
         "train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--hidden", "7,5",
-        "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01", "--seed", str(seed),
+        "--method", "mini-batch", "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01",
+        "--seed", str(seed),
         "--validation-fraction", "0.2", "--test-fraction", "0.1", "--out", str(model), "--quiet", *options,
     )
     assert result.returncode == 0, result.stderr
@@ -129,6 +128,26 @@ def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimiz
         assert key in report
 
 
+def test_train_defaults_are_the_library_recipe_bit_for_bit(csv_file, tmp_path):
+    # `tinyprop train` with every default = fit_tabular_regression on the training rows of the documented split
+    path, X, Y = csv_file
+    model = tmp_path / "auto.npz"
+    result = run_cli("train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--out", str(model), "--quiet")
+    assert result.returncode == 0, result.stderr
+    tr, _, _ = library_split(len(X), 0, 0.15, 0.15)
+    net, recipe = tp.fit_tabular_regression(X[tr], Y[tr], seed=0)
+    assert recipe.method == "evidence-lm" and len(recipe.seeds) == 1
+    assert_same_network(tp.load(model), net)
+    report = json.loads((tmp_path / "auto.report.json").read_text(encoding="utf-8"))
+    assert report["fit"]["method"] == "auto" and report["fit"]["recipe_method"] == "evidence-lm"
+    assert report["fit"]["reason"] == recipe.reason and "affordable" in recipe.reason
+    assert report["uncertainty"]["parameters"]["posterior"] is True
+    assert len(report["uncertainty"]["parameters"]["noise_sd"]) == 2
+    stored = tp.load_model_file(model).metadata["training"]["fit"]
+    assert stored == {"recipe_method": "evidence-lm", "reason": recipe.reason}
+    assert "method chosen: evidence-lm" in result.stdout and "regularised fit: noise sd per target" in result.stdout
+
+
 def test_train_by_levenberg_marquardt_reproduces_solve_and_reports_uncertainty(csv_file, tmp_path):
     path, X, Y = csv_file
     model = tmp_path / "lm.npz"
@@ -148,7 +167,8 @@ def test_train_by_levenberg_marquardt_reproduces_solve_and_reports_uncertainty(c
 
 def test_train_progress_has_no_terminal_codes_when_stderr_is_a_pipe(csv_file, tmp_path):
     path, _, _ = csv_file
-    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--epochs", "20",
+    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--method", "mini-batch",
+                     "--epochs", "20",
                      "--hidden", "3", "--out", str(tmp_path / "m.npz"))
     assert result.returncode == 0, result.stderr
     assert "epoch 1/20" in result.stderr and "epoch 20/20" in result.stderr
@@ -279,32 +299,3 @@ def test_every_public_name_is_in_the_api_reference():
     text = (Path(__file__).resolve().parents[1] / "docs" / "api.md").read_text(encoding="utf-8")
     missing = [name for name in tp.__all__ if f"`{name}`" not in text]
     assert not missing, f"docs/api.md does not describe {missing}"
-
-
-def _epoch(epoch: int, epochs: int) -> EpochInfo:
-    return EpochInfo(epoch=epoch, epochs=epochs, training_loss=0.5 / epoch, validation_loss=None, best_epoch=None,
-                     elapsed=0.01 * epoch, capture=lambda: None)
-
-
-def test_progress_rewrites_one_line_on_a_terminal_at_most_ten_times_a_second():
-    stream, now = FakeTerminal(), [0.0]
-    progress = EpochProgress(stream, clock=lambda: now[0])
-    for epoch in range(1, 101):
-        now[0] = epoch * 0.004  # 250 epochs a second
-        progress(_epoch(epoch, 100))
-    progress.finish()
-    text = stream.getvalue()
-    assert text.count("\r") == 5  # epochs 1, 26, 51, 76 (every 0.1 s) and the last one
-    assert text.endswith("remaining ~0.0 s\x1b[K\n")
-    assert "epoch 100/100  training loss 0.005  elapsed 1.0 s" in text
-
-
-def test_progress_prints_about_ten_plain_lines_elsewhere():
-    stream = io.StringIO()
-    progress = EpochProgress(stream)
-    for epoch in range(1, 101):
-        progress(_epoch(epoch, 100))
-    progress.finish()
-    lines = stream.getvalue().splitlines()
-    assert [line.split()[1] for line in lines] == ["1/100"] + [f"{e}/100" for e in range(10, 101, 10)]
-    assert "\r" not in stream.getvalue() and "\x1b" not in stream.getvalue()

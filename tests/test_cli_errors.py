@@ -65,7 +65,8 @@ CASES = [
     ("too-few-rows-for-lm", ["train", "good.csv", "--targets", "y", "--method", "levenberg-marquardt",
                              "--test-fraction", "0", "--validation-fraction", "0"], 1,
      ["fitting failed", "Levenberg-Marquardt needs at least as many residuals as parameters"]),
-    ("diverging-learning-rate", ["train", "good.csv", "--targets", "y", "--optimizer", "sgd", "--learning-rate",
+    ("diverging-learning-rate", ["train", "good.csv", "--targets", "y", "--method", "mini-batch",
+                                 "--optimizer", "sgd", "--learning-rate",
                                  "1e200", "--schedule", "constant", "--test-fraction", "0",
                                  "--validation-fraction", "0", "--quiet"], 1, ["fitting failed", "diverged"]),
     # (--quiet: the running training loss does not look at the end-of-epoch weights, so this run
@@ -116,7 +117,8 @@ def folder(tmp_path_factory) -> Path:
         (folder / name).write_text(text, encoding="utf-8")
     (folder / "latin1.csv").write_bytes("x1,x2,y\n1,2,3\n4,5,6 \xb0C\n".encode("latin-1"))
     net = tp.Network([tp.Affine(2, 3), tp.Tanh(), tp.Affine(3, 1)], seed=0)
-    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}], "outputs": [{"name": "v"}]})
+    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}],
+                                                 "outputs": [{"name": "v"}]})
     _tampered(folder / "model.npz", folder / "tampered.npz")
     return folder
 

@@ -1,4 +1,4 @@
-"""Training checkpoints: a :class:`~tinyprop.TrainingState` in a pickle-free file, written atomically.
+"""Training state and checkpoints: :class:`TrainingState` and its pickle-free file, written atomically.
 
 A checkpoint holds everything :func:`tinyprop.train` needs to continue a run
 bit for bit: the weights, the optimizer's state arrays and step count, the
@@ -18,34 +18,167 @@ the state; :func:`tinyprop.train` then checks it against the run it resumes.
 >>> result = tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=tp.Adam(1e-2),
 ...                   epochs=3, batch_size=8, seed=0)
 >>> path = os.path.join(tempfile.mkdtemp(), "run.ckpt")
->>> tp.save_checkpoint(path, result.state)
+>>> tp.save_checkpoint(result.state, path)
 >>> tp.load_checkpoint(path).epoch
 3
 """
 
 from __future__ import annotations
 
+import math
 import os
+from dataclasses import dataclass
 from typing import Any
 
-from .archive import ArchiveError, read_archive, write_archive
-from .train import TrainingState
+import numpy as np
 
-__all__ = ["CheckpointError", "save_checkpoint", "load_checkpoint"]
+from .archive import ArchiveError, read_archive, write_archive
+from .optim import OptimizerState
+
+__all__ = ["TrainingState", "CheckpointError", "save_checkpoint", "load_checkpoint"]
 
 _KIND = "tinyprop checkpoint"
+
+
+@dataclass
+class TrainingState:
+    """Everything needed to continue a training run exactly where it stopped.
+
+    ``epoch`` epochs are complete. ``weights`` are copies of ``net.params``;
+    ``optimizer`` the optimizer's state; ``rng`` the bit generator state of
+    the shuffling generator (JSON-able); ``training_loss`` and
+    ``validation_loss`` the history; ``best_epoch``, ``best_loss``,
+    ``best_weights`` and ``epochs_since_best`` the early-stopping bookkeeping
+    (``None`` without validation data); ``settings`` the run's settings, which
+    a resumed run must match.
+    """
+
+    epoch: int
+    weights: list[np.ndarray]
+    optimizer: OptimizerState
+    rng: dict[str, Any]
+    training_loss: list[float]
+    validation_loss: list[float] | None
+    best_epoch: int | None
+    best_loss: float | None
+    best_weights: list[np.ndarray] | None
+    epochs_since_best: int
+    settings: dict[str, Any]
+
+    def to_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """Split into ``(scalars, arrays)``: a JSON-able dict and a dict of named arrays.
+
+        Array names: ``"weights/<i>"``, ``"best_weights/<i>"`` and
+        ``"optimizer/<slot>/<i>"``. The arrays are the state's own (not copies).
+        """
+        scalars = {
+            "format": "tinyprop training state",
+            "version": 1,
+            "epoch": self.epoch,
+            "n_weights": len(self.weights),
+            "optimizer": {
+                "kind": self.optimizer.kind,
+                "settings": self.optimizer.settings,
+                "steps": self.optimizer.steps,
+            },
+            "rng": self.rng,
+            "training_loss": list(self.training_loss),
+            "validation_loss": None if self.validation_loss is None else list(self.validation_loss),
+            "best_epoch": self.best_epoch,
+            "best_loss": self.best_loss,
+            "epochs_since_best": self.epochs_since_best,
+            "settings": self.settings,
+        }
+        arrays = {f"weights/{i}": w for i, w in enumerate(self.weights)}
+        if self.best_weights is not None:
+            arrays.update({f"best_weights/{i}": w for i, w in enumerate(self.best_weights)})
+        arrays.update({f"optimizer/{name}": a for name, a in self.optimizer.arrays.items()})
+        return scalars, arrays
+
+    @classmethod
+    def from_parts(cls, scalars: dict[str, Any], arrays: dict[str, np.ndarray]) -> "TrainingState":
+        """Rebuild a state from :meth:`to_parts` output.
+
+        Raises ``ValueError`` naming the first missing, unexpected or
+        ill-typed entry. Deeper consistency (shapes against the network,
+        settings against the run) is checked when :func:`train` resumes.
+        """
+        if not isinstance(scalars, dict) or not isinstance(arrays, dict):
+            raise TypeError(
+                f"scalars and arrays must be dicts, got {type(scalars).__name__} and "
+                f"{type(arrays).__name__}"
+            )
+        try:
+            if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
+                raise ValueError(
+                    f"not a version-1 tinyprop training state: {scalars['format']!r} "
+                    f"{scalars['version']!r}"
+                )
+            n = _whole(scalars["n_weights"], "n_weights")
+            weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
+            has_best = "best_weights/0" in arrays
+            best = [np.asarray(arrays[f"best_weights/{i}"]) for i in range(n)] if has_best else None
+            prefix = "optimizer/"
+            optimizer_scalars = _typed(scalars["optimizer"], "optimizer", dict)
+            optimizer = OptimizerState(
+                kind=_typed(optimizer_scalars["kind"], "optimizer kind", str),
+                settings=_typed(optimizer_scalars["settings"], "optimizer settings", dict),
+                steps=_whole(optimizer_scalars["steps"], "optimizer steps"),
+                arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
+            )
+            expected = {f"weights/{i}" for i in range(n)}
+            expected |= {f"best_weights/{i}" for i in range(n)} if has_best else set()
+            extra = {k for k in arrays if not k.startswith(prefix)} - expected
+            if extra:
+                raise ValueError(f"unexpected arrays {sorted(extra)}")
+            validation = scalars["validation_loss"]
+            return cls(
+                epoch=_whole(scalars["epoch"], "epoch"),
+                weights=weights,
+                optimizer=optimizer,
+                rng=_typed(scalars["rng"], "rng", dict),
+                training_loss=_losses(scalars["training_loss"], "training_loss"),
+                validation_loss=None if validation is None else _losses(validation, "validation_loss"),
+                best_epoch=None if scalars["best_epoch"] is None else _whole(scalars["best_epoch"], "best_epoch"),
+                best_loss=None if scalars["best_loss"] is None else _losses([scalars["best_loss"]], "best_loss")[0],
+                best_weights=best,
+                epochs_since_best=_whole(scalars["epochs_since_best"], "epochs_since_best"),
+                settings=_typed(scalars["settings"], "settings", dict),
+            )
+        except KeyError as exc:
+            raise ValueError(f"training state is missing {exc}") from None
+
+
+def _whole(value: Any, name: str) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
+        raise ValueError(f"training state {name} must be an integer >= 0, got {value!r}")
+    return int(value)
+
+
+def _typed(value: Any, name: str, kind: type) -> Any:
+    if not isinstance(value, kind):
+        raise ValueError(f"training state {name} must be a {kind.__name__}, got {type(value).__name__}")
+    return value
+
+
+def _losses(values: Any, name: str) -> list[float]:
+    if not isinstance(values, list) or not all(
+        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in values
+    ):
+        raise ValueError(f"training state {name} must be a list of finite numbers, got {values!r}")
+    return [float(v) for v in values]
 
 
 class CheckpointError(ArchiveError):
     """A checkpoint file is unreadable, damaged, tampered with, or not a checkpoint."""
 
 
-def save_checkpoint(path: str | os.PathLike[str], state: TrainingState) -> None:
+def save_checkpoint(state: TrainingState, path: str | os.PathLike[str]) -> None:
     """Write ``state`` to ``path`` atomically (a previous file there survives any failure)."""
     if not isinstance(state, TrainingState):
         raise TypeError(f"state must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
     scalars, arrays = state.to_parts()
-    if any(v is not None and not _finite(v) for v in _losses(scalars)):
+    if any(v is not None and not math.isfinite(v) for v in _all_losses(scalars)):
         raise CheckpointError(f"{os.fspath(path)}: the state holds a non-finite loss; a diverged run cannot be resumed")
     write_archive(path, arrays, {"kind": _KIND, **scalars})
 
@@ -66,9 +199,6 @@ def load_checkpoint(path: str | os.PathLike[str]) -> TrainingState:
         raise CheckpointError(f"{where}: not a usable training state: {exc}") from None
 
 
-def _losses(scalars: dict[str, Any]) -> list[Any]:
+def _all_losses(scalars: dict[str, Any]) -> list[Any]:
     return [*scalars["training_loss"], *(scalars["validation_loss"] or []), scalars["best_loss"]]
 
-
-def _finite(value: Any) -> bool:
-    return isinstance(value, (int, float)) and value == value and abs(value) != float("inf")

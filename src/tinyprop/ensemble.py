@@ -11,18 +11,12 @@ For members ``f_1 .. f_M`` and an input ``x``::
 networks trained alike disagree, not the noise in the targets.
 
 An ensemble is saved as one archive (:mod:`tinyprop.archive`): every member's
-model file (:func:`tinyprop.io.save`, ``docs/model-file.md``) with its arrays
+model file (:func:`tinyprop.modelfile.save`, ``docs/model-file.md``) with its arrays
 renamed ``member<k>/<name>`` and its manifest in the list ``"members"``; each
-member is verified on loading exactly as :func:`tinyprop.io.load_model_file`
+member is verified on loading exactly as :func:`tinyprop.modelfile.load_model_file`
 verifies a model file. ``docs/sweeps.md`` gives the layout.
 
-Exported inference code computes the mean: every member is exported with
-:func:`tinyprop.export.export_c` / :func:`tinyprop.export.export_python` under
-its own name, and a small generated wrapper adds the members' outputs in
-member order and divides by ``M``, as :meth:`Ensemble.predict` does.
-The networks are not merged into one: the mean of networks with a shared
-input layer is itself one network only for a single hidden layer, so the
-wrapper is the general form.
+Exported inference code computes the mean (:mod:`tinyprop.export.ensemble`).
 
 Not certified for safety functions: validation against the applicable
 functional-safety standards, local codes and qualified review is the user's
@@ -31,23 +25,19 @@ responsibility.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import os
-import sys
-import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ._json import canonical_json, json_copy, sha256_hex
 from ._validate import as_samples
 from .archive import ArchiveError, check_json, read_archive, write_archive
-from .export import agreement_bound, export_c, export_python
-from .export._header import CAUTION
-from .export._text import check_name, output_directory, write_source
-from .io import ModelFileError, fingerprint, model_from_parts, model_parts
+from .export import agreement_bound
+from .export.ensemble import export_ensemble_c, export_ensemble_python
+from .modelfile import ModelFileError, fingerprint, model_from_parts, model_parts
 from .network import Network
 
 __all__ = ["Ensemble"]
@@ -57,8 +47,6 @@ ENSEMBLE_FORMAT_VERSION = 1
 FINGERPRINT_FORMAT = "tinyprop-ensemble-fingerprint"
 FINGERPRINT_VERSION = 1
 _MANIFEST_KEYS = ("format", "format_version", "tinyprop_version", "n_members", "fingerprint", "members", "metadata")
-_CTYPES = {"float32": "float", "float64": "double"}
-_WIDTH = 86
 
 
 class Ensemble:
@@ -72,7 +60,7 @@ class Ensemble:
     >>> import numpy as np, tinyprop as tp
     >>> members = [tp.Network([tp.Affine(1, 1)], init=None) for _ in range(2)]
     >>> members[0].set_vector([1.0, 0.0]); members[1].set_vector([3.0, 0.0])
-    >>> mean, spread = Ensemble(members).predict_with_spread([[2.0]])
+    >>> mean, spread = tp.Ensemble(members).predict_with_spread([[2.0]])
     >>> float(mean[0, 0]), float(spread[0, 0])  # outputs 2 and 6
     (4.0, 2.0)
     """
@@ -98,7 +86,7 @@ class Ensemble:
             check_json(dict(metadata or {}), "metadata")
         except ArchiveError as exc:
             raise ValueError(str(exc)) from None
-        self.metadata: dict[str, Any] = json.loads(json.dumps(dict(metadata or {})))  # a copy
+        self.metadata: dict[str, Any] = json_copy(dict(metadata or {}))
         self.members: tuple[Network, ...] = tuple(net.copy() for net in networks)
 
     @property
@@ -158,7 +146,8 @@ class Ensemble:
 
         (``|y_k| + b_k`` bounds member ``k``'s output in either evaluation; the
         ``u`` term is the rounding of the division), plus one smallest
-        subnormal per rounding, times 1.01 for second-order terms. This is the tolerance for comparing exported code with
+        subnormal per rounding, times 1.01 for second-order terms. This is the
+        tolerance for comparing exported code with
         :meth:`predict` of ``Ensemble([m.copy(dtype) for m in members])``.
         """
         dtype = np.dtype(self.dtype if dtype is None else dtype)
@@ -180,19 +169,18 @@ class Ensemble:
 
         The canonical JSON (sorted keys, no spaces, ASCII) of
         ``{"format": "tinyprop-ensemble-fingerprint", "version": 1, "members": [...]}``
-        with each member's :func:`tinyprop.io.fingerprint`. Metadata is not included.
+        with each member's :func:`tinyprop.modelfile.fingerprint`. Metadata is not included.
         """
         description = {"format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION,
                        "members": [fingerprint(net) for net in self.members]}
-        text = json.dumps(description, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
-        return hashlib.sha256(text.encode("ascii")).hexdigest()
+        return sha256_hex(canonical_json(description))
 
     def save(self, path: str | os.PathLike[str]) -> str:
         """Write the ensemble (members and metadata) to one file, atomically; return its fingerprint.
 
-        Every member becomes what :func:`tinyprop.io.save` would write
-        (:func:`tinyprop.io.model_parts`: same checks, same
-        :class:`~tinyprop.io.ModelFileError`); the file is written by
+        Every member becomes what :func:`tinyprop.modelfile.save` would write
+        (:func:`tinyprop.modelfile.model_parts`: same checks, same
+        :class:`~tinyprop.modelfile.ModelFileError`); the file is written by
         :func:`tinyprop.archive.write_archive`, so a failure leaves an earlier
         file at ``path`` as it was.
         """
@@ -224,7 +212,7 @@ class Ensemble:
     def load(cls, path: str | os.PathLike[str]) -> "Ensemble":
         """Read an ensemble file, verify every member and the ensemble fingerprint, rebuild it.
 
-        Raises :class:`~tinyprop.io.ModelFileError` naming the file and what is
+        Raises :class:`~tinyprop.modelfile.ModelFileError` naming the file and what is
         wrong, or ``OSError`` if it cannot be read.
         """
         try:
@@ -274,57 +262,12 @@ class Ensemble:
     def export_python(
         self, path: str | os.PathLike[str], *, name: str = "ensemble", metadata: Mapping[str, Any] | None = None
     ) -> Path:
-        """Write the Python package ``<path>/<name>/`` and return its folder.
+        """Write the Python package ``<path>/<name>/`` computing the mean; return its folder.
 
-        ``member<k>.py`` is :func:`~tinyprop.export.export_python` of member
-        ``k`` (``metadata``, the exporters' input/output names and units, goes
-        into each); ``__init__.py`` defines ``predict(x)``, the mean of the
-        members' ``predict`` in member order, in Python floats, and the
-        constants ``FINGERPRINT`` (:meth:`fingerprint`), ``MEMBER_FINGERPRINTS``,
-        ``N_INPUTS``, ``N_OUTPUTS``, ``N_MEMBERS``. Standard library only;
-        ``from <name> import predict`` with ``<path>`` on ``sys.path``.
+        See :func:`tinyprop.export.ensemble.export_ensemble_python`.
         """
-        name = check_name(name)
-        if name in sys.stdlib_module_names:
-            raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
-        package = output_directory(path) / name
-        package.mkdir(exist_ok=True)
-        for index, net in enumerate(self.members):
-            export_python(net, package, name=f"member{index}", metadata=metadata)
-        m = self.n_members
-        comment = self._header_lines(
-            f"{name}: the mean of {m} neural networks (an ensemble) in plain Python, generated by tinyprop",
-            [f"member{k}.py" for k in range(m)],
-            ["Interface:", f"  from {name} import predict",
-             f"  y = predict(x)  # x: N_INPUTS = {self.n_in} numbers; y: a list of N_OUTPUTS = {self.n_out} floats",
-             "Arithmetic: Python float (IEEE 754 binary64): y[k] = (0.0 + y_0[k] + ... + y_M-1[k]) / M,",
-             "members in order. Needs only the standard library (math)."],
-        )
-        member_fingerprints = "".join(f"\n    {fingerprint(net)!r}," for net in self.members)
-        lines = [f"# {line}".rstrip() for line in comment] + [
-            '"""The mean of the member networks\' outputs: call predict(x). See the comment above."""',
-            "",
-            *[f"from .member{k} import predict as _predict_{k}" for k in range(m)],
-            "",
-            f"FINGERPRINT = {self.fingerprint()!r}",
-            f"MEMBER_FINGERPRINTS = ({member_fingerprints}\n)",
-            f"TINYPROP_VERSION = {_version()!r}",
-            f"N_INPUTS = {self.n_in}",
-            f"N_OUTPUTS = {self.n_out}",
-            f"N_MEMBERS = {m}",
-            "_MEMBERS = (" + ", ".join(f"_predict_{k}" for k in range(m)) + ",)",
-            "",
-            "",
-            'def predict(x: "list[float]") -> "list[float]":',
-            '    """The mean of the members\' outputs for one sample x (N_INPUTS numbers), as N_OUTPUTS floats."""',
-            "    total = [0.0] * N_OUTPUTS",
-            "    for member in _MEMBERS:",
-            "        for k, value in enumerate(member(x)):",
-            "            total[k] += value",
-            "    return [value / N_MEMBERS for value in total]",
-        ]
-        write_source(package, "__init__.py", "\n".join(lines) + "\n")
-        return package
+        return export_ensemble_python(self.members, path, name=name, metadata=metadata,
+                                      ensemble_fingerprint=self.fingerprint())
 
     def export_c(
         self,
@@ -337,77 +280,7 @@ class Ensemble:
     ) -> tuple[Path, ...]:
         """Write C99 code for the mean into the existing directory ``path``; return the files written.
 
-        Member ``k`` becomes ``<name>_member<k>.h/.c`` through
-        :func:`~tinyprop.export.export_c` (with ``dtype``, ``metadata`` and
-        ``literals``); ``<name>.h`` declares ``void <name>_predict(const T *x, T *y)``
-        and ``<name>.c`` calls the members in order, adds their outputs and
-        divides by ``M`` in ``T`` (``float`` or ``double``). Compile
-        ``<name>.c`` with the member sources. Returns the wrapper's header and
-        source, then each member's header and source.
+        See :func:`tinyprop.export.ensemble.export_ensemble_c`.
         """
-        name = check_name(name)
-        if name.startswith("_"):
-            raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
-        check_name(f"{name}_member{self.n_members - 1}")  # the longest member name must be a valid identifier too
-        try:
-            kind = np.dtype(dtype).name
-        except TypeError:
-            kind = None
-        if kind not in _CTYPES:
-            raise TypeError(f"dtype must be 'float32' or 'float64', got {dtype!r}")
-        directory = output_directory(path)
-        written: list[Path] = []
-        for index, net in enumerate(self.members):
-            written += export_c(net, directory, name=f"{name}_member{index}", dtype=kind, metadata=metadata,
-                                literals=literals)
-        ctype, m, macro = _CTYPES[kind], self.n_members, name.upper()
-        members = [f"{name}_member{k}" for k in range(m)]
-        comment = self._header_lines(
-            f"{name}.h / {name}.c: the mean of {m} neural networks (an ensemble) in C99, generated by tinyprop",
-            [f"{member}.c / {member}.h" for member in members],
-            [f"Interface (declared in {name}.h):", f"  void {name}_predict(const {ctype} *x, {ctype} *y);",
-             f"  x holds {macro}_N_INPUTS = {self.n_in} values, y receives {macro}_N_OUTPUTS = {self.n_out}, "
-             "the mean of the members' outputs;",
-             "  x and y may be the same array.",
-             f"Arithmetic: {ctype} throughout: y[k] = (0 + y_0[k] + ... + y_M-1[k]) / M, members in order.",
-             f"Build: compile {name}.c together with the member sources listed above."],
-        )
-        block = ["/*"] + [f" * {line}".rstrip() for line in comment] + [" */"]
-        signature = f"void {name}_predict(const {ctype} *x, {ctype} *y)"
-        header = block + [
-            "", f"#ifndef {macro}_H", f"#define {macro}_H", "",
-            f"#define {macro}_N_INPUTS {self.n_in}", f"#define {macro}_N_OUTPUTS {self.n_out}",
-            f"#define {macro}_N_MEMBERS {m}", f'#define {macro}_FINGERPRINT "{self.fingerprint()}"', "",
-            "#ifdef __cplusplus", 'extern "C" {', "#endif", "", f"{signature};", "",
-            "#ifdef __cplusplus", "}", "#endif", "", f"#endif /* {macro}_H */",
-        ]
-        suffix = "f" if ctype == "float" else ""
-        body = [f"    {ctype} out[{self.n_out}];", f"    {ctype} total[{self.n_out}];", "    int k;", "",
-                f"    for (k = 0; k < {self.n_out}; ++k) {{", f"        total[k] = 0.0{suffix};", "    }"]
-        for member in members:
-            body += ["", f"    {member}_predict(x, out);", f"    for (k = 0; k < {self.n_out}; ++k) {{",
-                     "        total[k] += out[k];", "    }"]
-        body += ["", "    /* every member has read x, so y may now be written even if it is x */",
-                 f"    for (k = 0; k < {self.n_out}; ++k) {{", f"        y[k] = total[k] / {m}.0{suffix};", "    }"]
-        source = block + ["", f'#include "{name}.h"', *[f'#include "{member}.h"' for member in members], "",
-                          signature, "{", *body, "}"]
-        paths = (write_source(directory, f"{name}.h", "\n".join(header) + "\n"),
-                 write_source(directory, f"{name}.c", "\n".join(source) + "\n"))
-        return paths + tuple(written)
-
-    def _header_lines(self, title: str, files: list[str], interface: list[str]) -> list[str]:
-        """The wrapper's explanatory comment (plain ASCII built from checked names and hex digests)."""
-        lines = [title, "", f"Generated by tinyprop {_version()}. Do not edit; regenerate it from the ensemble.",
-                 f"Ensemble fingerprint: {self.fingerprint()}",
-                 f"  (Ensemble.fingerprint of the {self.dtype.name} ensemble this code was generated from)",
-                 f"Members, averaged in this order (M = {self.n_members}); each file's header lists its",
-                 "inputs, outputs, layers and model fingerprint:"]
-        lines += [f"  {file}" for file in files]
-        lines += ["", *interface, ""] + textwrap.wrap(CAUTION, _WIDTH)
-        return lines
-
-
-def _version() -> str:
-    from . import __version__  # imported here: the package imports this module while it initialises
-
-    return __version__
+        return export_ensemble_c(self.members, path, name=name, dtype=dtype, metadata=metadata, literals=literals,
+                                 ensemble_fingerprint=self.fingerprint())

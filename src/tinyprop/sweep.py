@@ -3,7 +3,7 @@
 :func:`sweep` calls ``recipe(setting, data)`` once per setting and returns a
 table of :class:`SweepRecord` rows plus the trained networks. A *recipe* is a
 picklable callable (a module-level function, or an instance of a small
-dataclass such as :class:`TabularRegression`) that builds and trains one
+dataclass such as :class:`tinyprop.recipes.TabularRegression`) that builds and trains one
 network from one *setting*, a dict of JSON values like
 ``{"hidden": [32], "lr": 0.001, "seed": 3}``, and returns the network, or
 ``(network, training_result)``.
@@ -32,7 +32,7 @@ goes on. Exceptions of the executor itself (a worker process killed, a lost
 connection) stop the sweep: they say nothing about the setting.
 
 Resume: with ``results_path`` (a folder), each finished row is written as it
-completes: the network with :func:`tinyprop.io.save` under
+completes: the network with :func:`tinyprop.modelfile.save` under
 ``models/<first 16 hex digits of sha256(key)>.npz``, then the whole table,
 rewritten atomically as ``table.jsonl``. A later call with the same folder
 skips every setting whose key (its canonical JSON, :func:`setting_key`) is
@@ -42,7 +42,6 @@ already in the table and loads its network. The file layout is in
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -57,23 +56,15 @@ from typing import Any
 
 import numpy as np
 
-from ._validate import as_float_array, as_samples, as_targets, positive_int, real_in_range, seed_value
+from ._json import canonical_json, sha256_hex
+from ._validate import as_float_array, as_samples, as_targets
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
-from .io import fingerprint, load_model_file, save
 from .losses import Loss, MeanSquaredError
+from .modelfile import fingerprint, load_model_file, save
 from .network import Network
-from .train import (
-    RECIPE_BATCH_SIZE,
-    RECIPE_HIDDEN_UNITS,
-    RECIPE_LR,
-    RECIPE_MAX_EPOCHS,
-    RECIPE_PATIENCE,
-    TrainingDiverged,
-    TrainingResult,
-    _fit_tabular,
-)
+from .train import TrainingDiverged, TrainingResult
 
-__all__ = ["sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "TabularRegression"]
+__all__ = ["sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData"]
 
 STATUS_OK = "ok"
 STATUS_FAILED = "failed"
@@ -95,7 +86,7 @@ def _read_only_copy(value: Any, name: str) -> np.ndarray:
 
 
 def _checked_pair(pair: Any, name: str, n_columns: int, n_targets: int) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, y)`` with ``X`` ``(n, n_columns)`` and ``y`` ``(n, n_targets)`` (or ``(n,)`` for one target), read-only copies."""
+    """``(X, y)``: ``X`` ``(n, n_columns)``, ``y`` ``(n, n_targets)`` (or ``(n,)`` for one target); read-only copies."""
     if not isinstance(pair, (tuple, list)) or len(pair) != 2:
         raise TypeError(f"{name} must be a pair (X, y) or None, got {type(pair).__name__}")
     X = _read_only_copy(pair[0], f"{name} X")
@@ -141,7 +132,8 @@ class TrainingData:
         object.__setattr__(self, "X", X)
         object.__setattr__(self, "y", y)
         if self.validation is not None:
-            object.__setattr__(self, "validation", _checked_pair(self.validation, "validation", X.shape[1], _targets(y)))
+            pair = _checked_pair(self.validation, "validation", X.shape[1], _targets(y))
+            object.__setattr__(self, "validation", pair)
 
     def __reduce__(self) -> tuple[Any, ...]:
         # rebuilt through __init__, so the copy a worker unpickles is read-only too
@@ -161,8 +153,7 @@ class _SweepData:
         for label, pair in (("validation", self.training.validation), ("test", self.test)):
             if pair is not None:
                 named += [(f"{label}/X", pair[0]), (f"{label}/y", pair[1])]
-        text = json.dumps([array_record(name, array) for name, array in named], sort_keys=True)
-        return hashlib.sha256(text.encode("ascii")).hexdigest()
+        return sha256_hex(canonical_json([array_record(name, array) for name, array in named]))
 
 
 # ---------------------------------------------------------------- settings
@@ -173,7 +164,8 @@ def setting_key(setting: Mapping[str, Any]) -> str:
     differ; ``0.001`` and ``1e-3`` do not). ``ValueError`` for anything that
     JSON cannot hold exactly (tuples, numpy scalars, NaN, non-string keys).
 
-    >>> setting_key({"seed": 3, "hidden": [32], "lr": 1e-3})
+    >>> import tinyprop as tp
+    >>> tp.setting_key({"seed": 3, "hidden": [32], "lr": 1e-3})
     '{"hidden":[32],"lr":0.001,"seed":3}'
     """
     if not isinstance(setting, Mapping):
@@ -182,11 +174,11 @@ def setting_key(setting: Mapping[str, Any]) -> str:
         check_json(dict(setting), "the setting")
     except ArchiveError as exc:
         raise ValueError(str(exc)) from None
-    return json.dumps(dict(setting), sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    return canonical_json(dict(setting))
 
 
 def _file_stem(key: str) -> str:
-    return hashlib.sha256(key.encode("ascii")).hexdigest()[:16]
+    return sha256_hex(key)[:16]
 
 
 # ---------------------------------------------------------------- records
@@ -202,7 +194,7 @@ class SweepRecord:
     failed; ``epochs_run`` and ``stop_reason`` from the recipe's
     :class:`~tinyprop.train.TrainingResult` (``None`` if it returned none);
     ``wall_time``: seconds spent in the recipe; ``fingerprint`` of the network
-    (:func:`tinyprop.io.fingerprint`); ``model_file``: its file under
+    (:func:`tinyprop.modelfile.fingerprint`); ``model_file``: its file under
     ``results_path`` (``None`` without one).
     """
 
@@ -259,7 +251,9 @@ class SweepResult:
 
     def best(self) -> tuple[SweepRecord, Network]:
         """The ok row with the lowest validation loss (the first of equals) and its network."""
-        candidates = [(r.validation_loss, i) for i, r in enumerate(self.records) if r.ok and r.validation_loss is not None]
+        candidates = [
+            (r.validation_loss, i) for i, r in enumerate(self.records) if r.ok and r.validation_loss is not None
+        ]
         if not candidates:
             raise ValueError("no row has a validation loss: pass validation=(X_val, y_val), or every setting failed")
         index = min(candidates)[1]
@@ -267,7 +261,8 @@ class SweepResult:
 
     def summary(self) -> str:
         """The table as aligned plain text, one line per setting (the error in place of the numbers)."""
-        lines = [f"{'#':>3}  {'status':<6}  {'val. loss':>11}  {'test RMSE':>11}  {'epochs':>6}  {'seconds':>8}  setting"]
+        columns = f"{'#':>3}  {'status':<6}  {'val. loss':>11}  {'test RMSE':>11}  {'epochs':>6}  {'seconds':>8}"
+        lines = [f"{columns}  setting"]
         for index, r in enumerate(self.records):
             if r.ok:
                 numbers = "  ".join((_cell(r.validation_loss, 11), _cell(r.test_rmse, 11), _cell(r.epochs_run, 6)))
@@ -281,72 +276,6 @@ def _cell(value: float | int | None, width: int) -> str:
     if value is None:
         return "-".rjust(width)
     return f"{value:>{width}d}" if isinstance(value, int) else f"{value:>{width}.5g}"
-
-
-# ---------------------------------------------------------------- the ready recipe
-@dataclass(frozen=True)
-class TabularRegression:
-    """A recipe for small tabular regression; its defaults are :func:`tinyprop.train.fit_tabular_regression`.
-
-    ``recipe(setting, data)`` trains ``replace(recipe, **setting).fit(data.X, data.y)``:
-    every setting key must be one of the fields below, whose values are the
-    defaults. The network is ``Standardize -> [Affine -> Tanh] per entry of
-    hidden -> Affine -> Unstandardize`` with the scalings fitted on the
-    training rows and Glorot initialisation; 10 % of the training rows (at
-    least one) are held out for early stopping with ``patience``, and
-    :func:`~tinyprop.train.train` runs :class:`~tinyprop.losses.MeanSquaredError`
-    with ``Adam(lr, decoupled_decay=decoupled_decay)``, ``l2`` (the L2
-    penalty of ``train``), ``batch_size`` and at most ``max_epochs`` epochs.
-    ``seed`` gives the held-out rows, the initial weights and the shuffling
-    three independent streams (``numpy.random.SeedSequence``). The
-    validation rows of the sweep are not used for early stopping, so they
-    stay an independent yardstick for choosing a setting.
-
-    Both recipes train through one implementation, so with the defaults
-    and one hidden layer it reproduces
-    ``fit_tabular_regression(X, y, hidden_units=..., seed=..., max_epochs=...)``
-    bit for bit (checked in ``tests/test_sweep.py``).
-    """
-
-    hidden: tuple[int, ...] = (RECIPE_HIDDEN_UNITS,)
-    lr: float = RECIPE_LR
-    decoupled_decay: float = 0.0
-    l2: float = 0.0
-    batch_size: int = RECIPE_BATCH_SIZE
-    max_epochs: int = RECIPE_MAX_EPOCHS
-    patience: int = RECIPE_PATIENCE
-    seed: int = 0
-
-    def __post_init__(self) -> None:
-        hidden = self.hidden
-        if not isinstance(hidden, (list, tuple)) or len(hidden) == 0:
-            raise TypeError(f"hidden must be a non-empty list of layer widths, e.g. [32] or [16, 16], got {hidden!r}")
-        object.__setattr__(self, "hidden", tuple(positive_int(width, "each width in hidden") for width in hidden))
-        object.__setattr__(self, "lr", real_in_range(self.lr, "lr", low=0.0, low_open=True))
-        object.__setattr__(self, "decoupled_decay", real_in_range(self.decoupled_decay, "decoupled_decay", low=0.0))
-        object.__setattr__(self, "l2", real_in_range(self.l2, "l2", low=0.0))
-        for name in ("batch_size", "max_epochs", "patience"):
-            object.__setattr__(self, name, positive_int(getattr(self, name), name))
-        if seed_value(self.seed) is None:
-            raise TypeError("seed must be an integer >= 0, got None")
-
-    def __call__(self, setting: Mapping[str, Any], data: TrainingData) -> tuple[Network, TrainingResult]:
-        """Train the network of ``setting`` on ``data.X``, ``data.y``; return ``(network, result)``."""
-        if not isinstance(setting, Mapping):
-            raise TypeError(f"setting must be a dict, got {type(setting).__name__}")
-        allowed = [f.name for f in fields(self)]
-        unknown = sorted(str(key) for key in setting if key not in allowed)
-        if unknown:
-            raise ValueError(f"unknown setting key(s) {unknown}; TabularRegression takes {allowed}")
-        return replace(self, **setting).fit(data.X, data.y)
-
-    def fit(self, X: Any, y: Any) -> tuple[Network, TrainingResult]:
-        """Build and train one network on ``X`` ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``, ``n >= 2``."""
-        return _fit_tabular(
-            X, y, hidden=self.hidden, lr=self.lr, decoupled_decay=self.decoupled_decay, l2=self.l2,
-            batch_size=self.batch_size, max_epochs=self.max_epochs, patience=self.patience, seed=int(self.seed),
-            progress=False,
-        )
 
 
 # ---------------------------------------------------------------- one task (runs in a worker)
@@ -507,7 +436,9 @@ class _ResultsFolder:
             raise ValueError(f"{self.table} is not a version-{TABLE_VERSION} sweep table (line 1 is {lines[:1]})")
         differing = [k for k in self.header if stored.get(k) != self.header[k]]
         if differing:
-            detail = "; ".join(f"{k}: the folder has {stored.get(k)!r}, this call {self.header[k]!r}" for k in differing)
+            detail = "; ".join(
+                f"{k}: the folder has {stored.get(k)!r}, this call {self.header[k]!r}" for k in differing
+            )
             raise ValueError(
                 f"{self.folder} holds a sweep with another {', '.join(differing)} ({detail}); "
                 "resume only the same recipe, loss and data, or use a new folder"
@@ -649,7 +580,11 @@ def sweep(
         for done, (index, outcome) in enumerate(results, 1):
             records[index], networks[index] = _finish(outcome, folder)
             if progress:
-                print(f"sweep: {done}/{len(pending)} trained  {_progress_line(records[index])}", file=sys.stderr, flush=True)
+                print(
+                    f"sweep: {done}/{len(pending)} trained  "
+                    f"{_progress_line(records[index])}",
+                    file=sys.stderr, flush=True,
+                )
     finally:
         results.close()
     order = range(len(keys))

@@ -62,10 +62,8 @@ continue a run exactly: weights, optimizer state, the generator's state, the
 epoch count, the history and the early-stopping bookkeeping. It is returned
 in ``result.state`` and can be taken after any epoch from the callback
 (``info.capture()``). ``train(..., resume=state)`` continues from it; the
-final weights are bit-identical to an uninterrupted run.
-:meth:`TrainingState.to_parts` splits it into JSON-able scalars and named
-arrays (no pickle) for a checkpoint file; :meth:`TrainingState.from_parts`
-reverses it.
+final weights are bit-identical to an uninterrupted run. The state and its
+file live in :mod:`tinyprop.checkpoint`.
 """
 
 from __future__ import annotations
@@ -78,19 +76,18 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ._progress import ProgressLine
-from ._validate import _sum_is_finite, as_float_array, as_samples, as_targets, positive_int, real_in_range, require_finite
-from .activations import Tanh
-from .layers import Affine, Standardize, Unstandardize
-from .losses import Loss, MeanSquaredError
-from .network import Layer, Network
-from .optim import Adam, Optimizer, OptimizerState
+from ._json import json_copy
+from ._progress import EpochProgress
+from ._validate import _sum_is_finite, as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
+from .checkpoint import TrainingState, save_checkpoint
+from .layers import Affine
+from .losses import Loss
+from .network import Network
+from .optim import Optimizer
 
 __all__ = [
     "train",
-    "fit_tabular_regression",
     "TrainingResult",
-    "TrainingState",
     "TrainingDiverged",
     "History",
     "EpochInfo",
@@ -114,124 +111,6 @@ class History:
 
     training: tuple[float, ...]
     validation: tuple[float, ...] | None
-
-
-@dataclass
-class TrainingState:
-    """Everything needed to continue a training run exactly where it stopped.
-
-    ``epoch`` epochs are complete. ``weights`` are copies of ``net.params``;
-    ``optimizer`` the optimizer's state; ``rng`` the bit generator state of
-    the shuffling generator (JSON-able); ``training_loss`` and
-    ``validation_loss`` the history; ``best_epoch``, ``best_loss``,
-    ``best_weights`` and ``epochs_since_best`` the early-stopping bookkeeping
-    (``None`` without validation data); ``settings`` the run's settings, which
-    a resumed run must match.
-    """
-
-    epoch: int
-    weights: list[np.ndarray]
-    optimizer: OptimizerState
-    rng: dict[str, Any]
-    training_loss: list[float]
-    validation_loss: list[float] | None
-    best_epoch: int | None
-    best_loss: float | None
-    best_weights: list[np.ndarray] | None
-    epochs_since_best: int
-    settings: dict[str, Any]
-
-    def to_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-        """Split into ``(scalars, arrays)``: a JSON-able dict and a dict of named arrays.
-
-        Array names: ``"weights/<i>"``, ``"best_weights/<i>"`` and
-        ``"optimizer/<slot>/<i>"``. The arrays are the state's own (not copies).
-        """
-        scalars = {
-            "format": "tinyprop training state",
-            "version": 1,
-            "epoch": self.epoch,
-            "n_weights": len(self.weights),
-            "optimizer": {"kind": self.optimizer.kind, "settings": self.optimizer.settings, "steps": self.optimizer.steps},
-            "rng": self.rng,
-            "training_loss": list(self.training_loss),
-            "validation_loss": None if self.validation_loss is None else list(self.validation_loss),
-            "best_epoch": self.best_epoch,
-            "best_loss": self.best_loss,
-            "epochs_since_best": self.epochs_since_best,
-            "settings": self.settings,
-        }
-        arrays = {f"weights/{i}": w for i, w in enumerate(self.weights)}
-        if self.best_weights is not None:
-            arrays.update({f"best_weights/{i}": w for i, w in enumerate(self.best_weights)})
-        arrays.update({f"optimizer/{name}": a for name, a in self.optimizer.arrays.items()})
-        return scalars, arrays
-
-    @classmethod
-    def from_parts(cls, scalars: dict[str, Any], arrays: dict[str, np.ndarray]) -> "TrainingState":
-        """Rebuild a state from :meth:`to_parts` output.
-
-        Raises ``ValueError`` naming the first missing, unexpected or
-        ill-typed entry. Deeper consistency (shapes against the network,
-        settings against the run) is checked when :func:`train` resumes.
-        """
-        if not isinstance(scalars, dict) or not isinstance(arrays, dict):
-            raise TypeError(f"scalars and arrays must be dicts, got {type(scalars).__name__} and {type(arrays).__name__}")
-        try:
-            if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
-                raise ValueError(f"not a version-1 tinyprop training state: {scalars['format']!r} {scalars['version']!r}")
-            n = _whole(scalars["n_weights"], "n_weights")
-            weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
-            has_best = "best_weights/0" in arrays
-            best = [np.asarray(arrays[f"best_weights/{i}"]) for i in range(n)] if has_best else None
-            prefix = "optimizer/"
-            optimizer_scalars = _typed(scalars["optimizer"], "optimizer", dict)
-            optimizer = OptimizerState(
-                kind=_typed(optimizer_scalars["kind"], "optimizer kind", str),
-                settings=_typed(optimizer_scalars["settings"], "optimizer settings", dict),
-                steps=_whole(optimizer_scalars["steps"], "optimizer steps"),
-                arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
-            )
-            expected = {f"weights/{i}" for i in range(n)} | ({f"best_weights/{i}" for i in range(n)} if has_best else set())
-            extra = {k for k in arrays if not k.startswith(prefix)} - expected
-            if extra:
-                raise ValueError(f"unexpected arrays {sorted(extra)}")
-            validation = scalars["validation_loss"]
-            return cls(
-                epoch=_whole(scalars["epoch"], "epoch"),
-                weights=weights,
-                optimizer=optimizer,
-                rng=_typed(scalars["rng"], "rng", dict),
-                training_loss=_losses(scalars["training_loss"], "training_loss"),
-                validation_loss=None if validation is None else _losses(validation, "validation_loss"),
-                best_epoch=None if scalars["best_epoch"] is None else _whole(scalars["best_epoch"], "best_epoch"),
-                best_loss=None if scalars["best_loss"] is None else _losses([scalars["best_loss"]], "best_loss")[0],
-                best_weights=best,
-                epochs_since_best=_whole(scalars["epochs_since_best"], "epochs_since_best"),
-                settings=_typed(scalars["settings"], "settings", dict),
-            )
-        except KeyError as exc:
-            raise ValueError(f"training state is missing {exc}") from None
-
-
-def _whole(value: Any, name: str) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
-        raise ValueError(f"training state {name} must be an integer >= 0, got {value!r}")
-    return int(value)
-
-
-def _typed(value: Any, name: str, kind: type) -> Any:
-    if not isinstance(value, kind):
-        raise ValueError(f"training state {name} must be a {kind.__name__}, got {type(value).__name__}")
-    return value
-
-
-def _losses(values: Any, name: str) -> list[float]:
-    if not isinstance(values, list) or not all(
-        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in values
-    ):
-        raise ValueError(f"training state {name} must be a list of finite numbers, got {values!r}")
-    return [float(v) for v in values]
 
 
 @dataclass(frozen=True)
@@ -343,9 +222,10 @@ def train(
     seed:
         Seed of the shuffling generator (``numpy.random.default_rng``).
     progress:
-        Print a progress line on stderr after each epoch (epoch, losses,
-        elapsed and estimated remaining time); it is rewritten in place when
-        stderr is a terminal and printed as plain lines otherwise.
+        Print a progress line on stderr (epoch, losses, elapsed and estimated
+        remaining time): on a terminal one line rewritten in place at most ten
+        times a second and at the last epoch; elsewhere plain lines for the
+        first epoch, every tenth of the run and the last epoch.
     l2:
         Weight of the L2 penalty ``l2/2 * sum ||W||**2`` on the weight
         matrices (not biases), added to the gradient.
@@ -379,13 +259,11 @@ def train(
         the last finite weights).
 
     >>> import numpy as np, tinyprop as tp
-    >>> from tinyprop.optim import Adam
-    >>> from tinyprop.train import train
     >>> rng = np.random.default_rng(0)
     >>> X = rng.uniform(-1, 1, (64, 2)); y = X @ np.array([1.5, -2.0]) + 0.5  # synthetic
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
-    >>> result = train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(lr=0.05),
-    ...                epochs=200, batch_size=16, seed=1)
+    >>> result = tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=tp.Adam(lr=0.05),
+    ...                   epochs=200, batch_size=16, seed=1)
     >>> result.stop_reason, result.history.training[-1] < 1e-8
     ('epochs', True)
     """
@@ -396,106 +274,6 @@ def train(
     if resume is not None:
         run.restore(resume)
     return run.execute()
-
-
-# The default recipe's settings (chosen and measured in docs/training.md). They are
-# also the defaults of sweep.TabularRegression, which trains through _fit_tabular too.
-RECIPE_HIDDEN_UNITS = 50
-RECIPE_LR = 3e-3
-RECIPE_BATCH_SIZE = 64
-RECIPE_MAX_EPOCHS = 2000
-RECIPE_PATIENCE = 60
-
-
-def fit_tabular_regression(
-    X: Any,
-    y: Any,
-    *,
-    hidden_units: int = RECIPE_HIDDEN_UNITS,
-    seed: int = 0,
-    max_epochs: int = RECIPE_MAX_EPOCHS,
-    progress: bool = False,
-) -> tuple[Network, TrainingResult]:
-    """tinyprop's default recipe for small tabular regression; returns ``(net, result)``.
-
-    The recipe (documented with its measured results in ``docs/training.md``):
-
-    - network ``Standardize -> Affine(d, hidden_units) -> Tanh -> Affine(hidden_units, m)
-      -> Unstandardize``, scalings fitted on all rows given (the training rows),
-      Glorot initialisation from ``seed``;
-    - 10 % of the rows (at least one), drawn with ``seed``, held out for early
-      stopping; the network trains on the rest;
-    - :class:`~tinyprop.losses.MeanSquaredError` in the targets' units,
-      ``Adam(lr=3e-3)``, mini-batches of 64, at most ``max_epochs`` epochs,
-      early stopping with patience 60 restoring the best weights.
-
-    The settings were chosen by the RMSE on development rows carved from the
-    training rows of the UCI regression benchmark, never on its test rows
-    (``docs/training.md`` gives the candidates and the order of events).
-    :class:`tinyprop.sweep.TabularRegression` is the same recipe with every
-    setting open to a sweep.
-
-    ``X`` is ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``; ``n >= 2``. Deterministic
-    for a given ``seed``, from which the hold-out rows, the initial weights and
-    the shuffling draw three independent streams (``numpy.random.SeedSequence``).
-    """
-    hidden_units = positive_int(hidden_units, "hidden_units")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
-    return _fit_tabular(
-        X, y, hidden=(hidden_units,), lr=RECIPE_LR, decoupled_decay=0.0, l2=0.0, batch_size=RECIPE_BATCH_SIZE,
-        max_epochs=max_epochs, patience=RECIPE_PATIENCE, seed=int(seed), progress=progress,
-    )
-
-
-def _fit_tabular(
-    X: Any,
-    y: Any,
-    *,
-    hidden: tuple[int, ...],
-    lr: float,
-    decoupled_decay: float,
-    l2: float,
-    batch_size: int,
-    max_epochs: int,
-    patience: int,
-    seed: int,
-    progress: bool,
-) -> tuple[Network, TrainingResult]:
-    """The tabular-regression recipe with every setting explicit (the callers check them).
-
-    Network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine ->
-    Unstandardize``, scalings fitted on all rows given, Glorot initialisation;
-    ``max(1, n // 10)`` rows held out for early stopping; :func:`train` with
-    :class:`~tinyprop.losses.MeanSquaredError` and ``Adam(lr, decoupled_decay=...)``.
-    ``seed`` feeds three independent streams (``numpy.random.SeedSequence``):
-    hold-out rows, initial weights, shuffling.
-    """
-    X = as_float_array(X, "X", np.dtype(np.float64))
-    y = as_float_array(y, "y", np.dtype(np.float64))
-    if X.ndim != 2:
-        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
-    targets = y.reshape(-1, 1) if y.ndim == 1 else y
-    if targets.ndim != 2 or targets.shape[0] != X.shape[0]:
-        raise ValueError(f"y must have shape ({X.shape[0]},) or ({X.shape[0]}, n_outputs), got shape {y.shape}")
-    if X.shape[0] < 2:
-        raise ValueError(f"need at least 2 rows (one is held out for early stopping), got {X.shape[0]}")
-    hold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(seed).generate_state(3))
-    order = np.random.default_rng(hold_seed).permutation(X.shape[0])
-    n_hold = max(1, X.shape[0] // 10)
-    held, kept = order[:n_hold], order[n_hold:]
-    widths = [X.shape[1], *hidden, targets.shape[1]]
-    layers: list[Layer] = [Standardize.from_data(X)]
-    for n_in, n_out in zip(widths[:-2], widths[1:-1]):
-        layers += [Affine(n_in, n_out), Tanh()]
-    layers += [Affine(widths[-2], widths[-1]), Unstandardize.from_data(targets)]
-    net = Network(layers, seed=init_seed)
-    result = train(
-        net, X[kept], targets[kept], loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
-        epochs=max_epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
-        seed=shuffle_seed, progress=progress, l2=l2,
-    )
-    return net, result
 
 
 class _Run:
@@ -526,10 +304,7 @@ class _Run:
             raise TypeError(f"loss must be a tinyprop Loss (e.g. MeanSquaredError()), got {type(loss).__name__}")
         if not isinstance(optimizer, Optimizer):
             raise TypeError(f"optimizer must be a tinyprop Optimizer (e.g. Adam()), got {type(optimizer).__name__}")
-        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer))):
-            raise TypeError(f"seed must be None or an integer >= 0, got {seed!r}")
-        if seed is not None and seed < 0:
-            raise ValueError(f"seed must be None or an integer >= 0, got {seed}")
+        seed = seed_value(seed)
         if not isinstance(progress, bool):
             raise TypeError(f"progress must be True or False, got {progress!r}")
         if callback is not None and not callable(callback):
@@ -546,7 +321,7 @@ class _Run:
         if self.patience is not None and self.validation is None:
             raise ValueError("patience (early stopping) needs validation data: pass validation=(X_val, y_val)")
         self.l2 = real_in_range(l2, "l2", low=0.0)
-        self.progress_line = ProgressLine() if progress else None
+        self.progress_line = EpochProgress() if progress else None
         self.rng = np.random.default_rng(seed)
         self.exact_training_loss = training_loss == TRAINING_LOSS_EXACT
         self.settings = {
@@ -562,7 +337,9 @@ class _Run:
             "parameter_shapes": [list(p.shape) for p in net.params],
         }
         self.params = net.params
-        self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
+        self.is_weight = [
+            is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]
+        ]
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
         self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
@@ -590,9 +367,7 @@ class _Run:
         if self.checkpoint is None:
             return
         if self.epoch % self.checkpoint_every == 0 or self.epoch >= self.epochs:
-            from .checkpoint import save_checkpoint  # checkpoint.py builds on this module
-
-            save_checkpoint(self.checkpoint, self.capture())
+            save_checkpoint(self.capture(), self.checkpoint)
 
     def capture(self) -> TrainingState:
         has_best = self.best_epoch is not None and self.best_weights is not None
@@ -600,22 +375,28 @@ class _Run:
             epoch=self.epoch,
             weights=[p.copy() for p in self.params],
             optimizer=self.optimizer.get_state(),
-            rng=_copy_json(self.rng.bit_generator.state),
+            rng=json_copy(self.rng.bit_generator.state),
             training_loss=list(self.training_loss),
             validation_loss=None if self.validation_loss is None else list(self.validation_loss),
             best_epoch=self.best_epoch,
             best_loss=self.best_loss,
             best_weights=[w.copy() for w in self.best_weights] if has_best else None,  # type: ignore[union-attr]
             epochs_since_best=self.epochs_since_best,
-            settings=_copy_json(self.settings),
+            settings=json_copy(self.settings),
         )
 
     def restore(self, state: TrainingState) -> None:
         if not isinstance(state, TrainingState):
-            raise TypeError(f"resume must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
-        differing = sorted(k for k in set(self.settings) | set(state.settings) if self.settings.get(k) != state.settings.get(k))
+            raise TypeError(
+                "resume must be a TrainingState (result.state or info.capture()), got "
+                f"{type(state).__name__}"
+            )
+        keys = set(self.settings) | set(state.settings)
+        differing = sorted(k for k in keys if self.settings.get(k) != state.settings.get(k))
         if differing:
-            detail = ", ".join(f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing)
+            detail = ", ".join(
+                f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing
+            )
             raise ValueError(f"resume state does not match this training run ({detail})")
         if not 0 <= state.epoch <= self.epochs:
             raise ValueError(f"resume state has {state.epoch} epochs done, more than epochs={self.epochs}")
@@ -626,7 +407,7 @@ class _Run:
             _check_like(self.best_weights or [], state.best_weights, "resume state best_weights")
         probe = type(self.rng.bit_generator)()
         try:
-            probe.state = _copy_json(state.rng)
+            probe.state = json_copy(state.rng)
         except (TypeError, ValueError, KeyError) as exc:
             raise ValueError(f"resume state has an unusable rng state: {exc}") from None
         self.optimizer.set_state(state.optimizer)  # checks everything before changing anything
@@ -812,10 +593,8 @@ class _Run:
         elapsed = time.perf_counter() - self.started
         done = self.epoch - self.first_epoch_of_call + 1
         remaining = elapsed / done * (self.epochs - self.epoch)
-        line = f"epoch {self.epoch}/{self.epochs}  training loss {self.training_loss[-1]:.6g}"
-        if self.validation_loss is not None:
-            line += f"  validation loss {self.validation_loss[-1]:.6g}"
-        self.progress_line.show(line + f"  elapsed {elapsed:.1f} s  remaining ~{remaining:.1f} s")
+        validation = None if self.validation_loss is None else self.validation_loss[-1]
+        self.progress_line.show(self.epoch, self.epochs, self.training_loss[-1], validation, elapsed, remaining)
 
     def _finish_progress(self) -> None:
         if self.progress_line is not None:
@@ -839,7 +618,10 @@ def _check_like(targets: list[np.ndarray], sources: list[np.ndarray], what: str)
     for i, (t, s) in enumerate(zip(targets, sources)):
         s = np.asarray(s)
         if s.shape != t.shape or s.dtype != t.dtype:
-            raise ValueError(f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} {s.dtype}")
+            raise ValueError(
+                f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} "
+                f"{s.dtype}"
+            )
         require_finite(s, f"{what} array {i}")
 
 
@@ -848,11 +630,3 @@ def _copy_into(targets: list[np.ndarray], sources: list[np.ndarray], what: str) 
     for t, s in zip(targets, sources):
         np.copyto(t, s)
 
-
-def _copy_json(value: Any) -> Any:
-    """A deep copy of nested dicts/lists of scalars."""
-    if isinstance(value, dict):
-        return {k: _copy_json(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_copy_json(v) for v in value]
-    return value

@@ -1,7 +1,7 @@
 """The ``tinyprop`` command (also ``python -m tinyprop``).
 
 Subcommands, one module each: ``demo``, ``train``, ``check``, ``inspect``,
-``export``, ``bench``. Every module has ``add_arguments(parser)`` and
+``export``, ``bench``, ``certify``. Every module has ``add_arguments(parser)`` and
 ``run(args) -> int``; :func:`main` parses, dispatches and turns user mistakes
 and failures into one line on stderr:
 
@@ -21,8 +21,8 @@ import argparse
 import sys
 from typing import NoReturn, Sequence
 
-from .. import __version__
-from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
+from .._version import __version__
+from . import bench_cmd, certify_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
 from ._common import USAGE, CommandError, describe_os_error
 
 __all__ = ["main"]
@@ -34,6 +34,7 @@ COMMANDS = {
     "inspect": inspect_cmd,
     "export": export_cmd,
     "bench": bench_cmd,
+    "certify": certify_cmd,
 }
 
 SHORT_HELP = f"""tinyprop {__version__}: verified multilayer perceptrons for controllers, instruments and test rigs
@@ -78,7 +79,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser, subparsers = build_parser()
     args, unknown = parser.parse_known_args(arguments)
     if args.command is None:
-        parser.error(f"unrecognized arguments: {' '.join(unknown)}" if unknown else "give a command, e.g. 'tinyprop demo'")
+        parser.error(
+            f"unrecognized arguments: {' '.join(unknown)}" if unknown else "give a command, e.g. 'tinyprop demo'"
+        )
     if unknown:
         subparsers[args.command].error(f"unrecognized arguments: {' '.join(unknown)}")
     prefix = f"tinyprop {args.command}: error:"

@@ -16,9 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from ..export import export_c, export_c_fixed_point, export_python
-from ..export._text import check_name
-from ..io import ModelFile
+from ..export import check_name, export_c, export_c_fixed_point, export_python
+from ..modelfile import ModelFile
 from . import _args
 from ._common import (
     USAGE,

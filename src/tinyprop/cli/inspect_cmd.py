@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from ..io import describe
+from ..modelfile import describe
 from ._common import read_model
 from ._imports import add_import_option, import_modules
 

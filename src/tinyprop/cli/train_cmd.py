@@ -12,12 +12,24 @@ from pathlib import Path
 from typing import Any
 
 from ..csvdata import CsvTable
-from ..io import save
+from ..modelfile import save
+from ..recipes import (
+    ACTIVATIONS,
+    METHODS,
+    OPTIMIZERS,
+    RECIPE_METHODS,
+    SCHEDULES,
+    Dataset,
+    FitSettings,
+    build_network,
+    evaluate_all,
+    fit,
+    least_squares_uncertainty,
+)
 from . import _args
 from ._common import (
     USAGE,
     CommandError,
-    EpochProgress,
     describe_os_error,
     numeric_columns,
     output_folder,
@@ -26,30 +38,16 @@ from ._common import (
     write_json,
     write_plots,
 )
-from ._fit import (
-    ACTIVATIONS,
-    architecture,
-    METHODS,
-    OPTIMIZERS,
-    SCHEDULES,
-    Dataset,
-    FitSettings,
-    build_network,
-    evaluate_all,
-    fit,
-    least_squares_uncertainty,
-    model_metadata,
-    report,
-    split_rows,
-)
+from ._fit_report import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 
 # (option, the option it depends on, the values of that option it applies to), checked in this order
 _APPLIES_ONLY_TO = (
     *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
-    ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
+      for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
+    ("max_evaluations", "method", ("levenberg-marquardt", "lbfgs")),
+    ("restarts", "method", ("auto", "evidence-lm")),
     ("momentum", "optimizer", ("sgd",)),
 )
 
@@ -63,26 +61,40 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                       help="input columns, comma-separated (default: every column that is not a target)")
     data.add_argument("--delimiter", default=",", help="field separator (default ',')")
-    data.add_argument("--validation-fraction", type=_args.fraction, default=defaults.validation_fraction,
-                      metavar="F", help=f"share of rows held out for validation (default {defaults.validation_fraction})")
+    data.add_argument(
+        "--validation-fraction",
+        type=_args.fraction,
+        default=defaults.validation_fraction,
+        metavar="F",
+        help=f"share of rows held out for validation (default {defaults.validation_fraction})",
+    )
     data.add_argument("--test-fraction", type=_args.fraction, default=defaults.test_fraction,
                       metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
     network = parser.add_argument_group("network")
     network.add_argument("--hidden", type=_args.widths, default=defaults.hidden, metavar="WIDTHS",
-                         help="hidden-layer widths, comma-separated (default 16,16)")
+                         help="hidden-layer widths, comma-separated (default: the recipe's, 20 for evidence-lm and "
+                              "50 for adam-early-stopping; 16,16 for the other methods)")
     network.add_argument("--activation", choices=sorted(ACTIVATIONS), default=defaults.activation,
                          help=f"hidden-layer activation (default {defaults.activation})")
     network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
                          help=f"number type of the network (default {defaults.dtype})")
     fitting = parser.add_argument_group("fitting", _applicability())
     fitting.add_argument("--method", choices=METHODS, default=defaults.method,
-                         help="mini-batch gradient descent (default), or full-batch least squares by "
-                              "Levenberg-Marquardt or L-BFGS (small networks)")
+                         help="auto (default): the default recipe, evidence-regularised Levenberg-Marquardt "
+                              "(evidence-lm) while affordable, else Adam with early stopping (adam-early-stopping); "
+                              "or one of these two forced; or mini-batch gradient descent with the options below, "
+                              "or plain least squares by Levenberg-Marquardt or L-BFGS (small networks)")
+    fitting.add_argument("--restarts", type=_args.positive_int, metavar="N",
+                         help="evidence-lm: initialisations tried, the largest log evidence kept (default 1)")
     fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
-    fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
-                         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items())
-                              + ")")
+    fitting.add_argument(
+        "--learning-rate",
+        dest="lr",
+        type=_args.positive_float,
+        metavar="LR",
+        help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
+    )
     fitting.add_argument("--schedule", choices=SCHEDULES,
                          help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
                               f"(default {defaults.schedule})")
@@ -99,7 +111,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fitting.add_argument("--seed", type=_args.seed, default=defaults.seed,
                          help=f"seed of the split, the initial weights and the shuffling (default {defaults.seed})")
     output = parser.add_argument_group("output")
-    output.add_argument("--out", default="model.npz", metavar="MODEL.npz", help="model file to write (default model.npz)")
+    output.add_argument("--out", default="model.npz", metavar="MODEL.npz",
+                        help="model file to write (default model.npz)")
     output.add_argument("--report", metavar="REPORT.json",
                         help="JSON training report to write (default: next to the model, <model>.report.json)")
     output.add_argument("--plots", metavar="DIR", help="also write learning_curves.png and parity.png into DIR "
@@ -114,26 +127,35 @@ def run(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     data = _dataset(args)
     read_seconds = time.perf_counter() - started
-    split = split_rows(data.X.shape[0], settings)
-    net = build_network(data, split, settings)
+    split = split_for_command(data.X.shape[0], settings)
+    recipe = settings.method in RECIPE_METHODS
+    net = None if recipe else build_network(data, split, settings)
     print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
           f"targets {', '.join(data.target_names)}")
     sizes = split.sizes()
     print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
           f"{sizes['test']} test rows")
-    print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
+    if net is not None:
+        print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
-        outcome = fit(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
+        outcome = fit(net, data, split, settings, progress=not args.quiet)
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
+    net = outcome.network
+    assert net is not None
+    if outcome.recipe is not None:
+        print(f"method chosen: {outcome.recipe.method} ({outcome.recipe.reason})")
+        print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")
-    if outcome.summary.get("success") is False:
+    if outcome.summary.get("success") is False and outcome.recipe is None:
         print("     the solver did not report convergence: raise --max-evaluations, or check the data and network size")
     started = time.perf_counter()
     metrics = evaluate_all(net, data, split)
     extra: dict[str, Any] = {}
-    if settings.method != "mini-batch":
+    if outcome.recipe is not None and outcome.recipe.solved is not None:
+        extra["uncertainty"] = least_squares_uncertainty(net, data, split, outcome.recipe.solved)
+    elif settings.method in ("levenberg-marquardt", "lbfgs"):
         extra["uncertainty"] = least_squares_uncertainty(net, data, split)
     evaluate_seconds = time.perf_counter() - started
     _print_metrics(metrics)
@@ -141,7 +163,7 @@ def run(args: argparse.Namespace) -> int:
         print(_uncertainty_line(extra["uncertainty"]))
 
     started = time.perf_counter()
-    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}")
+    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome)
     try:
         digest = save(net, model_path, metadata=metadata)
     except OSError as exc:
@@ -154,7 +176,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {report_path}")
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
-        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+        written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
                                     list(data.target_names), Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
@@ -184,6 +206,9 @@ def _settings(args: argparse.Namespace) -> FitSettings:
         if getattr(args, option) is not None and value(depends_on) not in values:
             raise CommandError(f"{_flag(option)} applies to {_flag(depends_on)} {' or '.join(values)}, "
                                f"not {value(depends_on)}", USAGE)
+    if args.method in RECIPE_METHODS and args.activation != "tanh":
+        raise CommandError(f"--method {args.method} (the default recipe) uses tanh hidden units; --activation "
+                           f"{args.activation} needs --method mini-batch, levenberg-marquardt or lbfgs", USAGE)
     if args.patience is not None and args.validation_fraction == 0:
         raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
     return FitSettings(
@@ -204,17 +229,17 @@ def _applicability() -> str:
 
 
 def _flag(option: str) -> str:
-    """``batch_size`` -> ``--batch-size``."""
-    return "--" + option.replace("_", "-")
+    """``batch_size`` -> ``--batch-size``; ``lr`` (the library's name) -> ``--learning-rate``."""
+    return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
     table = read_table(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
-    X, Y = numeric_columns(table, inputs, targets)
+    X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
@@ -247,6 +272,14 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
     if "unavailable" in uncertainty:
         return f"parameter uncertainty: not available ({uncertainty['unavailable']})"
     parameters = uncertainty["parameters"]
+    if parameters.get("posterior"):
+        interval = uncertainty["prediction_interval"]
+        widths = ", ".join(f"{name} +-{w['mean']:.4g}" for name, w in interval["half_width_on_data"].items())
+        noise = ", ".join(f"{sd:.4g}" for sd in parameters["noise_sd"])
+        return (f"regularised fit: noise sd per target {noise}; {parameters['effective_parameters']:.1f} effective "
+                f"of {parameters['n_params']} parameters, penalty {parameters['penalty']:.3g}; "
+                f"{100 * interval['level']:g}% prediction interval on the training rows {widths} "
+                "(posterior standard deviations and input sensitivities in the report)")
     if parameters["rank_deficient"]:
         return (f"parameter uncertainty: not available, the Jacobian is rank-deficient (rank {parameters['rank']} of "
                 f"{parameters['n_params']}); see 'uncertainty' in the report")
