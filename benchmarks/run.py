@@ -42,7 +42,8 @@ BARS: dict[str, tuple[str, Any]] = {
 }
 STACKED_CASES = {"stacked_small": ([4, 16, 16, 1], 64, 32), "stacked_medium": ([8, 64, 64, 1], 16, 32)}
 PARTS = (
-    "floor", "train_epoch", "tax", "light_path", "stacked", "memory", "scaling", "second_order", "blocked_lm", "inference",
+    "floor", "train_epoch", "tax", "light_path", "stacked", "memory", "scaling", "second_order", "blocked_lm",
+    "inference",
 )
 
 
@@ -151,8 +152,8 @@ def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | N
                  f"{memory['peak_bytes'] / 2**20:.1f} MiB", memory["peak_bytes"] / 2**20, "blocked_memory_mb"))
     rows.append(("  (the whole Jacobian would take)", f"{memory['whole_jacobian_bytes'] / 2**20:.0f} MiB", None, None))
     rows.append(("  time of that iteration", f"{memory['seconds']:.2f} s", None, None))
-    rows.append((f"LM iteration {speed['rows']} x {speed['n_params']}: MINPACK / blocked", f"{speed['blocked_s']:.3f} s",
-                 speed["speedup"], "blocked_speedup"))
+    rows.append((f"LM iteration {speed['rows']} x {speed['n_params']}: MINPACK / blocked",
+                 f"{speed['blocked_s']:.3f} s", speed["speedup"], "blocked_speedup"))
     rows.append(("  MINPACK iteration", f"{speed['minpack_s']:.3f} s", None, None))
     i = results["inference"]
     rows.append(("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, None))

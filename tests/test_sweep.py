@@ -412,7 +412,8 @@ def test_stack_key_separates_what_cannot_be_stacked():
     with pytest.raises(ValueError, match="unknown setting key"):
         key({"width": 3})
     data = TrainingData(X, Y)
-    with pytest.raises(ValueError, match=r"fit_stack needs settings that differ only in \['seed', 'lr', 'decoupled_decay'\]"):
+    expected = r"fit_stack needs settings that differ only in \['seed', 'lr', 'decoupled_decay'\]"
+    with pytest.raises(ValueError, match=expected):
         QUICK.fit_stack([{"seed": 0}, {"hidden": [3]}], data)
     runs = QUICK.fit_stack([{"seed": 3, "lr": 1e-2}, {"seed": 4}], data)
     assert_same_run(runs[0], QUICK({"seed": 3, "lr": 1e-2}, data))

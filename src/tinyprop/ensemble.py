@@ -38,8 +38,8 @@ from ._validate import as_samples
 from .archive import ArchiveError, check_json, read_archive, write_archive
 from .export import agreement_bound
 from .export.ensemble import export_ensemble_c, export_ensemble_python
-from .modelfile import ModelFileError, fingerprint, model_from_parts, model_parts
 from .losses import Loss
+from .modelfile import ModelFileError, fingerprint, model_from_parts, model_parts
 from .network import Network
 from .optim import Optimizer
 from .stacked import train_stacked
@@ -139,7 +139,9 @@ class Ensemble:
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
             raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
         seeds = [int(s) for s in np.random.SeedSequence(int(seed)).generate_state(2 * members)]
-        nets = [Network(copy.deepcopy(template.layers), seed=seeds[2 * k], dtype=template.dtype) for k in range(members)]
+        nets = [
+            Network(copy.deepcopy(template.layers), seed=seeds[2 * k], dtype=template.dtype) for k in range(members)
+        ]
         results = train_stacked(
             nets, X, y, loss=loss, optimizers=[copy.deepcopy(optimizer) for _ in range(members)], epochs=epochs,
             batch_size=batch_size, seeds=seeds[1::2], validation=validation, patience=patience, l2=l2,

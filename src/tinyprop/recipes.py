@@ -56,8 +56,8 @@ from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
 from .solve import SolveResult, solve
-from .sweep import TrainingData
 from .stacked import train_stacked
+from .sweep import TrainingData
 from .train import STOP_DIVERGED, History, TrainingDiverged, TrainingResult, train
 from .uncertainty import uncertainty_report
 

@@ -268,7 +268,8 @@ def train(
     ('epochs', True)
     """
     run = _Run(
-        net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback, training_loss
+        net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback,
+        training_loss,
     )
     run.checkpoint_to(checkpoint, checkpoint_every)
     if resume is not None:
