@@ -106,6 +106,11 @@ TRAINING_LOSS_EXACT = "exact"
 class History:
     """Loss per epoch: ``training[e - 1]`` and ``validation[e - 1]`` belong to epoch ``e``.
 
+    ``training`` is the running value assembled from the epoch's mini-batch
+    losses, or the exact loss over all training rows with
+    ``training_loss="exact"`` (see the module docstring); ``validation`` is
+    always the exact loss over the validation rows at the end of the epoch.
+
     ``validation`` is ``None`` when no validation data was given.
     """
 
