@@ -109,6 +109,87 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
     }
 
 
+def train_epoch(batch: int, dtype: Any, *, rounds: int, steps: int = 16) -> dict[str, Any]:
+    """Seconds per epoch of ``tp.train`` (64-256-256-1, Adam, ``steps`` mini-batches) over ``steps`` isolated steps.
+
+    The epoch time is (time of 3 epochs - time of 1 epoch) / 2, which removes
+    the one-off input checks and set-up; the isolated step is the floor
+    figure's public-API step on one batch. Timed in alternating rounds.
+    """
+    X, y = _synthetic(steps * batch, 64, dtype)
+    net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
+    step = _training_step(net, Adam(1e-6), X[:batch], y[:batch])
+
+    def run(epochs: int) -> Callable[[], None]:
+        def fn() -> None:
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-6), epochs=epochs, batch_size=batch,
+                     seed=0)
+        return fn
+
+    def isolated_steps() -> None:
+        for _ in range(steps):
+            step()
+
+    t_one, t_three, t_steps = fastest(run(1), run(3), isolated_steps, calls=1, rounds=rounds)
+    epoch = max(t_three - t_one, 1e-12) / 2
+    return {"batch": batch, "dtype": np.dtype(dtype).name, "steps": steps, "epoch_s": epoch, "steps_s": t_steps,
+            "ratio": epoch / t_steps}
+
+
+def light_path(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
+    """Plain-SGD step through the public path without a workspace over the hand-written numpy step.
+
+    The step is ``out, trace = net.forward(X)``; ``grads, _ = net.backward(trace,
+    loss.gradient(out, y), need_input=False)``; ``opt.update(net.params, grads)``
+    (the hand-written step does not form ``dE/dX`` either).
+    """
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)
+    X, y = _synthetic(batch, sizes[0], np.float64)
+    loss, optimizer = tp.MeanSquaredError(), SGD(1e-6)
+
+    def step() -> None:
+        out, trace = net.forward(X)
+        grads, _ = net.backward(trace, loss.gradient(out, y), need_input=False)
+        optimizer.update(net.params, grads)
+
+    weights = [layer.weight.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
+    biases = [layer.bias.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
+
+    def by_hand() -> None:
+        handwritten_step(weights, biases, X, y, 1e-6)
+
+    t_step, t_hand = fastest(step, by_hand, calls=calls, rounds=rounds)
+    return {"network": "-".join(map(str, sizes)), "batch": batch, "step_s": t_step, "hand_s": t_hand,
+            "ratio": t_step / t_hand}
+
+
+def stacked_speedup(
+    sizes: list[int], members: int, batch: int, dtype: Any, *, rounds: int, rows: int = 1024, epochs: int = 3
+) -> dict[str, Any]:
+    """Time of a loop of ``tp.train`` over the time of one ``tp.train_stacked`` for the same ``members`` networks.
+
+    Adam with a learning rate per member, ``rows`` synthetic rows, ``epochs``
+    epochs of mini-batches of ``batch``; each network is built (seeded) inside
+    both competitors.
+    """
+    X, y = _synthetic(rows, sizes[0], dtype)
+    rates = [1e-3 * (1 + k % 4) for k in range(members)]
+
+    def loop() -> None:
+        for k in range(members):
+            tp.train(tp.build_mlp(sizes, seed=k, dtype=dtype), X, y, loss=tp.MeanSquaredError(),
+                     optimizer=Adam(rates[k]), epochs=epochs, batch_size=batch, seed=k)
+
+    def stacked() -> None:
+        tp.train_stacked([tp.build_mlp(sizes, seed=k, dtype=dtype) for k in range(members)], X, y,
+                         loss=tp.MeanSquaredError(), optimizers=[Adam(r) for r in rates], epochs=epochs,
+                         batch_size=batch, seeds=list(range(members)))
+
+    t_loop, t_stacked = fastest(loop, stacked, calls=1, rounds=rounds)
+    return {"network": "-".join(map(str, sizes)), "members": members, "batch": batch, "dtype": np.dtype(dtype).name,
+            "loop_s": t_loop, "stacked_s": t_stacked, "speedup": t_loop / t_stacked}
+
+
 def abstraction_tax(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
     """Plain-SGD step through tinyprop's public API over the hand-written numpy step (handwritten.py)."""
     net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)

@@ -316,3 +316,38 @@ def test_concrete_ensemble_beats_the_median_member_on_every_split():
     for split in range(20):
         ensemble_rmse, members = concrete_ensemble_vs_members(split)
         assert ensemble_rmse <= np.median(members), (split, ensemble_rmse, members)
+
+
+def test_members_trained_together_equal_members_trained_alone():
+    # The documented seeds: s = SeedSequence(seed).generate_state(2 M); member k from s[2k], shuffled with s[2k + 1].
+    rng = np.random.default_rng(3)
+    X = rng.uniform(-1, 1, (90, 3))
+    y = np.sin(X[:, :1]) + X[:, 1:2] * X[:, 2:]  # synthetic
+    template = tp.build_mlp([3, 8, 1], seed=0)
+    before = template.get_vector()
+    options = dict(loss=tp.MeanSquaredError(), epochs=6, batch_size=16, validation=(X[:20], y[:20]), patience=3)
+    ensemble = Ensemble.trained_together(template, X[20:], y[20:], members=3,
+                                         optimizer=tp.Adam(1e-2, decoupled_decay=1e-3), seed=7,
+                                         metadata={"note": "synthetic"}, **options)
+    assert np.array_equal(template.get_vector(), before) and ensemble.metadata == {"note": "synthetic"}
+    seeds = [int(s) for s in np.random.SeedSequence(7).generate_state(6)]
+    for k in range(3):
+        alone = tp.Network([layer for layer in tp.build_mlp([3, 8, 1]).layers], seed=seeds[2 * k])
+        result = tp.train(alone, X[20:], y[20:], optimizer=tp.Adam(1e-2, decoupled_decay=1e-3),
+                          seed=seeds[2 * k + 1], **options)
+        assert np.array_equal(alone.get_vector(), ensemble.members[k].get_vector())
+        assert result.history == ensemble.training_results[k].history
+
+
+def test_trained_together_reports_a_diverged_member_and_bad_arguments():
+    X = np.linspace(-1, 1, 40).reshape(-1, 1)
+    y = 50 * X  # synthetic
+    with pytest.raises(tp.TrainingDiverged, match="member 0: training diverged"):
+        Ensemble.trained_together(tp.build_mlp([1, 4, 1]), X, y, members=2, loss=tp.MeanSquaredError(),
+                                  optimizer=tp.SGD(1e300), epochs=3, batch_size=8)
+    with pytest.raises(ValueError, match="members must be an integer >= 1, got 0"):
+        Ensemble.trained_together(tp.build_mlp([1, 4, 1]), X, y, members=0, loss=tp.MeanSquaredError(),
+                                  optimizer=tp.SGD(0.1), epochs=3, batch_size=8)
+    with pytest.raises(TypeError, match="template must be a tinyprop Network, got list"):
+        Ensemble.trained_together([], X, y, members=2, loss=tp.MeanSquaredError(), optimizer=tp.SGD(0.1),
+                                  epochs=3, batch_size=8)

@@ -290,3 +290,22 @@ def test_schedule_settings_are_json_and_repr_readable():
     assert repr(s) == "LinearWarmUp(steps=10, then={'kind': 'CosineSchedule', 'steps': 100, 'floor': 0.05})"
     assert s == LinearWarmUp(10, then=CosineSchedule(100, floor=0.05))
     assert math.isclose(Adam(0.1, schedule=s).settings()["schedule"]["then"]["floor"], 0.05)
+
+
+@pytest.mark.parametrize("arrays", [1, 3])
+def test_first_update_allocates_each_state_array_once(arrays):
+    # Adam keeps two moments and one scratch array per parameter: the first update's peak
+    # allocation is those three (as views of flat arrays), not transient copies of them.
+    import tracemalloc
+
+    params = [np.zeros(40_000) for _ in range(arrays)]
+    grads = [np.full(40_000, 1e-3) for _ in range(arrays)]
+    optimizer = Adam(1e-3)
+    tracemalloc.start()
+    try:
+        optimizer.update(params, grads)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    need = 3 * arrays * 40_000 * 8
+    assert need <= peak < need + 64 * 1024

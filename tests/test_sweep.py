@@ -382,3 +382,39 @@ def test_bad_arguments(arguments, error, message):
     call = {"recipe": QUICK, "settings": [{"seed": 0}], "X": X, "y": Y, **arguments}
     with pytest.raises(error, match=message):
         sweep(call.pop("recipe"), call.pop("settings"), call.pop("X"), call.pop("y"), **call)
+
+
+# ----------------------------------------------------------------------------- trained together
+def test_sequential_sweep_trains_settings_that_differ_in_seed_lr_decay_together(sequential, monkeypatch):
+    # SETTINGS 0, 1 (diverges) and 4 differ only in lr and seed: one stack. The thread pool trains
+    # every setting alone (one task each), so equality with it is equality with training alone.
+    stacks = []
+    fit_stack = TabularRegression.fit_stack
+
+    def recording(self, settings, data):
+        stacks.append([setting_key(s) for s in settings])
+        return fit_stack(self, settings, data)
+
+    monkeypatch.setattr(TabularRegression, "fit_stack", recording)
+    together = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST)
+    assert stacks == [[setting_key(SETTINGS[i]) for i in (0, 1, 4)]]
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        alone = sweep(QUICK, SETTINGS, X, Y, validation=VALIDATION, test=TEST, executor=pool)
+    assert stacks == [[setting_key(SETTINGS[i]) for i in (0, 1, 4)]]  # executors never stack
+    assert_same_sweep(together, alone)
+    assert together.records[1].status == "failed" and together.records[1].error.startswith("TrainingDiverged: ")
+
+
+def test_stack_key_separates_what_cannot_be_stacked():
+    key = QUICK.stack_key
+    assert key({"seed": 1, "lr": 1e-3}) == key({"seed": 2, "decoupled_decay": 1e-4}) == key({})
+    assert len({key({}), key({"hidden": [9]}), key({"l2": 1e-3}), key({"batch_size": 32}), key({"patience": 3})}) == 5
+    with pytest.raises(ValueError, match="unknown setting key"):
+        key({"width": 3})
+    data = TrainingData(X, Y)
+    expected = r"fit_stack needs settings that differ only in \['seed', 'lr', 'decoupled_decay'\]"
+    with pytest.raises(ValueError, match=expected):
+        QUICK.fit_stack([{"seed": 0}, {"hidden": [3]}], data)
+    runs = QUICK.fit_stack([{"seed": 3, "lr": 1e-2}, {"seed": 4}], data)
+    assert_same_run(runs[0], QUICK({"seed": 3, "lr": 1e-2}, data))
+    assert_same_run(runs[1], QUICK({"seed": 4}, data))

@@ -111,7 +111,7 @@ def test_last_partial_batch_is_used():
     assert result.updates == 2  # a batch larger than n is the full batch
 
 
-def test_history_records_whole_data_losses():
+def test_exact_training_loss_records_whole_data_losses():
     X, y = _regression()
     net = _net()
     snapshots = []
@@ -120,7 +120,7 @@ def test_history_records_whole_data_losses():
         snapshots.append((info.capture().weights, info.training_loss, info.validation_loss))
 
     result = train(net, X[20:], y[20:], loss=tp.MeanSquaredError(), optimizer=Adam(0.01), epochs=4, batch_size=16,
-                   seed=0, validation=(X[:20], y[:20]), callback=remember)
+                   seed=0, validation=(X[:20], y[:20]), callback=remember, training_loss="exact")
     probe = _net()
     for (weights, training, validation), h_train, h_val in zip(snapshots, result.history.training,
                                                                result.history.validation):
@@ -128,6 +128,58 @@ def test_history_records_whole_data_losses():
             p[...] = w
         assert h_train == training == tp.MeanSquaredError().value(probe.predict(X[20:]), y[20:])
         assert h_val == validation == tp.MeanSquaredError().value(probe.predict(X[:20]), y[:20])
+
+
+class _BatchRecorder(SGD):
+    """SGD that keeps a copy of the weights each update starts from."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.before = []
+
+    def update(self, params, grads):
+        self.before.append([p.copy() for p in params])
+        super().update(params, grads)
+
+
+@pytest.mark.parametrize("loss", [tp.MeanSquaredError(), tp.SquaredError()], ids=["mean", "sum"])
+def test_running_training_loss_is_the_batch_size_weighted_mean_of_the_batch_losses(loss):
+    # The documented running value, recomputed independently: the epoch's permutation from the
+    # seeded generator, each batch's loss with the weights before its update (taken by the optimizer),
+    # combined as sum_b n_b E_b / n for a mean loss and sum_b E_b for a summed one.
+    X, y = _regression(n=50)  # batches of 16, 16, 16 and 2 rows
+    net, optimizer = _net(), _BatchRecorder(0.05)
+    result = train(net, X, y, loss=loss, optimizer=optimizer, epochs=3, batch_size=16, seed=4)
+    rng, probe, update = np.random.default_rng(4), _net(), 0
+    for recorded in result.history.training:
+        order = rng.permutation(50)
+        parts = []
+        for start in range(0, 50, 16):
+            rows = order[start:start + 16]
+            probe.set_vector(optimizer.before[update][0])
+            update += 1
+            value = loss.value(probe.predict(X[rows]), y[rows])
+            parts.append(value if loss.sums_over_samples else value * rows.size)
+        expected = sum(parts) if loss.sums_over_samples else sum(parts) / 50
+        assert recorded == pytest.approx(expected, rel=1e-13)
+
+
+def test_training_loss_option_changes_only_the_recorded_training_loss():
+    X, y = _regression()
+    runs = {}
+    for mode in ("running", "exact"):
+        net = _net()
+        result = train(net, X[20:], y[20:], loss=tp.MeanSquaredError(), optimizer=Adam(0.02), epochs=30, batch_size=16,
+                       seed=2, validation=(X[:20], y[:20]), patience=3, training_loss=mode)
+        runs[mode] = (net.get_vector(), result)
+    (w_run, running), (w_exact, exact) = runs["running"], runs["exact"]
+    assert np.array_equal(w_run, w_exact)
+    assert running.history.validation == exact.history.validation
+    assert running.best_epoch == exact.best_epoch and running.epochs_run == exact.epochs_run
+    assert running.history.training != exact.history.training
+    with pytest.raises(ValueError, match="training_loss must be 'running' or 'exact', got 'full'"):
+        train(_net(), X, y, loss=tp.MeanSquaredError(), optimizer=Adam(0.02), epochs=1, batch_size=16,
+              training_loss="full")
 
 
 def test_early_stopping_restores_the_best_weights():

@@ -55,6 +55,7 @@ from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
 from .solve import SolveResult, solve
+from .stacked import train_stacked
 from .sweep import SweepRecord, SweepResult, TrainingData, setting_key, sweep
 from .train import EpochInfo, History, TrainingDiverged, TrainingResult, train
 from .uncertainty import (
@@ -75,7 +76,7 @@ __all__ = [
     # losses
     "Loss", "SquaredError", "MeanSquaredError", "HuberError", "CrossEntropyOnSigmoid", "CrossEntropyOnSoftmax",
     # training: the loop, optimizers, schedules, checkpoints
-    "train", "TrainingResult", "History", "EpochInfo", "TrainingDiverged",
+    "train", "TrainingResult", "History", "EpochInfo", "TrainingDiverged", "train_stacked",
     "Optimizer", "SGD", "RMSProp", "Adam",
     "Schedule", "StepSchedule", "ExponentialSchedule", "CosineSchedule", "LinearWarmUp",
     "TrainingState", "save_checkpoint", "load_checkpoint", "CheckpointError",

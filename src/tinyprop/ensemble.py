@@ -25,6 +25,7 @@ responsibility.
 
 from __future__ import annotations
 
+import copy
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -37,8 +38,12 @@ from ._validate import as_samples
 from .archive import ArchiveError, check_json, read_archive, write_archive
 from .export import agreement_bound
 from .export.ensemble import export_ensemble_c, export_ensemble_python
+from .losses import Loss
 from .modelfile import ModelFileError, fingerprint, model_from_parts, model_parts
 from .network import Network
+from .optim import Optimizer
+from .stacked import train_stacked
+from .train import STOP_DIVERGED, TRAINING_LOSS_RUNNING, TrainingDiverged, TrainingResult
 
 __all__ = ["Ensemble"]
 
@@ -88,6 +93,66 @@ class Ensemble:
             raise ValueError(str(exc)) from None
         self.metadata: dict[str, Any] = json_copy(dict(metadata or {}))
         self.members: tuple[Network, ...] = tuple(net.copy() for net in networks)
+        self.training_results: tuple[TrainingResult, ...] | None = None
+        """Set by :meth:`trained_together`: each member's :class:`~tinyprop.train.TrainingResult`."""
+
+    @classmethod
+    def trained_together(
+        cls,
+        template: Network,
+        X: Any,
+        y: Any,
+        *,
+        members: int,
+        loss: Loss,
+        optimizer: Optimizer,
+        epochs: int,
+        batch_size: int,
+        seed: int = 0,
+        validation: tuple[Any, Any] | None = None,
+        patience: int | None = None,
+        l2: float = 0.0,
+        training_loss: str = TRAINING_LOSS_RUNNING,
+        metadata: Mapping[str, Any] | None = None,
+    ) -> "Ensemble":
+        """An ensemble of ``members`` networks like ``template``, trained together by :func:`~tinyprop.train_stacked`.
+
+        Member ``k`` has the template's layers with initial weights drawn from
+        ``s[2k]`` and shuffles with seed ``s[2k + 1]``, where
+        ``s = numpy.random.SeedSequence(seed).generate_state(2 * members)``;
+        it gets its own copy of ``optimizer`` (an unused SGD, RMSProp or Adam
+        without ``clip_norm``). The other arguments are those of
+        :func:`~tinyprop.train`, the same for every member. Member ``k`` is
+        bit for bit the network that
+        ``train(Network(layers, seed=int(s[2k]), dtype=...), X, y, optimizer=copy, seed=int(s[2k + 1]), ...)``
+        gives. The template is not changed. The members' training results are
+        in ``ensemble.training_results`` (of this object only; they are not
+        saved). Raises :class:`~tinyprop.train.TrainingDiverged` (of the first
+        member that diverged) if any member diverges.
+        """
+        if not isinstance(template, Network):
+            raise TypeError(f"template must be a tinyprop Network, got {type(template).__name__}")
+        if isinstance(members, bool) or not isinstance(members, int) or members < 1:
+            raise ValueError(f"members must be an integer >= 1, got {members!r}")
+        if not isinstance(optimizer, Optimizer):
+            raise TypeError(f"optimizer must be a tinyprop Optimizer (e.g. Adam()), got {type(optimizer).__name__}")
+        if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+            raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
+        seeds = [int(s) for s in np.random.SeedSequence(int(seed)).generate_state(2 * members)]
+        nets = [
+            Network(copy.deepcopy(template.layers), seed=seeds[2 * k], dtype=template.dtype) for k in range(members)
+        ]
+        results = train_stacked(
+            nets, X, y, loss=loss, optimizers=[copy.deepcopy(optimizer) for _ in range(members)], epochs=epochs,
+            batch_size=batch_size, seeds=seeds[1::2], validation=validation, patience=patience, l2=l2,
+            training_loss=training_loss,
+        )
+        for k, result in enumerate(results):
+            if result.stop_reason == STOP_DIVERGED:
+                raise TrainingDiverged(f"member {k}: {result.message}", result)
+        ensemble = cls(nets, metadata=metadata)
+        ensemble.training_results = tuple(results)
+        return ensemble
 
     @property
     def n_members(self) -> int:

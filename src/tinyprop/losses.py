@@ -29,7 +29,15 @@ __all__ = [
 
 
 class Loss(Configured):
-    """Base class: ``value(y_hat, y) -> float`` and ``gradient(y_hat, y) -> array``."""
+    """Base class: ``value(y_hat, y) -> float`` and ``gradient(y_hat, y) -> array``.
+
+    ``sums_over_samples`` says how the value grows with the rows: ``False``
+    (the default) for a mean over samples, ``True`` for a sum
+    (:class:`SquaredError`). :func:`tinyprop.train` uses it to assemble an
+    epoch's training loss from its mini-batch losses.
+    """
+
+    sums_over_samples: bool = False
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         raise NotImplementedError
@@ -47,6 +55,11 @@ class Loss(Configured):
 
 def _pair(y_hat: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Check shapes; bring a 1-D target to ``(n, 1)``; match ``y``'s dtype to ``y_hat``."""
+    if (
+        type(y_hat) is np.ndarray and type(y) is np.ndarray and y_hat.ndim == 2 and y.shape == y_hat.shape
+        and y.dtype == y_hat.dtype and y_hat.dtype.kind == "f"
+    ):
+        return y_hat, y  # already right: the common case in a training loop
     y_hat = np.asarray(y_hat)
     y = np.asarray(y)
     if y.ndim == 1 and y_hat.ndim == 2 and y_hat.shape[1] == 1:
@@ -71,6 +84,8 @@ class SquaredError(Loss):
 
     The classical backpropagation error; its value grows with the batch size.
     """
+
+    sums_over_samples = True
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         y_hat, y = _pair(y_hat, y)

@@ -28,6 +28,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ._validate import as_float_array, as_samples, kind_of, seed_value
+from ._views import ViewList, views_of
 from .activations import Activation, works_in_place
 from .init import SCHEMES, draw_weight
 from .layers import Affine, ColumnScaling
@@ -126,13 +127,15 @@ class Network:
                 layer.gain = layer.gain.astype(self.dtype)
                 layer.offset = layer.offset.astype(self.dtype)
         self._affine = [layer for layer in self.layers if isinstance(layer, Affine)]
-        self._vector = np.empty(sum(p.size for p in self.params), dtype=self.dtype)
+        self._vector = np.empty(sum(p.size for layer in self._affine for p in layer.params), dtype=self.dtype)
         self._link_vector()
         self._first_affine = next(i for i, layer in enumerate(self.layers) if isinstance(layer, Affine))
         self._plan = tuple(
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
         )
         self._backward_plan = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._plan))))
+        self._shapes = tuple(p.shape for p in self._linked)
+        self._ones_for: dict[int, np.ndarray] = {}  # rows -> read-only vector of ones (never handed out)
         self._grad_slot = {}  # affine layer index -> index of its weight in params
         for i, layer in enumerate(self.layers):
             if isinstance(layer, Affine):
@@ -141,8 +144,16 @@ class Network:
     # ----------------------------------------------------------------- parameters
     @property
     def params(self) -> list[np.ndarray]:
-        """The live parameter arrays in layer order, weight before bias."""
-        return [p for layer in self._affine for p in layer.params]
+        """The live parameter arrays in layer order, weight before bias.
+
+        While no layer's array has been replaced by assignment they are views
+        of :attr:`vector`, and the list says so (it is a ``list`` subclass), so
+        that ``opt.update(net.params, grads)`` can update all of them at once.
+        """
+        for layer, name, linked in self._sources:
+            if getattr(layer, name) is not linked:  # replaced by assignment: vector re-links them
+                return [p for layer in self._affine for p in layer.params]
+        return ViewList(self._linked, self._vector, self._shapes)
 
     @property
     def n_params(self) -> int:
@@ -156,22 +167,27 @@ class Network:
         [work.grad_vector])``, instead of array by array. (If a layer's array
         was replaced by assignment, the vector is re-linked to it first.)
         """
-        if not all(p.base is self._vector for p in self.params):
+        if type(self.params) is not ViewList:
             self._link_vector()
         return self._vector
 
     def _link_vector(self) -> None:
         """Copy every parameter array into ``_vector`` and make the layers hold views of it."""
-        start = 0
+        start, linked, sources = 0, [], []
         for layer in self._affine:
             for name in ("weight", "bias"):
                 array = getattr(layer, name)
                 if array is None:
+                    sources.append((layer, name, None))
                     continue
                 view = self._vector[start:start + array.size].reshape(array.shape)
                 view[...] = array
                 setattr(layer, name, view)
+                linked.append(view)
+                sources.append((layer, name, view))
                 start += array.size
+        self._linked = tuple(linked)
+        self._sources = tuple(sources)  # (layer, attribute, the array it held when linked)
 
     def get_vector(self) -> np.ndarray:
         """All parameters as one new flat vector, in the order of :attr:`params`."""
@@ -183,6 +199,11 @@ class Network:
         if theta.shape != (self.n_params,):
             raise ValueError(f"theta must have shape ({self.n_params},), got shape {theta.shape}")
         self.vector[...] = theta
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        """Unpickling copies every array separately: make the parameters views of the vector again."""
+        self.__dict__.update(state)
+        self._link_vector()
 
     # ----------------------------------------------------------------- forward
     def predict(self, X: Any) -> np.ndarray:
@@ -210,7 +231,10 @@ class Network:
     def forward(self, X: Any, *, workspace: Workspace | None = None) -> tuple[np.ndarray, Trace]:
         """Output and the :class:`Trace` that :meth:`backward` needs.
 
-        With a ``workspace`` (see :meth:`workspace`) the arrays are the
+        Without a workspace the output and the trace's values are new arrays
+        that no later call writes into (the caller may keep them), and the
+        trace can serve any number of :meth:`backward` calls. With a
+        ``workspace`` (see :meth:`workspace`) the arrays are the
         workspace's and no large array is allocated. A batch that already has
         the network's dtype and shape is then used as it is, without the scan
         for NaN and infinity: training checks its data once before the first
@@ -235,6 +259,16 @@ class Network:
             values.append(v)
         return v, Trace(tuple(values), workspace, generation)
 
+    def _ones(self, rows: int) -> np.ndarray:
+        """A cached read-only vector of ``rows`` ones, for bias gradients ``1^T delta``."""
+        ones = self._ones_for.get(rows)
+        if ones is None:
+            if len(self._ones_for) >= 8:
+                self._ones_for.clear()
+            ones = self._ones_for[rows] = np.ones(rows, self.dtype)
+            ones.flags.writeable = False
+        return ones
+
     def workspace(self, max_rows: int) -> Workspace:
         """Preallocated arrays for training steps on batches of up to ``max_rows`` samples."""
         return Workspace(self, max_rows)
@@ -257,24 +291,26 @@ class Network:
         (``dE/dW = delta^T x``, ``dE/db = sum of delta`` per affine layer) and
         ``d_input = dE/dX`` of shape ``(n, n_in)`` (``None`` when
         ``need_input=False``, which skips that last product). For a trace made
-        with a workspace, ``grads`` are the workspace's arrays, overwritten by
-        the next backward pass.
+        without a workspace, ``grads`` and ``d_input`` are new arrays (``grads``
+        views of one new flat vector, ``grads.vector``) that no later call
+        writes into. For a trace made with a workspace, ``grads`` are the
+        workspace's arrays, overwritten by the next backward pass.
         """
         d_out = self._check_d_out(trace, d_out)
         work = trace.workspace
         if work is not None and self._plan[-1][0] is _ACTIVATION_IN_PLACE:
             d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
         rows = d_out.shape[0]
-        if work is None:
-            grads, ones = [np.empty(0)] * len(self.params), np.ones(rows, self.dtype)
+        if work is None:  # new arrays, views of one new flat vector: the caller may keep them
+            grads, ones = views_of(np.empty(self.n_params, self.dtype), self._shapes), self._ones(rows)
         else:
             grads, ones = work.grads, work.ones(rows)
 
         def gradient_of(i: int, layer: Affine, x: np.ndarray, delta: np.ndarray) -> None:
             k = self._grad_slot[i]
-            grads[k] = np.matmul(delta.T, x, out=None if work is None else grads[k])  # delta^T x
+            np.matmul(delta.T, x, out=grads[k])  # delta^T x
             if layer.bias is not None:  # sum_i delta[i], as the product 1^T delta
-                grads[k + 1] = np.matmul(ones, delta, out=None if work is None else grads[k + 1])
+                np.matmul(ones, delta, out=grads[k + 1])
 
         d_input = self._delta_recursion(trace, d_out, need_input, gradient_of)
         return grads, d_input

@@ -34,6 +34,7 @@ import numpy as np
 
 from ._json import canonical_json
 from ._validate import real_in_range
+from ._views import flat_vector, views_of
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 
 __all__ = ["Optimizer", "OptimizerState", "SGD", "RMSProp", "Adam", "optimizer_from_state"]
@@ -80,19 +81,51 @@ class Optimizer:
         self._layout: list[tuple[tuple[int, ...], np.dtype]] | None = None
         self._slots: dict[str, list[np.ndarray]] = {}
         self._work: list[np.ndarray] = []
+        self._flat_slots: dict[str, list[np.ndarray]] = {}
+        self._flat_work: list[np.ndarray] = []
         self._clipped: list[np.ndarray] = []
 
     # ----------------------------------------------------------------- the step
     def update(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
-        """Apply one update to ``params`` in place, using ``grads`` (not modified)."""
+        """Apply one update to ``params`` in place, using ``grads`` (not modified).
+
+        When ``params`` is ``net.params`` and ``grads`` comes from
+        ``net.backward`` (lists of views of one flat vector each) and there is
+        no clipping, every array is updated at once through the flat vectors:
+        the same operations element for element, a few calls instead of a few
+        per array.
+        """
         if self._layout is None:
             self._allocate(params)
-        self._check(params, grads)
+        flat = None if self.clip_norm is not None else self._flat_pair(params, grads)
+        if flat is None:
+            self._check(params, grads)
         multiplier = 1.0 if self.schedule is None else self.schedule.multiplier(self.steps)
+        if flat is not None:
+            self.steps += 1
+            slots, work = self._slots, self._work
+            self._slots, self._work = self._flat_slots, self._flat_work
+            try:
+                self._apply(0, flat[0], flat[1], multiplier)
+            finally:
+                self._slots, self._work = slots, work
+            return
         grads = self._clip(grads)
         self.steps += 1
         for i, (p, g) in enumerate(zip(params, grads)):
             self._apply(i, p, g, multiplier)
+
+    def _flat_pair(
+        self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray] | None:
+        """The flat vectors behind ``params`` and ``grads`` when both fit this optimizer's layout, else ``None``."""
+        P, G = flat_vector(params), flat_vector(grads)
+        if P is None or G is None or not self._flat_work:
+            return None
+        shapes = self._shapes
+        if params.shapes != shapes or grads.shapes != shapes or P.dtype != self._flat_work[0].dtype:  # type: ignore[attr-defined]
+            return None  # not the layout of the first update: the per-array check explains
+        return P, G
 
     def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
         raise NotImplementedError
@@ -114,13 +147,40 @@ class Optimizer:
             if p.dtype.kind != "f":
                 raise TypeError(f"params[{i}] must be a float array, got dtype {p.dtype}")
         self._layout = [(p.shape, p.dtype) for p in arrays]
-        self._slots = {name: [np.zeros_like(p) for p in arrays] for name in self._slot_names}
+        self._slots = {name: self._new_arrays(np.zeros) for name in self._slot_names}
         self._allocate_buffers()
 
-    def _allocate_buffers(self) -> None:
+    def _new_arrays(self, make: Any) -> list[np.ndarray]:
+        """Arrays of the layout from ``make(size, dtype)``: views of one flat array when the dtypes agree."""
         assert self._layout is not None
-        self._work = [np.empty(shape, dtype) for shape, dtype in self._layout]
-        self._clipped = [np.empty(shape, dtype) for shape, dtype in self._layout] if self.clip_norm else []
+        shapes = tuple(shape for shape, _ in self._layout)
+        dtypes = {dtype for _, dtype in self._layout}
+        if len(dtypes) == 1:
+            return views_of(make(sum(math.prod(shape) for shape in shapes), dtypes.pop()), shapes)
+        return [make(shape, dtype) for shape, dtype in self._layout]
+
+    def _allocate_buffers(self) -> None:
+        """Scratch arrays; each slot and the scratch as views of one flat array too, for flat updates.
+
+        Slot arrays that are not yet views of one flat array (state set from
+        outside) are copied into one.
+        """
+        assert self._layout is not None
+        self._work = self._new_arrays(np.empty)
+        self._clipped = self._new_arrays(np.empty) if self.clip_norm else []
+        self._flat_slots: dict[str, list[np.ndarray]] = {}
+        self._flat_work: list[np.ndarray] = []
+        self._shapes = tuple(shape for shape, _ in self._layout)
+        flat_work = flat_vector(self._work)
+        if flat_work is None:
+            return  # arrays of several dtypes are updated one by one
+        for name, slot in self._slots.items():
+            flat = flat_vector(slot)
+            if flat is None:
+                flat = np.concatenate([a.reshape(-1) for a in slot])
+                self._slots[name] = views_of(flat, self._shapes)
+            self._flat_slots[name] = [flat]
+        self._flat_work = [flat_work]
 
     def _check(self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]) -> None:
         layout = self._layout
@@ -139,6 +199,50 @@ class Optimizer:
                 )
 
     # ----------------------------------------------------------------- state
+    def _mark(self) -> None:
+        """Remember the current state (update count and state arrays) for :meth:`_rewind`.
+
+        The copies go into buffers kept for the purpose, so marking before
+        every epoch allocates nothing after the first time.
+        """
+        if self._layout is None:
+            self._marked: tuple[int, dict[str, list[np.ndarray]] | None] = (self.steps, None)
+            return
+        previous = getattr(self, "_marked", (0, None))[1]
+        if previous is None or any(len(previous[k]) != len(v) for k, v in self._slots.items()):
+            previous = {name: [a.copy() for a in slot] for name, slot in self._slots.items()}
+        else:
+            for name, slot in self._slots.items():
+                for copy, array in zip(previous[name], slot):
+                    np.copyto(copy, array)
+        self._marked = (self.steps, previous)
+
+    def _rewind(self) -> None:
+        """Return to the state of the last :meth:`_mark`."""
+        steps, arrays = self._marked
+        self.steps = steps
+        if arrays is None:
+            self._layout, self._slots, self._work, self._clipped = None, {}, [], []
+            return
+        for name, slot in self._slots.items():
+            for array, copy in zip(slot, arrays[name]):
+                np.copyto(array, copy)
+
+    def _take_state(
+        self, steps: int, layout: list[tuple[tuple[int, ...], np.dtype]] | None, slots: dict[str, list[np.ndarray]]
+    ) -> None:
+        """Adopt ``steps``, the parameter ``layout`` and the state arrays ``slots`` as they are.
+
+        Unchecked (the arrays may be non-finite): for :func:`tinyprop.train_stacked`,
+        which hands every optimizer the state its network reached in the stack.
+        """
+        self.steps = int(steps)
+        self._layout, self._slots = layout, slots
+        if layout is None:
+            self._work, self._clipped = [], []
+        else:
+            self._allocate_buffers()
+
     def settings(self) -> dict[str, Any]:
         """JSON-able constructor arguments (the schedule as its own settings dict)."""
         return {

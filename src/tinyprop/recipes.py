@@ -38,6 +38,7 @@ with the library calls above.
 
 from __future__ import annotations
 
+import json
 import math
 import time
 from collections.abc import Mapping, Sequence
@@ -55,8 +56,9 @@ from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
 from .solve import SolveResult, solve
+from .stacked import train_stacked
 from .sweep import TrainingData
-from .train import History, TrainingResult, train
+from .train import STOP_DIVERGED, History, TrainingDiverged, TrainingResult, train
 from .uncertainty import uncertainty_report
 
 __all__ = [
@@ -313,13 +315,7 @@ class TabularRegression:
 
     def __call__(self, setting: Mapping[str, Any], data: TrainingData) -> tuple[Network, TrainingResult]:
         """Train the network of ``setting`` on ``data.X``, ``data.y``; return ``(network, result)``."""
-        if not isinstance(setting, Mapping):
-            raise TypeError(f"setting must be a dict, got {type(setting).__name__}")
-        allowed = [f.name for f in fields(self)]
-        unknown = sorted(str(key) for key in setting if key not in allowed)
-        if unknown:
-            raise ValueError(f"unknown setting key(s) {unknown}; TabularRegression takes {allowed}")
-        return replace(self, **setting).fit(data.X, data.y)
+        return self._with(setting).fit(data.X, data.y)
 
     def fit(self, X: Any, y: Any, *, progress: bool = False) -> tuple[Network, TrainingResult]:
         """Build and train one network on ``X`` ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``, ``n >= 2``."""
@@ -328,6 +324,76 @@ class TabularRegression:
             batch_size=self.batch_size, epochs=self.epochs, patience=self.patience, seed=int(self.seed),
             progress=progress,
         )
+
+    def _with(self, setting: Mapping[str, Any]) -> "TabularRegression":
+        if not isinstance(setting, Mapping):
+            raise TypeError(f"setting must be a dict, got {type(setting).__name__}")
+        allowed = [f.name for f in fields(self)]
+        unknown = sorted(str(key) for key in setting if key not in allowed)
+        if unknown:
+            raise ValueError(f"unknown setting key(s) {unknown}; TabularRegression takes {allowed}")
+        return replace(self, **setting)
+
+    def stack_key(self, setting: Mapping[str, Any]) -> str:
+        """Equal for settings that differ at most in ``seed``, ``lr`` and ``decoupled_decay``.
+
+        :func:`~tinyprop.sweep.sweep` trains settings with equal keys together
+        through :meth:`fit_stack`.
+        """
+        recipe = asdict(self._with(setting))
+        return json.dumps({k: v for k, v in recipe.items() if k not in _STACKED_FIELDS}, sort_keys=True)
+
+    def fit_stack(
+        self, settings: list[Mapping[str, Any]], data: TrainingData
+    ) -> list[tuple[Network, TrainingResult] | Exception]:
+        """What ``self(setting, data)`` gives for each setting, from one :func:`~tinyprop.train_stacked` run.
+
+        The settings must share :meth:`stack_key`. Each network equals, bit for
+        bit, the one ``self(setting, data)`` trains alone; a diverged one comes
+        back as the :class:`~tinyprop.train.TrainingDiverged` that call raises.
+        """
+        recipes = [self._with(setting) for setting in settings]
+        if len({self.stack_key(setting) for setting in settings}) != 1:
+            raise ValueError(f"fit_stack needs settings that differ only in {list(_STACKED_FIELDS)}")
+        first = recipes[0]
+        plans = [_tabular_plan(data.X, data.y, hidden=first.hidden, seed=int(r.seed)) for r in recipes]
+        results = train_stacked(
+            [plan.net for plan in plans], np.stack([plan.X for plan in plans]), np.stack([plan.y for plan in plans]),
+            loss=MeanSquaredError(), optimizers=[Adam(lr=r.lr, decoupled_decay=r.decoupled_decay) for r in recipes],
+            epochs=first.epochs, batch_size=first.batch_size, seeds=[plan.shuffle_seed for plan in plans],
+            validation=(np.stack([plan.X_held for plan in plans]), np.stack([plan.y_held for plan in plans])),
+            patience=first.patience, l2=first.l2,
+        )
+        return [
+            TrainingDiverged(result.message, result) if result.stop_reason == STOP_DIVERGED else (plan.net, result)
+            for plan, result in zip(plans, results)
+        ]
+
+
+_STACKED_FIELDS = ("seed", "lr", "decoupled_decay")  # what fit_stack lets differ within one stack
+
+
+@dataclass(frozen=True)
+class _TabularPlan:
+    """One setting of the tabular recipe before training: the network, its rows and its shuffling seed."""
+
+    net: Network
+    X: np.ndarray
+    y: np.ndarray
+    X_held: np.ndarray
+    y_held: np.ndarray
+    shuffle_seed: int
+
+
+def _tabular_plan(X: Any, y: Any, *, hidden: tuple[int, ...], seed: int) -> _TabularPlan:
+    """The network, the training rows and the held-out rows of the tabular recipe for ``seed``."""
+    X, targets = _tabular_data(X, y)
+    hold_seed, init_seed, shuffle_seed = _streams(seed)
+    order = np.random.default_rng(hold_seed).permutation(X.shape[0])
+    n_hold = max(1, X.shape[0] // 10)
+    held, kept = order[:n_hold], order[n_hold:]
+    net = _scaled_tanh_network(X, targets, hidden, init_seed)
+    return _TabularPlan(net, X[kept], targets[kept], X[held], targets[held], shuffle_seed)
 
 
 def _fit_tabular(
@@ -353,18 +419,13 @@ def _fit_tabular(
     ``seed`` feeds three independent streams (``numpy.random.SeedSequence``):
     hold-out rows, initial weights, shuffling.
     """
-    X, targets = _tabular_data(X, y)
-    hold_seed, init_seed, shuffle_seed = _streams(seed)
-    order = np.random.default_rng(hold_seed).permutation(X.shape[0])
-    n_hold = max(1, X.shape[0] // 10)
-    held, kept = order[:n_hold], order[n_hold:]
-    net = _scaled_tanh_network(X, targets, hidden, init_seed)
+    plan = _tabular_plan(X, y, hidden=hidden, seed=seed)
     result = train(
-        net, X[kept], targets[kept], loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
-        epochs=epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
-        seed=shuffle_seed, progress=progress, l2=l2,
+        plan.net, plan.X, plan.y, loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
+        epochs=epochs, batch_size=batch_size, validation=(plan.X_held, plan.y_held), patience=patience,
+        seed=plan.shuffle_seed, progress=progress, l2=l2,
     )
-    return net, result
+    return plan.net, result
 
 
 # ---------------------------------------------------------------- the command line's recipe

@@ -25,6 +25,19 @@ Where the work runs (``executor``):
   data once per worker (``client.scatter(..., broadcast=True)``); any other
   executor receives it with every task (a thread pool shares it in memory).
 
+Networks trained together: with the sequential executor (``executor=None``),
+a recipe that offers it trains several settings at once, in stacked arrays
+(:func:`tinyprop.train_stacked`). It has two more methods:
+``recipe.stack_key(setting)``, a string that is equal for settings it can
+train together (or ``None``), and ``recipe.fit_stack(settings, data)``, which
+returns, in order, what ``recipe(setting, data)`` would return for each
+setting, or the exception it would raise (for a diverged network, a
+:class:`~tinyprop.train.TrainingDiverged`). Since the stack gives each network
+bit for bit what training it alone gives, the table and the networks are the
+same as one setting at a time; ``wall_time`` is the group's time divided
+equally among its settings. :class:`tinyprop.recipes.TabularRegression` groups
+settings that differ only in ``seed``, ``lr`` and ``decoupled_decay``.
+
 Failures: an exception raised by the recipe (:class:`~tinyprop.train.TrainingDiverged`
 included) or a non-finite validation or test loss makes the row
 ``status="failed"`` with ``error="<ExceptionType>: <message>"``; the sweep
@@ -304,18 +317,40 @@ def _train_one(recipe: Callable[..., Any], key: str, data: _SweepData | _DataRef
         if data.token not in _INSTALLED:
             raise RuntimeError("this worker holds no sweep data: the pool's initializer did not run in it")
         data = _INSTALLED[data.token]
-    net = error = epochs_run = stop_reason = validation_loss = test_loss = test_rmse = None
     started = time.perf_counter()
     try:
-        net, result = _network_and_result(recipe(json.loads(key), data.training))
-        wall_time = time.perf_counter() - started
+        produced = recipe(json.loads(key), data.training)
+    except Exception as exc:  # the recipe is user code: anything it raises is this setting's failure
+        produced = exc
+    return _evaluated(key, produced, time.perf_counter() - started, data, loss)
+
+
+def _train_stack(recipe: Any, keys: list[str], data: _SweepData, loss: Loss) -> list[_Outcome]:
+    """Run ``recipe.fit_stack`` for settings trained together; one outcome per key, in order."""
+    started = time.perf_counter()
+    try:
+        produced = list(recipe.fit_stack([json.loads(key) for key in keys], data.training))
+        if len(produced) != len(keys):
+            raise ValueError(f"fit_stack returned {len(produced)} results for {len(keys)} settings")
+    except Exception as exc:  # the whole group failed: every setting gets the error
+        produced = [exc] * len(keys)
+    share = (time.perf_counter() - started) / len(keys)
+    return [_evaluated(key, one, share, data, loss) for key, one in zip(keys, produced)]
+
+
+def _evaluated(key: str, produced: Any, wall_time: float, data: _SweepData, loss: Loss) -> _Outcome:
+    """The row (and network) for what the recipe produced for one setting: its result or its exception."""
+    net = error = epochs_run = stop_reason = validation_loss = test_loss = test_rmse = None
+    try:
+        if isinstance(produced, Exception):
+            raise produced
+        net, result = _network_and_result(produced)
         if result is not None:
             epochs_run, stop_reason = result.epochs_run, result.stop_reason
         validation_loss = _loss_on(net, data.training.validation, loss, "validation")
         test_loss = _loss_on(net, data.test, loss, "test")
         test_rmse = None if data.test is None else _rmse(net, data.test)
-    except Exception as exc:  # the recipe is user code: anything it raises is this setting's failure
-        wall_time = time.perf_counter() - started
+    except Exception as exc:
         net, error = None, f"{type(exc).__name__}: {exc}"
         validation_loss = test_loss = test_rmse = None
         if isinstance(exc, TrainingDiverged):
@@ -366,8 +401,13 @@ def _outcomes(
 ) -> Iterator[tuple[int, _Outcome]]:
     """``(index, outcome)`` for every pending setting, in the order they finish."""
     if executor is None:
-        for index, key in pending:
-            yield index, _train_one(recipe, key, data, loss)
+        for group in _stack_groups(recipe, pending):
+            if len(group) == 1:
+                index, key = group[0]
+                yield index, _train_one(recipe, key, data, loss)
+            else:
+                outcomes = _train_stack(recipe, [key for _, key in group], data, loss)
+                yield from zip([index for index, _ in group], outcomes)
         return
     if isinstance(executor, Executor):
         client = _dask_client(executor)
@@ -389,6 +429,31 @@ def _outcomes(
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
         _INSTALLED.pop(token, None)  # a thread pool's workers installed it in this process
+
+
+def _stack_groups(recipe: Any, pending: list[tuple[int, str]]) -> list[list[tuple[int, str]]]:
+    """Pending settings in groups the recipe trains together (see the module docstring); singletons otherwise.
+
+    Groups keep the order of their first setting; a setting whose ``stack_key``
+    raises or is ``None`` is trained alone (its own call reports the problem).
+    """
+    if not (callable(getattr(recipe, "stack_key", None)) and callable(getattr(recipe, "fit_stack", None))):
+        return [[item] for item in pending]
+    groups: dict[str, list[tuple[int, str]]] = {}
+    ordered: list[list[tuple[int, str]]] = []
+    for index, key in pending:
+        try:
+            stack = recipe.stack_key(json.loads(key))
+        except Exception:
+            stack = None
+        if stack is None:
+            ordered.append([(index, key)])
+        elif stack in groups:
+            groups[stack].append((index, key))
+        else:
+            groups[stack] = [(index, key)]
+            ordered.append(groups[stack])
+    return ordered
 
 
 def _run_on(

@@ -10,21 +10,52 @@ One epoch of :func:`train`:
    one optimizer update of all parameters at once,
    ``optimizer.update([net.vector], [workspace.grad_vector])`` (the flat
    vectors of which ``net.params`` and the gradients are views);
-3. record the training loss (``loss`` over all training rows, with the
-   weights at the end of the epoch, without the L2 term) and, when given,
-   the validation loss on the validation rows;
+3. record the training loss and, when given, the validation loss on the
+   validation rows (exact: ``loss`` over all validation rows with the weights
+   at the end of the epoch, without the L2 term);
 4. bookkeeping for early stopping, the progress line and the callback.
+
+**The recorded training loss** (``training_loss=``):
+
+- ``"running"`` (the default) costs nothing: it is assembled from the
+  mini-batch losses the epoch has already computed, each taken with the
+  weights *before* that batch's update, without the L2 term. For a loss that
+  is a mean over samples (every built-in loss except ``SquaredError``) it is
+  the mean weighted by batch size, ``sum_b n_b E_b / n``; for a loss that sums
+  over samples (``Loss.sums_over_samples``, ``SquaredError``) it is the sum
+  ``sum_b E_b``. It therefore mixes the weights of the start and the end of
+  the epoch (early batches were seen by older weights) and usually lies a
+  little above the loss at the end of the epoch while the loss falls.
+- ``"exact"``: ``loss`` over all training rows with the weights at the end of
+  the epoch, one extra forward pass over the training data per epoch (what
+  :func:`train` recorded before the running mean became the default).
+
+Early stopping, the best epoch and the restored weights depend only on the
+validation loss, which is always exact, so the choice changes none of them,
+nor the weights: only ``history.training`` (and what the callback and the
+progress line show).
 
 The same seed, data and starting weights give bit-identical weights: the
 only randomness is the permutation, and it comes from the seeded generator.
 
-**Divergence guard.** Training stops as soon as the mini-batch loss, the
-squared gradient norm, an updated weight, or the end-of-epoch training or
-validation loss is not finite. The network is left holding the last finite
-weights (those before the update that produced a non-finite weight, else the
-current ones) and :class:`TrainingDiverged` is raised; its ``result`` holds
-the history up to that point. NumPy's overflow and invalid-value warnings
-are silenced inside the loop because this guard reports the event instead.
+**Divergence guard.** Training stops at the first update where the
+mini-batch loss, the squared gradient norm or an updated weight is not
+finite, or after an epoch whose training or validation loss is not finite.
+The network is left holding the last finite weights (those before the update
+that produced a non-finite weight, else the current ones) and
+:class:`TrainingDiverged` is raised; its ``result`` holds the history up to
+that point. NumPy's overflow and invalid-value warnings are silenced inside
+the loop because this guard reports the event instead.
+
+To keep a step as cheap as the bare step, the loop does not copy the weights
+before every update. It checks the mini-batch loss and the gradient norm at
+every update and the weights once at the end of each epoch (and, because a
+non-finite weight makes the outputs non-finite, through the next mini-batch
+loss). When a check fails it rewinds the weights and the optimizer to their
+copies from the start of the epoch and replays the epoch's updates with every
+check after every update: the arithmetic is the same, so the replay stops at
+the same update, with the same weights and message, as a guard that checked
+everything after every update.
 
 **Checkpoint and resume.** :class:`TrainingState` is everything needed to
 continue a run exactly: weights, optimizer state, the generator's state, the
@@ -47,7 +78,7 @@ import numpy as np
 
 from ._json import json_copy
 from ._progress import EpochProgress
-from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
+from ._validate import _sum_is_finite, as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
 from .checkpoint import TrainingState, save_checkpoint
 from .layers import Affine
 from .losses import Loss
@@ -67,10 +98,18 @@ STOP_EARLY = "early stopping"
 STOP_CALLBACK = "callback"
 STOP_DIVERGED = "diverged"
 
+TRAINING_LOSS_RUNNING = "running"
+TRAINING_LOSS_EXACT = "exact"
+
 
 @dataclass(frozen=True)
 class History:
     """Loss per epoch: ``training[e - 1]`` and ``validation[e - 1]`` belong to epoch ``e``.
+
+    ``training`` is the running value assembled from the epoch's mini-batch
+    losses, or the exact loss over all training rows with
+    ``training_loss="exact"`` (see the module docstring); ``validation`` is
+    always the exact loss over the validation rows at the end of the epoch.
 
     ``validation`` is ``None`` when no validation data was given.
     """
@@ -154,6 +193,7 @@ def train(
     resume: TrainingState | None = None,
     checkpoint: str | os.PathLike[str] | None = None,
     checkpoint_every: int = 1,
+    training_loss: str = TRAINING_LOSS_RUNNING,
 ) -> TrainingResult:
     """Train ``net`` in place by mini-batch gradient descent (see the module docstring).
 
@@ -163,8 +203,10 @@ def train(
         The network and its training data: ``X`` ``(n, n_in)``, ``y``
         ``(n, n_out)`` (1-D allowed for one output). Converted once to the
         network's dtype; the caller's arrays are not modified. Memory: one
-        shuffled copy of ``X`` and ``y``, refilled every epoch, plus the
-        network's workspace for one mini-batch.
+        shuffled copy of ``X`` and ``y``, refilled every epoch, the network's
+        workspace for one mini-batch, and a copy of the weights and of the
+        optimizer's state taken at the start of every epoch (for the
+        divergence guard's replay).
     loss:
         A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
         losses (``MeanSquaredError``, the cross-entropies) make the step size
@@ -208,6 +250,12 @@ def train(
         (:func:`tinyprop.save_checkpoint`), before the callback runs. A run
         that dies can be continued from the last checkpoint with bit-identical
         results.
+    training_loss:
+        ``"running"`` (default): the epoch's training loss is assembled from
+        its mini-batch losses, at no extra cost; ``"exact"``: the loss over all
+        training rows with the end-of-epoch weights, one more forward pass over
+        the data per epoch. See the module docstring; the weights, the
+        validation loss and early stopping are the same either way.
 
     Raises
     ------
@@ -224,7 +272,10 @@ def train(
     >>> result.stop_reason, result.history.training[-1] < 1e-8
     ('epochs', True)
     """
-    run = _Run(net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback)
+    run = _Run(
+        net, X, y, loss, optimizer, epochs, batch_size, validation, patience, seed, progress, l2, callback,
+        training_loss,
+    )
     run.checkpoint_to(checkpoint, checkpoint_every)
     if resume is not None:
         run.restore(resume)
@@ -249,7 +300,10 @@ class _Run:
         progress: bool,
         l2: float,
         callback: Callable[[EpochInfo], bool | None] | None,
+        training_loss: str = TRAINING_LOSS_RUNNING,
     ) -> None:
+        if training_loss not in (TRAINING_LOSS_RUNNING, TRAINING_LOSS_EXACT):
+            raise ValueError(f"training_loss must be 'running' or 'exact', got {training_loss!r}")
         if not isinstance(net, Network):
             raise TypeError(f"net must be a tinyprop Network, got {type(net).__name__}")
         if not isinstance(loss, Loss):
@@ -275,7 +329,9 @@ class _Run:
         self.l2 = real_in_range(l2, "l2", low=0.0)
         self.progress_line = EpochProgress() if progress else None
         self.rng = np.random.default_rng(seed)
+        self.exact_training_loss = training_loss == TRAINING_LOSS_EXACT
         self.settings = {
+            "training_loss": training_loss,
             "batch_size": self.batch_size,
             "seed": None if seed is None else int(seed),
             "l2": self.l2,
@@ -290,7 +346,8 @@ class _Run:
         self.is_weight = [
             is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]
         ]
-        self.backup = np.empty_like(net.vector)
+        self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
+        self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
         self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
         self.checkpoint: str | os.PathLike[str] | None = None
@@ -380,13 +437,16 @@ class _Run:
             with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
                 problem = self._epoch()
             if problem is not None:
-                self._finish_progress()
-                result = self._result(STOP_DIVERGED, problem)
+                result = self._finish(STOP_DIVERGED, problem)
                 raise TrainingDiverged(result.message, result)
             reason = self._after_epoch()
+        return self._finish(reason)
+
+    def _finish(self, reason: str, problem: str | None = None) -> TrainingResult:
+        """The result; after early stopping (not divergence) the network gets the best epoch's weights."""
         self._finish_progress()
-        result = self._result(reason, None)
-        if self.patience is not None and self.best_epoch is not None:
+        result = self._result(reason, problem)
+        if reason != STOP_DIVERGED and self.patience is not None and self.best_epoch is not None:
             _copy_into(self.params, self.best_weights or [], "best weights")
         return result
 
@@ -396,40 +456,73 @@ class _Run:
         X, y = self.shuffled
         np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
         np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
-        for start in range(0, X.shape[0], self.batch_size):
-            problem = self._step(X[start:start + self.batch_size], y[start:start + self.batch_size])
-            if problem is not None:
-                return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+        vector = self.net.vector
+        np.copyto(self.backup, vector)  # the start of the epoch, to replay from if a check fails
+        self.optimizer._mark()
+        problem, epoch_loss = self._updates(X, y, vector, every_check=False)
+        if problem is None and not _sum_is_finite(vector):
+            problem = "a weight is not finite"
+        if problem is not None:  # rewind and replay with every check after every update (module docstring)
+            np.copyto(vector, self.backup)
+            self.optimizer._rewind()
+            problem = self._updates(X, y, vector, every_check=True)[0] or problem
+            return self._where(problem)
+        return self._end_epoch(epoch_loss)
+
+    def _where(self, problem: str) -> str:
+        """A divergence found during the epoch's updates, with the epoch and update it happened in."""
+        return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+
+    def _end_epoch(self, epoch_loss: float) -> str | None:
+        """Count the epoch done and record its losses (``epoch_loss``: the running training loss).
+
+        Returns a description of a non-finite loss, or ``None``.
+        """
         self.epoch += 1
-        self.training_loss.append(self.loss.value(self.net.predict(self.X), self.y))
-        if not math.isfinite(self.training_loss[-1]):
-            return f"after epoch {self.epoch}: the training loss is {self.training_loss[-1]}"
+        if self.exact_training_loss:
+            epoch_loss = self.loss.value(self.net.predict(self.X), self.y)
+        self.training_loss.append(epoch_loss)
+        if not math.isfinite(epoch_loss):
+            return f"after epoch {self.epoch}: the training loss is {epoch_loss}"
         if self.validation is not None and self.validation_loss is not None:
             self.validation_loss.append(self.loss.value(self.net.predict(self.validation[0]), self.validation[1]))
             if not math.isfinite(self.validation_loss[-1]):
                 return f"after epoch {self.epoch}: the validation loss is {self.validation_loss[-1]}"
         return None
 
-    def _step(self, xb: np.ndarray, yb: np.ndarray) -> str | None:
-        out, trace = self.net.forward(xb, workspace=self.work)
-        batch_loss = self.loss.value(out, yb)
-        if not math.isfinite(batch_loss):
-            return f"the mini-batch loss is {batch_loss}"
-        grads, _ = self.net.backward(trace, self.loss.gradient(out, yb), need_input=False)
-        if self.l2:
-            for g, p, is_weight in zip(grads, self.params, self.is_weight):
-                if is_weight:
-                    g += self.l2 * p
-        vector, grad_vector = self.net.vector, self.work.grad_vector  # grads are views of grad_vector
-        squared_norm = float(np.vdot(grad_vector, grad_vector))
-        if not math.isfinite(squared_norm):
-            return f"the squared gradient norm is {squared_norm}"
-        np.copyto(self.backup, vector)
-        self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
-        if not np.isfinite(vector).all():
-            np.copyto(vector, self.backup)
-            return "the update made a weight non-finite (the weights before it were restored)"
-        return None
+    def _updates(self, X: np.ndarray, y: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
+        """The epoch's updates on the shuffled rows; ``(problem or None, running training loss)``.
+
+        Stops at the first non-finite mini-batch loss or gradient norm; with
+        ``every_check`` also at the first update that makes a weight
+        non-finite, restoring the weights from before it.
+        """
+        total, n, summed = 0.0, X.shape[0], self.loss.sums_over_samples
+        grad_vector = self.work.grad_vector  # the gradients are views of it
+        for start in range(0, n, self.batch_size):
+            xb, yb = X[start:start + self.batch_size], y[start:start + self.batch_size]
+            out, trace = self.net.forward(xb, workspace=self.work)
+            batch_loss = self.loss.value(out, yb)
+            if not math.isfinite(batch_loss):
+                return f"the mini-batch loss is {batch_loss}", total
+            total += batch_loss if summed else batch_loss * xb.shape[0]
+            grads, _ = self.net.backward(trace, self.loss.gradient(out, yb), need_input=False)
+            if self.l2:
+                for g, p, is_weight in zip(grads, self.params, self.is_weight):
+                    if is_weight:
+                        g += self.l2 * p
+            squared_norm = float(np.vdot(grad_vector, grad_vector))
+            if not math.isfinite(squared_norm):
+                return f"the squared gradient norm is {squared_norm}", total
+            if every_check:
+                if self.step_backup is None:
+                    self.step_backup = np.empty_like(vector)
+                np.copyto(self.step_backup, vector)
+            self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
+            if every_check and not np.isfinite(vector).all():
+                np.copyto(vector, self.step_backup)
+                return "the update made a weight non-finite (the weights before it were restored)", total
+        return None, total if summed else total / n
 
     def _after_epoch(self) -> str | None:
         if self.validation_loss is not None:

@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ._validate import positive_int
+from ._views import views_of
 from .layers import Affine
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -68,12 +69,8 @@ class Workspace:
         self._scratch_for: dict[tuple[int, int], np.ndarray] = {}  # (rows, width) -> scratch(rows, width)
         self.grad_vector = np.empty(network.n_params, dtype)
         """All gradients as one flat array, aligned with ``network.vector``."""
-        self.grads = []
+        self.grads = views_of(self.grad_vector, tuple(p.shape for p in network.params))
         """The gradient arrays, aligned with ``network.params`` (views into :attr:`grad_vector`)."""
-        start = 0
-        for p in network.params:
-            self.grads.append(self.grad_vector[start:start + p.size].reshape(p.shape))
-            start += p.size
         self.generation = 0
 
     def outputs(self, rows: int) -> tuple[np.ndarray | None, ...]:

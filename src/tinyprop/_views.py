@@ -1,0 +1,56 @@
+"""Lists of arrays that are consecutive views of one flat vector.
+
+``net.params`` and the gradients of ``net.backward`` are such lists: each
+array is a view into one flat vector (``net.vector``, or the gradient vector
+the backward pass filled), in order and without gaps. An optimizer that
+receives two of them, in the same layout, can update every array with one
+call per operation on the flat vectors instead of one per array; the result
+is the same element for element.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Sequence
+
+import numpy as np
+
+__all__ = ["ViewList", "flat_vector", "views_of"]
+
+
+class ViewList(list):
+    """A list of arrays that are, in order, the whole of the flat array ``vector``."""
+
+    __slots__ = ("vector", "shapes", "_items")
+
+    def __init__(self, arrays: tuple[np.ndarray, ...], vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> None:
+        list.__init__(self, arrays)
+        self.vector = vector
+        self._items = arrays  # what the list held when it was made
+        self.shapes = shapes
+
+
+ViewList.__name__ = "list"  # a list in every respect; error messages that name the type say so
+
+
+def flat_vector(arrays: Sequence[np.ndarray]) -> np.ndarray | None:
+    """The flat vector behind ``arrays`` if it is a :class:`ViewList` nobody has changed, else ``None``."""
+    if type(arrays) is not ViewList:
+        return None
+    items = arrays._items
+    if len(arrays) != len(items):
+        return None  # an element was added or removed since the list was made
+    for a, b in zip(arrays, items):
+        if a is not b:
+            return None  # an element was replaced
+    return arrays.vector
+
+
+def views_of(vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> ViewList:
+    """Consecutive views of ``vector`` with the given shapes (their sizes must add up to its length)."""
+    arrays, start = [], 0
+    for shape in shapes:
+        stop = start + math.prod(shape)
+        arrays.append(vector[start:stop].reshape(shape))
+        start = stop
+    return ViewList(tuple(arrays), vector, shapes)
