@@ -130,10 +130,10 @@ class Network:
         self._vector = np.empty(sum(p.size for layer in self._affine for p in layer.params), dtype=self.dtype)
         self._link_vector()
         self._first_affine = next(i for i, layer in enumerate(self.layers) if isinstance(layer, Affine))
-        self._plan = tuple(
+        self._steps = tuple(
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
         )
-        self._backward_plan = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._plan))))
+        self._backward_steps = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._steps))))
         self._shapes = tuple(p.shape for p in self._linked)
         self._ones_for: dict[int, np.ndarray] = {}  # rows -> read-only vector of ones (never handed out)
         self._grad_slot = {}  # affine layer index -> index of its weight in params
@@ -221,7 +221,7 @@ class Network:
         return out
 
     def _predict_rows(self, v: np.ndarray) -> np.ndarray:
-        for kind, layer in self._plan:
+        for kind, layer in self._steps:
             if kind is _ACTIVATION_IN_PLACE:
                 v = layer._value_in_place(v)  # v is the affine output this call made
             else:
@@ -242,14 +242,14 @@ class Network:
         """
         if workspace is None:
             values = [as_samples(X, "X", self.n_in, self.dtype)]
-            for _, layer in self._plan:
+            for _, layer in self._steps:
                 values.append(layer.value(values[-1]))
             return values[-1], Trace(tuple(values))
         x = X if _is_batch(X, self.n_in, self.dtype) else as_samples(X, "X", self.n_in, self.dtype)
         generation = self._claim(workspace, x.shape[0])
         values = [x]
         v = x
-        for (kind, layer), out in zip(self._plan, workspace.outputs(x.shape[0])):
+        for (kind, layer), out in zip(self._steps, workspace.outputs(x.shape[0])):
             if kind is _AFFINE:
                 v = layer.value(v, out=out)
             elif kind is _ACTIVATION_IN_PLACE:
@@ -298,7 +298,7 @@ class Network:
         """
         d_out = self._check_d_out(trace, d_out)
         work = trace.workspace
-        if work is not None and self._plan[-1][0] is _ACTIVATION_IN_PLACE:
+        if work is not None and self._steps[-1][0] is _ACTIVATION_IN_PLACE:
             d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
         rows = d_out.shape[0]
         if work is None:  # new arrays, views of one new flat vector: the caller may keep them
@@ -330,7 +330,7 @@ class Network:
         right after).
         """
         values, work = trace.values, trace.workspace
-        for i, kind, layer in self._backward_plan:
+        for i, kind, layer in self._backward_steps:
             if kind is _AFFINE:
                 on_affine(i, layer, values[i], delta)
                 if i == self._first_affine and not need_input:

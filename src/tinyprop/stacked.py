@@ -163,14 +163,14 @@ class _Stacked:
         self.net, self.loss, self.l2 = first.net, first.loss, first.l2
         self.batch_size, self.n = first.batch_size, first.X.shape[0]
         self.summed = self.loss.sums_over_samples
-        self.plan = first.net._plan
-        self.affine = [i for i, (kind, _) in enumerate(self.plan) if kind is _AFFINE]
+        self.steps = first.net._steps
+        self.affine = [i for i, (kind, _) in enumerate(self.steps) if kind is _AFFINE]
         self.theta = np.stack([run.net.vector for run in runs])  # (K, n_params), rows in net.vector order
         self.shuffled = np.stack([run.X for run in runs]), np.stack([run.y for run in runs])  # refilled every epoch
         self.scalings = {
             i: (np.stack([run.net.layers[i].gain for run in runs])[:, None, :],
                 np.stack([run.net.layers[i].offset for run in runs])[:, None, :])
-            for i, (kind, _) in enumerate(self.plan) if kind is _SCALING
+            for i, (kind, _) in enumerate(self.steps) if kind is _SCALING
         }
         self.optimizer = _stacked_optimizer(optimizers, first.net.dtype)
         self._arrange()
@@ -184,7 +184,7 @@ class _Stacked:
         self.weights, self.biases, self.grad_weights, self.grad_biases = {}, {}, {}, {}
         start = 0
         for i in self.affine:
-            layer = self.plan[i][1]
+            layer = self.steps[i][1]
             size = layer.n_out * layer.n_in
             self.weights[i] = self.theta[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
             self.grad_weights[i] = self.grad[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
@@ -200,7 +200,7 @@ class _Stacked:
         """Per affine layer its ``(K, rows, n_out)`` output and ``(K, rows, n_in)`` delta; a vector of ones."""
         if rows not in self.buffers:
             K = self.theta.shape[0]
-            layers = {i: self.plan[i][1] for i in self.affine}
+            layers = {i: self.steps[i][1] for i in self.affine}
             self.buffers[rows] = (
                 {i: np.empty((K, rows, layer.n_out), self.dtype) for i, layer in layers.items()},
                 {i: np.empty((K, rows, layer.n_in), self.dtype) for i, layer in layers.items()},
@@ -222,7 +222,7 @@ class _Stacked:
         """Every layer's input and the output, as :meth:`Network.forward` with a workspace computes them."""
         outputs = self._buffers(x.shape[1])[0]
         values, v = [x], x
-        for i, (kind, layer) in enumerate(self.plan):
+        for i, (kind, layer) in enumerate(self.steps):
             if kind is _AFFINE:
                 v = _matmul(v, self.weights[i].transpose(0, 2, 1), outputs[i])  # x W^T
                 if i in self.biases:
@@ -240,7 +240,7 @@ class _Stacked:
     def _backward(self, values: list[np.ndarray], delta: np.ndarray) -> None:
         """The delta recursion of :meth:`Network.backward` (``need_input=False``) into ``self.grad``."""
         _, scratch, ones = self._buffers(delta.shape[1])
-        for i, kind, layer in self.net._backward_plan:
+        for i, kind, layer in self.net._backward_steps:
             if kind is _AFFINE:
                 _matmul(delta.transpose(0, 2, 1), values[i], self.grad_weights[i])  # delta^T x
                 if i in self.grad_biases:
