@@ -52,7 +52,8 @@ from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from .activations import Activation, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
 from .layers import Affine, Standardize, Unstandardize
-from .losses import MeanSquaredError
+from .classify import Classifier, encode_labels, one_hot, softmax, stratified_folds
+from .losses import CrossEntropyOnSoftmax, MeanSquaredError
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
@@ -74,6 +75,8 @@ __all__ = [
     "evaluate",
     "evaluate_all",
     "least_squares_uncertainty",
+    "fit_tabular_classification",
+    "ClassificationFit",
 ]
 
 
@@ -444,3 +447,145 @@ def least_squares_uncertainty(net: Network, data: Dataset, split: Split) -> dict
     except ValueError as exc:  # e.g. no degrees of freedom left
         return {"unavailable": str(exc)}
 
+
+
+# ---------------------------------------------------------------- the default classification recipe
+# Chosen and measured in docs/classification.md (penguins and iris, with the cross-validation of
+# the penalty inside every training set).
+CLASSIFICATION_HIDDEN_UNITS = 32
+CLASSIFICATION_PENALTIES = (1e-4, 1e-3, 1e-2, 1e-1)
+CLASSIFICATION_FOLDS = 5
+CLASSIFICATION_LR = 1e-2
+CLASSIFICATION_BATCH_SIZE = 32
+CLASSIFICATION_EPOCHS = 300
+
+
+@dataclass(frozen=True)
+class ClassificationFit:
+    """What :func:`fit_tabular_classification` returns.
+
+    ``classifier`` (the network and its labels), ``result`` (the final
+    training run), ``penalty`` (the L2 weight chosen), ``cross_validation``
+    (mean held-out log loss of every candidate penalty, in the order tried)
+    and ``class_weights`` (one per label, all 1 unless asked for).
+    """
+
+    classifier: Classifier
+    result: TrainingResult
+    penalty: float
+    cross_validation: tuple[tuple[float, float], ...]
+    class_weights: tuple[float, ...]
+
+
+def fit_tabular_classification(
+    X: Any,
+    labels: Any,
+    *,
+    hidden: Any = (CLASSIFICATION_HIDDEN_UNITS,),
+    penalties: Any = CLASSIFICATION_PENALTIES,
+    folds: int = CLASSIFICATION_FOLDS,
+    epochs: int = CLASSIFICATION_EPOCHS,
+    class_weights: Any = None,
+    seed: int = 0,
+    target: str = "class",
+) -> ClassificationFit:
+    """tinyprop's default recipe for small tabular classification.
+
+    ``X`` ``(n, d)``, ``labels`` ``(n,)`` (any values, compared as strings;
+    at least two distinct ones). The recipe:
+
+    - classes: the distinct labels, sorted (:func:`~tinyprop.classify.encode_labels`);
+    - network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine(., K)``
+      giving one logit per class, scaling fitted on all rows given, Glorot
+      initialisation;
+    - loss :class:`~tinyprop.losses.CrossEntropyOnSoftmax` on one-hot rows,
+      each multiplied by its class weight (:func:`~tinyprop.classify.one_hot`);
+    - ``Adam(lr=1e-2)`` with the learning rate falling along a cosine to 0,
+      mini-batches of 32, ``epochs`` epochs (no early stopping), plus the L2
+      penalty ``l2/2 * sum ||W||^2`` on the weight matrices of :func:`~tinyprop.train.train`;
+    - the penalty ``l2`` is chosen from ``penalties`` by ``folds``-fold
+      stratified cross-validation on the rows given (:func:`~tinyprop.classify.stratified_folds`):
+      the one with the lowest mean held-out log loss (the first on a tie);
+      then the network is trained on all rows with it.
+
+    ``class_weights``: ``None`` (all 1), ``"balanced"`` (``n / (K n_c)`` for
+    class ``c`` with ``n_c`` rows, so every class weighs the same in total)
+    or a dict from label to a positive weight (labels not named weigh 1).
+
+    ``seed`` gives the folds, the initial weights and the shuffling three
+    independent streams (``numpy.random.SeedSequence``); the same seed and
+    data give the same weights. ``target`` names the label column (kept with
+    the labels in model files). Trains ``len(penalties) * folds + 1``
+    networks; a single penalty skips the cross-validation.
+    """
+    X = as_float_array(X, "X", np.dtype(np.float64))
+    if X.ndim != 2:
+        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
+    classes, indices = encode_labels(labels)
+    if indices.size != X.shape[0]:
+        raise ValueError(f"labels must have one entry per row of X ({X.shape[0]}), got {indices.size}")
+    widths = tuple(positive_int(width, "each width in hidden") for width in
+                   ((hidden,) if isinstance(hidden, (int, np.integer)) else tuple(hidden)))
+    candidates = tuple(real_in_range(p, "each penalty", low=0.0) for p in penalties)
+    if not candidates:
+        raise ValueError("penalties must hold at least one value")
+    folds = positive_int(folds, "folds")
+    epochs = positive_int(epochs, "epochs")
+    if seed_value(seed) is None:
+        raise TypeError("seed must be an integer >= 0, got None")
+    weights = _class_weights(class_weights, classes, indices)
+    targets = one_hot(indices, len(classes), weights=weights)
+    fold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(int(seed)).generate_state(3))
+
+    def trained(rows: np.ndarray, l2: float) -> tuple[Network, TrainingResult]:
+        layers: list[Layer] = [Standardize.from_data(X[rows])]
+        for n_in, n_out in zip((X.shape[1], *widths[:-1]), widths):
+            layers += [Affine(n_in, n_out), Tanh()]
+        layers.append(Affine(widths[-1], len(classes)))
+        net = Network(layers, seed=init_seed)
+        schedule = CosineSchedule(epochs * math.ceil(rows.size / CLASSIFICATION_BATCH_SIZE))
+        result = train(net, X[rows], targets[rows], loss=CrossEntropyOnSoftmax(),
+                       optimizer=Adam(lr=CLASSIFICATION_LR, schedule=schedule), epochs=epochs,
+                       batch_size=CLASSIFICATION_BATCH_SIZE, seed=shuffle_seed, l2=l2)
+        return net, result
+
+    scores: list[tuple[float, float]] = []
+    if len(candidates) > 1:
+        if folds < 2 or np.bincount(indices).min() < folds:
+            raise ValueError(f"cross-validation over {folds} folds needs at least {max(folds, 2)} rows of every "
+                             f"class; the smallest class has {np.bincount(indices).min()} (lower folds or give one "
+                             "penalty)")
+        parts = stratified_folds(indices, folds, fold_seed)
+        for l2 in candidates:
+            losses = []
+            for held in parts:
+                kept = np.setdiff1d(np.arange(indices.size), held)
+                net, _ = trained(kept, l2)
+                p = softmax(net.predict(X[held]))
+                losses.append(-np.log(np.maximum(p[np.arange(held.size), indices[held]], 1e-300)))
+            scores.append((l2, float(np.mean(np.concatenate(losses)))))
+    penalty = min(scores, key=lambda entry: entry[1])[0] if scores else candidates[0]
+    net, result = trained(np.arange(indices.size), penalty)
+    return ClassificationFit(Classifier(net, classes, str(target)), result, penalty, tuple(scores),
+                             tuple(float(w) for w in weights))
+
+
+def _class_weights(spec: Any, classes: tuple[str, ...], indices: np.ndarray) -> np.ndarray:
+    """One weight per class from ``None``, ``"balanced"`` or ``{label: weight}``."""
+    if spec is None:
+        return np.ones(len(classes))
+    if isinstance(spec, str):
+        if spec != "balanced":
+            raise ValueError(f"class_weights must be None, 'balanced' or a dict of label -> weight, got {spec!r}")
+        counts = np.bincount(indices, minlength=len(classes))
+        return indices.size / (len(classes) * counts)
+    if not isinstance(spec, Mapping):
+        raise TypeError(f"class_weights must be None, 'balanced' or a dict of label -> weight, got "
+                        f"{type(spec).__name__}")
+    unknown = sorted(str(label) for label in spec if str(label) not in classes)
+    if unknown:
+        raise ValueError(f"class_weights names {unknown}, which are not among the labels {list(classes)}")
+    weights = np.ones(len(classes))
+    for label, value in spec.items():
+        weights[classes.index(str(label))] = real_in_range(value, f"class_weights[{label!r}]", low=0.0, low_open=True)
+    return weights

@@ -13,7 +13,7 @@ from typing import Any
 
 from ..csvdata import CsvTable
 from ..modelfile import save
-from . import _args
+from . import _args, _classes
 from ._common import (
     USAGE,
     CommandError,
@@ -59,13 +59,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                       help="input columns, comma-separated (default: every column that is not a target)")
     data.add_argument("--delimiter", default=",", help="field separator (default ',')")
+    data.add_argument("--classes", type=_args.names, action="extend", metavar="NAMES",
+                      help="target columns holding class labels written as numbers (a target column of text "
+                           "labels is a class column without this); see docs/classification.md")
+    data.add_argument("--class-weights", metavar="WEIGHTS",
+                      help="for a class target: 'balanced' (every class weighs the same in total) or "
+                           "LABEL=WEIGHT pairs, comma-separated (default: every row weighs 1)")
     data.add_argument("--validation-fraction", type=_args.fraction, default=defaults.validation_fraction,
                       metavar="F", help=f"share of rows held out for validation (default {defaults.validation_fraction})")
     data.add_argument("--test-fraction", type=_args.fraction, default=defaults.test_fraction,
                       metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
     network = parser.add_argument_group("network")
-    network.add_argument("--hidden", type=_args.widths, default=defaults.hidden, metavar="WIDTHS",
-                         help="hidden-layer widths, comma-separated (default 16,16)")
+    network.add_argument("--hidden", type=_args.widths, metavar="WIDTHS",
+                         help="hidden-layer widths, comma-separated (default 16,16; 32 for a class target)")
     network.add_argument("--activation", choices=sorted(ACTIVATIONS), default=defaults.activation,
                          help=f"hidden-layer activation (default {defaults.activation})")
     network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
@@ -108,7 +114,17 @@ def run(args: argparse.Namespace) -> int:
     model_path, report_path = _output_paths(args)
     plots = output_folder(args.plots) if args.plots else None
     started = time.perf_counter()
-    data = _dataset(args)
+    table = read_table(args.data, args.delimiter)
+    targets, inputs = _columns(table, args.targets, args.inputs)
+    classes = _classes.class_targets(table, targets, args.classes)
+    if classes:
+        _classes.check_options(args, targets, classes)
+        return _classes.run(args, table, targets[0], inputs, model_path, report_path, plots,
+                            time.perf_counter() - started)
+    if args.class_weights is not None:
+        raise CommandError("--class-weights applies to a class target; the targets are numeric "
+                           "(mark a column of numeric class codes with --classes)", USAGE)
+    data = _dataset(args, table, targets, inputs)
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
     net = build_network(data, split, settings)
@@ -183,7 +199,7 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     if args.patience is not None and args.validation_fraction == 0:
         raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
     return FitSettings(
-        hidden=args.hidden, activation=args.activation, method=args.method, seed=args.seed,
+        hidden=defaults.hidden if args.hidden is None else args.hidden, activation=args.activation, method=args.method, seed=args.seed,
         validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
         **{option: value(option) for option, _, _ in _APPLIES_ONLY_TO},
     )
@@ -204,9 +220,7 @@ def _flag(option: str) -> str:
     return "--" + option.replace("_", "-")
 
 
-def _dataset(args: argparse.Namespace) -> Dataset:
-    table = read_table(args.data, args.delimiter)
-    targets, inputs = _columns(table, args.targets, args.inputs)
+def _dataset(args: argparse.Namespace, table: CsvTable, targets: list[str], inputs: list[str]) -> Dataset:
     X, Y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
