@@ -10,6 +10,8 @@ __version__ = "0.1.0"
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
+from .classify import Classifier
+from .classmetrics import ClassificationMetrics, classification_metrics
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
@@ -30,7 +32,7 @@ from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedu
 from .solve import SolveResult, solve
 from .sensitivity import SensitivityTable, input_sensitivity
 from .sweep import SweepRecord, SweepResult, TrainingData, sweep
-from .recipes import TabularRegression, fit_tabular_regression
+from .recipes import ClassificationFit, TabularRegression, fit_tabular_classification, fit_tabular_regression
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
@@ -53,6 +55,9 @@ __all__ = [
     "Adam",
     "Affine",
     "CheckpointError",
+    "ClassificationFit",
+    "ClassificationMetrics",
+    "Classifier",
     "ColumnScaling",
     "CosineSchedule",
     "CrossEntropyOnSigmoid",
@@ -103,11 +108,13 @@ __all__ = [
     "build_mlp",
     "check_activation",
     "check_gradient",
+    "classification_metrics",
     "describe",
     "export_c",
     "export_c_fixed_point",
     "export_python",
     "fingerprint",
+    "fit_tabular_classification",
     "fit_tabular_regression",
     "input_sensitivity",
     "load",
