@@ -247,10 +247,10 @@ def probability_bound(logit_bound: Any, n_classes: int, dtype: Any) -> np.ndarra
 
     The softmax's Jacobian ``diag(p) - p p^T`` has row sums of absolute values
     ``2 p_k (1 - p_k) <= 1/2``, so logits apart by at most ``max_k b_k`` move
-    each probability by at most ``max_k b_k / 2``; the softmax's own rounding
-    (``exp`` within 4 ulp, a sum of ``K`` terms and a division, in ``dtype``)
-    adds ``(K + 6) * eps`` relative to ``p <= 1``.
+    each probability by at most ``max_k b_k / 2``; the rounding of the two
+    softmax evaluations (each ``exp`` within 4 ulp, a sum of ``K`` terms and a
+    division, in ``dtype``) adds ``2 (K + 6) eps`` relative to ``p <= 1``.
     """
     b = np.asarray(logit_bound, dtype=np.float64)
     largest = b.max(axis=1) if b.ndim == 2 else b
-    return 0.5 * largest + (n_classes + 6) * float(np.finfo(np.dtype(dtype)).eps)
+    return 0.5 * largest + 2 * (n_classes + 6) * float(np.finfo(np.dtype(dtype)).eps)
