@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .._version import __version__
 from ..classify import Classifier, encode_labels, stratified_split
 from ..classmetrics import ClassificationMetrics, classification_metrics
 from ..csvdata import CsvError, CsvTable
