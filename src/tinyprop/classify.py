@@ -9,7 +9,8 @@ exponential overflows:
 ``p_k = exp(z_k - max_j z_j) / sum_i exp(z_i - max_j z_j)``,
 
 and the decided class is the index of the largest logit (the first one on a
-tie), which is also the index of the largest probability. The network is
+tie), whose probability is the largest (logits a few ulp apart can round to
+equal probabilities, so decide from the logits, not from rounded probabilities). The network is
 trained with :class:`~tinyprop.losses.CrossEntropyOnSoftmax` on one-hot target
 rows (:func:`one_hot`). A yes/no column is two classes, so two logits: the
 softmax of two logits is the sigmoid of their difference,
