@@ -131,7 +131,7 @@ def read_rows_text(text: str) -> list[list[str]]:
 def test_class_target_mistakes_are_one_line_each(tmp_path):
     data = write_machine_csv(tmp_path / "pump.csv", 60, seed=1)
     cases = [
-        (["--targets", "state", "--method", "lbfgs"], 2, "--method applies to regression targets"),
+        (["--targets", "state", "--method", "lbfgs", "--hidden", "6"], 2, "--method applies to regression targets"),
         (["--targets", "state", "--batch-size", "8"], 2, "--batch-size applies to regression targets"),
         (["--targets", "state,current_A"], 2, "must be the only target"),
         (["--targets", "current_A", "--class-weights", "balanced"], 2, "--class-weights applies to a class target"),
@@ -139,7 +139,8 @@ def test_class_target_mistakes_are_one_line_each(tmp_path):
         (["--targets", "current_A", "--classes", "state"], 2, "not among --targets"),
     ]
     for options, status, message in cases:
-        result = run_cli("train", str(data), *options, "--out", str(tmp_path / "m.npz"), "--quiet", *FAST)
+        fast = [] if "--method" in options else FAST
+        result = run_cli("train", str(data), *options, "--out", str(tmp_path / "m.npz"), "--quiet", *fast)
         assert result.returncode == status, (options, result.stderr)
         assert message in result.stderr and result.stderr.count("\n") == 1, (options, result.stderr)
     holes = tmp_path / "holes.csv"

@@ -87,7 +87,7 @@ def classification_metrics(
 
     >>> m = classification_metrics([0, 1, 1], [[0.9, 0.1], [0.4, 0.6], [0.7, 0.3]], ["off", "on"])
     >>> m.errors, m.confusion.tolist(), round(m.brier, 3)
-    (1, [[1, 0], [1, 1]], 0.453)
+    (1, [[1, 0], [1, 1]], 0.44)
     """
     labels = tuple(str(label) for label in labels)
     p = np.asarray(probabilities, dtype=np.float64)

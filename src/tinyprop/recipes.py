@@ -5,6 +5,11 @@ the same recipe with every setting open to a sweep) builds a scaled one-hidden-l
 tanh network and trains it with Adam and early stopping; its settings and their
 measured results are in ``docs/training.md``.
 
+**The default classification recipe** (:func:`fit_tabular_classification`, at the
+end of this module) builds a scaled tanh network giving one logit per class and
+chooses its L2 penalty by stratified cross-validation; ``docs/classification.md``
+gives its settings and measured results.
+
 **The command line's recipe** (:class:`FitSettings`; the steps :func:`split_rows`,
 :func:`build_network`, :func:`fit`, :func:`evaluate_all`) is what ``tinyprop train``
 and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``Y`` (targets),

@@ -13,6 +13,7 @@ import argparse
 import hashlib
 import os
 import sys
+import tempfile
 import time
 from pathlib import Path
 from typing import Any
@@ -23,6 +24,8 @@ from .._version import __version__
 from ..classify import Classifier, encode_labels, stratified_split
 from ..classmetrics import ClassificationMetrics, classification_metrics
 from ..csvdata import CsvError, CsvTable
+from ..export import export_c_fixed_point
+from ..export.classes import fixed_point_class_agreement
 from ..csvlabels import is_text_column, label_cells
 from ..modelfile import fingerprint, save
 from ..plots import PLOT_HINT, PlotsUnavailable, confusion_plot, reliability_diagram
@@ -137,6 +140,9 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     shown = metrics["test"] or metrics["training"]
     assert shown is not None
     print("\n".join(str(shown).splitlines()[1:]))
+    integer = _integer_code_agreement(net, X[training], X[test if test.size else training])
+    print(f"integer-only C (formats from the training rows), on the {'test' if test.size else 'training'} rows: "
+          f"{integer['agreement'] if 'agreement' in integer else integer['unavailable']}")
     metadata = {
         "description": f"classifier of {target} fitted by tinyprop train to {Path(args.data).name}",
         "inputs": [{"name": name} for name in inputs],
@@ -167,6 +173,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
                 "epochs_run": fitted.result.epochs_run},
         "history": {"training_loss": [float(v) for v in fitted.result.history.training], "validation_loss": None},
         "metrics": {part: None if m is None else m.to_dict() for part, m in metrics.items()},
+        "integer_code": integer,
         "timings_s": {"read": read_seconds, "fit": fit_seconds, "evaluate": evaluate_seconds, "save": save_seconds},
         "model_file": os.fspath(model_path),
         "safety": SAFETY,
@@ -177,6 +184,17 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     if plots is not None:
         _plots(plots, shown, Path(args.data).name, "test rows" if metrics["test"] is not None else "training rows")
     return 0
+
+
+def _integer_code_agreement(net: Any, calibration: np.ndarray, rows: np.ndarray) -> dict[str, Any]:
+    """How the integer-only C code (formats from ``calibration``) decides on ``rows`` against the float64 network."""
+    try:
+        with tempfile.TemporaryDirectory() as folder:
+            report = export_c_fixed_point(net, folder, calibration, name="model_q")
+    except (TypeError, ValueError) as exc:  # e.g. weights no int16 format holds
+        return {"unavailable": f"not available ({exc})"}
+    agreement = fixed_point_class_agreement(report, net, rows)
+    return {"calibration": "training rows", **agreement.to_dict(), "agreement": str(agreement)}
 
 
 def _split(indices: np.ndarray, fraction: float, seed: int, classes: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
