@@ -8,7 +8,7 @@ codes and qualified review is the user's responsibility.
 from ._version import __version__
 
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .build import build_mlp
+from .mlp import build_mlp
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .classify import Classifier
 from .classmetrics import ClassificationMetrics, classification_metrics

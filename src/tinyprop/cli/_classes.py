@@ -38,7 +38,7 @@ from ..recipes import (
     fit_tabular_classification,
 )
 from ._common import SAFETY, USAGE, CommandError, describe_os_error, numeric_columns, write_json
-from ._fit import architecture
+from ._fit_report import architecture
 
 # options of tinyprop train that belong to the regression recipe: refused with a class target
 _REGRESSION_ONLY = ("activation", "method", "optimizer", "learning_rate", "schedule", "momentum", "batch_size",

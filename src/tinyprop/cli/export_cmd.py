@@ -17,9 +17,8 @@ from typing import Any
 import numpy as np
 
 from ..classify import class_entry
-from ..export import export_c, export_c_fixed_point, export_python
+from ..export import check_name, export_c, export_c_fixed_point, export_python
 from ..export.classes import fixed_point_class_agreement
-from ..export._text import check_name
 from ..modelfile import ModelFile
 from . import _args
 from ._common import (
