@@ -162,3 +162,18 @@ def test_numeric_class_codes_are_classes_with_the_classes_option(tmp_path):
                      "--quiet", *FAST)
     assert result.returncode == 0, result.stderr
     assert tp.load_model_file(tmp_path / "m.npz").metadata["classes"]["labels"] == ["0", "1", "2", "3"]
+
+
+def test_predict_needs_inputs_for_a_model_without_names_and_uses_them_in_order(tmp_path):
+    net = tp.build_mlp([2, 3, 2], seed=1)  # synthetic: no metadata at all
+    tp.save(net, tmp_path / "bare.npz")
+    data = tmp_path / "rows.csv"
+    data.write_text("p,q\n0.5,-1.0\n2.0,0.25\n")
+    result = run_cli("predict", str(tmp_path / "bare.npz"), str(data))
+    assert result.returncode == 2 and "give --inputs" in result.stderr
+    result = run_cli("predict", str(tmp_path / "bare.npz"), str(data), "--inputs", "q,p")
+    assert result.returncode == 0, result.stderr
+    rows = read_rows_text(result.stdout)
+    assert rows[0] == ["output_0", "output_1"]
+    expected = net.predict(np.array([[-1.0, 0.5], [0.25, 2.0]]))
+    assert np.array_equal(np.array([[float(v) for v in r] for r in rows[1:]]), expected)
