@@ -146,8 +146,10 @@ def test_metrics_refuse_rows_that_are_not_probabilities():
 def test_recipe_is_deterministic_chooses_a_penalty_by_cross_validation_and_decides_well():
     """Synthetic pump states: the recipe picks a penalty by CV and beats 85 % on fresh rows."""
     X, states = machine_states(160, seed=3)
-    fitted = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalties=(1e-4, 1e-1), folds=3, seed=1)
-    again = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalties=(1e-4, 1e-1), folds=3, seed=1)
+    fitted = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalty="cross-validation",
+                                            penalties=(1e-4, 1e-1), folds=3, seed=1)
+    again = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalty="cross-validation",
+                                            penalties=(1e-4, 1e-1), folds=3, seed=1)
     assert np.array_equal(fitted.classifier.net.get_vector(), again.classifier.net.get_vector())
     assert [l2 for l2, _ in fitted.cross_validation] == [1e-4, 1e-1]
     assert fitted.penalty == min(fitted.cross_validation, key=lambda e: e[1])[0]
@@ -165,7 +167,7 @@ def test_balanced_class_weights_raise_the_recall_of_a_rare_class():
     X_new, states_new = machine_states(2000, seed=6)
     recall = {}
     for weights in (None, "balanced"):
-        fitted = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalties=(1e-3,), seed=0,
+        fitted = tp.fit_tabular_classification(X, states, hidden=8, epochs=40, penalty=1e-3, seed=0,
                                                class_weights=weights)
         rare = states_new == "cavitation"
         recall[weights] = np.mean(fitted.classifier.predict_labels(X_new[rare]) == "cavitation")
@@ -175,14 +177,50 @@ def test_balanced_class_weights_raise_the_recall_of_a_rare_class():
     assert recall["balanced"] > recall[None]
 
 
+def test_evidence_rounds_follow_mackays_update_and_the_final_penalty_is_the_last_update():
+    """MacKay (1992): alpha_new = gamma / sum ||W||^2 with alpha = n * l2; 0 < gamma < number of weights."""
+    X, states = machine_states(120, seed=7)
+    fitted = tp.fit_tabular_classification(X, states, hidden=5, epochs=30, seed=2)
+    n_weights = 4 * 5 + 5 * 4
+    assert 1 <= len(fitted.evidence) <= 6 and fitted.evidence[0][0] == 1e-3
+    for (l2, gamma, squares), following in zip(fitted.evidence, [*fitted.evidence[1:], (fitted.penalty,)]):
+        assert 0 < gamma < n_weights
+        assert following[0] == pytest.approx(gamma / squares / 120, rel=1e-12)
+    assert fitted.cross_validation == ()
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(2, 5), st.integers(0, 999), st.floats(0.1, 8.0))
+def test_softmax_curvature_is_the_numerical_hessian_of_the_cross_entropy(k, seed, spread):
+    """diag(p) - p p^T against scipy.differentiate.hessian of lse(z) - z_c (external reference)."""
+    from scipy import differentiate
+
+    from tinyprop.classify import softmax_curvature
+
+    rng = np.random.default_rng(seed)
+    z = rng.normal(scale=spread, size=k)
+    c = int(rng.integers(0, k))
+
+    def loss(v):  # v: (k, ...) -> (...)
+        shift = v.max(axis=0)
+        return np.log(np.exp(v - shift).sum(axis=0)) + shift - v[c]
+
+    reference = differentiate.hessian(loss, z, initial_step=0.5).ddf
+    # Entries are at most 1/4; the numerical reference was seen to be good to 1.2e-7 over these logits, while
+    # a wrong formula (a missing term p_k p_l, say) is off by an entry's own size.
+    np.testing.assert_allclose(softmax_curvature(z[None, :])[0], reference, rtol=0, atol=1e-6)
+
+
 def test_recipe_refuses_bad_arguments_with_what_arrived():
     X, states = machine_states(40, seed=0)
     with pytest.raises(ValueError, match="one entry per row"):
         tp.fit_tabular_classification(X, states[:-1])
     with pytest.raises(ValueError, match="not among the labels"):
-        tp.fit_tabular_classification(X, states, class_weights={"stalled": 2.0}, penalties=(1e-3,), epochs=1)
+        tp.fit_tabular_classification(X, states, class_weights={"stalled": 2.0}, penalty=1e-3, epochs=1)
     with pytest.raises(ValueError, match="smallest class has"):
-        tp.fit_tabular_classification(X[:12], states[:12], folds=5, epochs=1)
+        tp.fit_tabular_classification(X[:12], states[:12], penalty="cross-validation", folds=5, epochs=1)
+    with pytest.raises(ValueError, match="'evidence', 'cross-validation' or a number"):
+        tp.fit_tabular_classification(X, states, penalty="bayes", epochs=1)
 
 
 def test_classifier_labels_survive_a_model_file(tmp_path):

@@ -114,7 +114,7 @@ def test_integer_code_decides_like_its_python_model_and_reports_disagreement(tmp
     """Synthetic pump states: the compiled integer code returns exactly fixed_point_decisions; the report
     counts the rows where it differs from the float64 network and gives the top-two logit gaps there."""
     X, states = machine_states(300, seed=2)
-    fitted = tp.fit_tabular_classification(X, states, hidden=6, epochs=30, penalties=(1e-3,))
+    fitted = tp.fit_tabular_classification(X, states, hidden=6, epochs=30, penalty=1e-3)
     net, labels = fitted.classifier.net, fitted.classifier.labels
     report = tp.export_c_fixed_point(net, tmp_path, X, name="pump_q", labels=labels)
     assert [p.name for p in report.class_files] == ["pump_q_classes.h", "pump_q_classes.c"]

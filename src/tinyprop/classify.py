@@ -37,6 +37,7 @@ __all__ = [
     "encode_labels",
     "one_hot",
     "softmax",
+    "softmax_curvature",
     "stratified_folds",
     "stratified_split",
 ]
@@ -55,6 +56,21 @@ def softmax(z: Any) -> np.ndarray:
         raise ValueError(f"logits must have shape (n_samples, n_classes), got shape {z.shape}")
     e = np.exp(z - z.max(axis=1, keepdims=True))
     return e / e.sum(axis=1, keepdims=True)
+
+
+def softmax_curvature(z: Any) -> np.ndarray:
+    """Per row, the Hessian of the cross-entropy ``E = lse(z) - z_c`` with respect to the logits, ``(n, K, K)``.
+
+    ``d2E / dz_k dz_l = p_k [k = l] - p_k p_l``, i.e. ``diag(p) - p p^T`` with
+    ``p = softmax(z)``; it does not depend on the class ``c``. Positive
+    semi-definite (its null space holds ``(1, ..., 1)``: adding a constant to
+    every logit changes nothing).
+
+    >>> softmax_curvature([[0.0, 0.0]]).tolist()
+    [[[0.25, -0.25], [-0.25, 0.25]]]
+    """
+    p = softmax(z)
+    return p[:, :, None] * np.eye(p.shape[1]) - p[:, :, None] * p[:, None, :]
 
 
 def encode_labels(labels: Any) -> tuple[tuple[str, ...], np.ndarray]:

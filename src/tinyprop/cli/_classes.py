@@ -31,9 +31,8 @@ from ..modelfile import fingerprint, save
 from ..plots import PLOT_HINT, PlotsUnavailable, confusion_plot, reliability_diagram
 from ..recipes import (
     CLASSIFICATION_EPOCHS,
-    CLASSIFICATION_FOLDS,
     CLASSIFICATION_HIDDEN_UNITS,
-    CLASSIFICATION_PENALTIES,
+    EVIDENCE_START,
     FitSettings,
     fit_tabular_classification,
 )
@@ -115,8 +114,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
           f"({len(classes)} classes: {', '.join(f'{k} {n}' for k, n in counts.items())})")
     print(f"split (seed {args.seed}, stratified): {training.size} training, {test.size} test rows")
     print(f"fitting: classification recipe, hidden {','.join(map(str, hidden))}, {epochs} epochs, L2 penalty "
-          f"chosen from {', '.join(f'{p:g}' for p in CLASSIFICATION_PENALTIES)} by {CLASSIFICATION_FOLDS}-fold "
-          f"cross-validation{'' if weights is None else ', class weights ' + args.class_weights}", flush=True)
+          f"by the evidence framework{'' if weights is None else ', class weights ' + args.class_weights}", flush=True)
     started = time.perf_counter()
     try:
         fitted = fit_tabular_classification(X[training], labels[training], hidden=hidden, epochs=epochs,
@@ -129,8 +127,10 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         missing = sorted(set(classes) - set(classifier.labels))
         raise CommandError(f"no training row has the label {', '.join(map(repr, missing))}; lower --test-fraction")
     net = classifier.net
-    print(f"network: {architecture(net)}; {net.n_params} parameters; L2 penalty {fitted.penalty:g} "
-          f"({fit_seconds:.1f} s)")
+    last = fitted.evidence[-1]
+    print(f"network: {architecture(net)}; {net.n_params} parameters; L2 penalty {fitted.penalty:.3g} after "
+          f"{len(fitted.evidence)} evidence round{'s' * (len(fitted.evidence) > 1)} ({last[1]:.1f} well-determined "
+          f"weights) ({fit_seconds:.1f} s)")
     started = time.perf_counter()
     metrics = {part: _measure(classifier, X, indices, rows) for part, rows in (("training", training), ("test", test))}
     evaluate_seconds = time.perf_counter() - started
@@ -168,7 +168,8 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         "network": {"fingerprint": digest, "n_params": net.n_params, "dtype": net.dtype.name,
                     "architecture": architecture(net)},
         "fit": {"method": "classification recipe", "penalty": fitted.penalty,
-                "cross_validation": [{"l2": l2, "log_loss": loss} for l2, loss in fitted.cross_validation],
+                "evidence_rounds": [{"l2": l2, "well_determined_weights": gamma, "sum_squared_weights": squares}
+                                    for l2, gamma, squares in fitted.evidence],
                 "class_weights": dict(zip(classes, fitted.class_weights)), "message": fitted.result.message,
                 "epochs_run": fitted.result.epochs_run},
         "history": {"training_loss": [float(v) for v in fitted.result.history.training], "validation_loss": None},
@@ -212,8 +213,8 @@ def _measure(classifier: Classifier, X: np.ndarray, indices: np.ndarray, rows: n
 
 def _settings(args: argparse.Namespace, hidden: tuple[int, ...], epochs: int, weights: Any) -> dict[str, Any]:
     return {"recipe": "fit_tabular_classification", "hidden": list(hidden), "epochs": epochs, "seed": args.seed,
-            "test_fraction": args.test_fraction, "class_weights": weights, "penalties": list(CLASSIFICATION_PENALTIES),
-            "folds": CLASSIFICATION_FOLDS, "loss": "CrossEntropyOnSoftmax"}
+            "test_fraction": args.test_fraction, "class_weights": weights, "penalty": "evidence",
+            "evidence_start": EVIDENCE_START, "loss": "CrossEntropyOnSoftmax"}
 
 
 def _source(path: str) -> dict[str, Any]:
