@@ -13,8 +13,8 @@ test accuracy over 10 stratified 80/20 splits must be at least 97 %; iris versic
 virginica overlap slightly and a few errors in 150 are usual for a good classifier, so
 10-fold stratified cross-validation may make at most 4 errors.
 
-Both run the recipe with its defaults (the penalty chosen by cross-validation inside each
-training set, never on the test rows); they take minutes, hence ``slow``.
+Both run the recipe with its defaults (the penalty chosen by the evidence framework from each
+training set alone, never from the test rows); they take a minute or two, hence ``slow``.
 """
 
 from __future__ import annotations

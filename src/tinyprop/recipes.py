@@ -7,7 +7,7 @@ measured results are in ``docs/training.md``.
 
 **The default classification recipe** (:func:`fit_tabular_classification`, at the
 end of this module) builds a scaled tanh network giving one logit per class and
-chooses its L2 penalty by stratified cross-validation; ``docs/classification.md``
+chooses its L2 penalty by the evidence framework; ``docs/classification.md``
 gives its settings and measured results.
 
 **The command line's recipe** (:class:`FitSettings`; the steps :func:`split_rows`,
