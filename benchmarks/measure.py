@@ -75,7 +75,7 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
     ``tanh`` per hidden layer, and the backward products ``delta^T x`` and
     ``delta W`` (not below the first layer).
     """
-    net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+    net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
     X, y = _synthetic(batch, 64, dtype)
     step = _training_step(net, Adam(1e-6), X, y)
     W1, W2, W3 = (layer.weight for layer in net.layers if isinstance(layer, tp.Affine))
@@ -111,7 +111,7 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
 
 def abstraction_tax(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
     """Plain-SGD step through tinyprop's public API over the hand-written numpy step (handwritten.py)."""
-    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=0)
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)
     X, y = _synthetic(batch, sizes[0], np.float64)
     step = _training_step(net, SGD(1e-6), X, y)
     weights = [layer.weight.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
@@ -135,7 +135,7 @@ def memory_ratio(batch: int, dtype: Any = np.float64) -> dict[str, Any]:
     X, y = _synthetic(batch, 64, dtype)
     tracemalloc.start()
     try:
-        net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+        net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
         step = _training_step(net, Adam(1e-6), X, y)
         step()
         step()
@@ -160,7 +160,8 @@ def scaling(sample_counts: list[int], *, batch: int = 256) -> dict[str, Any]:
         def run(epochs: int) -> float:
             net = tp.build_mlp([8, 32, 32, 1], seed=0)
             start = time.perf_counter()
-            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch, seed=0)
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch,
+                     seed=0)
             return time.perf_counter() - start
 
         one = min(run(1) for _ in range(2))
@@ -190,7 +191,8 @@ def second_order(names: tuple[str, ...] = ("Rat42",)) -> list[dict[str, Any]]:
         result = tp.solve(net, problem.x, problem.y, method="levenberg-marquardt")
         wall = time.perf_counter() - start
         lre = -math.log10(abs(result.rss - problem.certified_rss) / problem.certified_rss)
-        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations, "rss_lre": lre})
+        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations,
+                     "rss_lre": lre})
     return rows
 
 
@@ -254,7 +256,8 @@ def _c_latency(net: tp.Network, folder: Path, calls: int) -> float | None:
     (folder / "driver.c").write_text(_C_DRIVER)
     binary = folder / "driver"
     subprocess.run(
-        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
+        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"),
+         str(folder / "bench_model.c"), "-lm"],
         check=True,
         capture_output=True,
     )

@@ -17,9 +17,9 @@ from hypothesis import given, reject, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
+from net_strategies import networks
 from tinyprop.classify import encode_labels, one_hot, softmax, stratified_folds, stratified_split
 from tinyprop.datasets import machine_states
-from net_strategies import networks
 
 
 # ------------------------------------------------------------------ gradients
@@ -29,7 +29,7 @@ def test_softmax_cross_entropy_gradient_on_class_targets_at_every_depth(depth, w
     """Backprop of the classification loss on one-hot (and class-weighted) rows vs scipy.differentiate."""
     rng = np.random.default_rng(depth)
     sizes = [3] + [5] * (depth - 1) + [4]
-    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=depth)
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=depth)
     X = rng.normal(size=(7, 3))
     indices = rng.integers(0, 4, size=7)
     y = one_hot(indices, 4, weights=[0.5, 1.0, 2.0, 3.0] if weighted else None)
@@ -40,7 +40,7 @@ def test_softmax_cross_entropy_gradient_on_class_targets_at_every_depth(depth, w
 @pytest.mark.parametrize("depth", [1, 2, 3, 4, 5, 6])
 def test_sigmoid_cross_entropy_gradient_on_yes_no_targets_at_every_depth(depth):
     rng = np.random.default_rng(10 + depth)
-    net = tp.build_mlp([2] + [4] * (depth - 1) + [1], hidden=tp.Tanh(), seed=depth)
+    net = tp.build_mlp([2] + [4] * (depth - 1) + [1], activation=tp.Tanh(), seed=depth)
     X = rng.normal(size=(6, 2))
     y = rng.integers(0, 2, size=(6, 1)).astype(float)
     report = tp.check_gradient(net, X, y, tp.CrossEntropyOnSigmoid())
@@ -183,7 +183,7 @@ def test_evidence_rounds_follow_mackays_update_and_the_final_penalty_is_the_last
     fitted = tp.fit_tabular_classification(X, states, hidden=5, epochs=30, seed=2)
     n_weights = 4 * 5 + 5 * 4
     assert 1 <= len(fitted.evidence) <= 6 and fitted.evidence[0][0] == 1e-3
-    for (l2, gamma, squares), following in zip(fitted.evidence, [*fitted.evidence[1:], (fitted.penalty,)]):
+    for (_, gamma, squares), following in zip(fitted.evidence, [*fitted.evidence[1:], (fitted.penalty,)]):
         assert 0 < gamma < n_weights
         assert following[0] == pytest.approx(gamma / squares / 120, rel=1e-12)
     assert fitted.cross_validation == ()

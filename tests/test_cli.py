@@ -19,6 +19,7 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.cli import main
+from tinyprop.layers import ColumnScaling
 from tinyprop.registry import register_activation
 
 INPUTS = ["x0", "x1", "x2"]
@@ -69,8 +70,9 @@ def library_split(n: int, seed: int, validation: float, test: float) -> tuple[np
     return order[n_test + n_val:], order[n_test:n_test + n_val], order[:n_test]
 
 
-def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation, seed: int) -> tp.Network:
-    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], hidden=activation, seed=seed)
+def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation,
+                    seed: int) -> tp.Network:
+    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], activation=activation, seed=seed)
     return tp.Network([tp.Standardize.from_data(X), *mlp.layers, tp.Unstandardize.from_data(Y)], init=None)
 
 
@@ -79,7 +81,7 @@ def assert_same_network(a: tp.Network, b: tp.Network) -> None:
     for p, q in zip(a.params, b.params):
         assert p.dtype == q.dtype and np.array_equal(p, q)
     for la, lb in zip(a.layers, b.layers):
-        if isinstance(la, tp.ColumnScaling):
+        if isinstance(la, ColumnScaling):
             assert np.array_equal(la.mean, lb.mean) and np.array_equal(la.scale, lb.scale)
 
 

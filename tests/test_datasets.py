@@ -360,7 +360,8 @@ def test_penguins_and_iris_loaders_match_the_published_row_counts():
 
     penguins = load_penguins()
     assert penguins.X.shape == (342, 4) and penguins.dropped_lines == (5, 273)
-    assert Counter(penguins.labels.tolist()) == {"Adelie": 151, "Chinstrap": 68, "Gentoo": 123}  # 152 and 124 less one each
+    # 152 Adelie and 124 Gentoo, less the one unmeasured penguin of each
+    assert Counter(penguins.labels.tolist()) == {"Adelie": 151, "Chinstrap": 68, "Gentoo": 123}
     text = DATA.joinpath("classification", "penguins.csv").read_text().splitlines()
     assert len(text) - 1 == 344 and sum("NA" not in line for line in text[1:]) == 333
     assert np.all(np.isfinite(penguins.X)) and penguins.X[:, 3].min() > 2000  # body mass in grams

@@ -50,7 +50,7 @@ def random_members(count: int, sizes: list[int], seed: int, dtype=np.float64) ->
     rng = np.random.default_rng(seed)
     members = []
     for _ in range(count):
-        net = tp.build_mlp(sizes, hidden=tp.Tanh(), dtype=dtype, seed=0)
+        net = tp.build_mlp(sizes, activation=tp.Tanh(), dtype=dtype, seed=0)
         net.set_vector(rng.normal(0.0, 1.0, net.n_params))
         members.append(net)
     return members
@@ -224,7 +224,8 @@ def test_python_export_is_the_mean_of_the_member_exports(tmp_path):
     assert np.all(difference <= ensemble.agreement_bound(INPUTS))
 
 
-def compile_and_run(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int, sources: list[str]) -> np.ndarray:
+def compile_and_run(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int,
+                    sources: list[str]) -> np.ndarray:
     """Compile the exported files with the export tests' driver, run ``<name>_predict`` normally and in place."""
     y, y_in_place = run_predict_driver(directory, name, ctype, X, n_out, sources)
     assert np.array_equal(y, y_in_place)  # x and y may be the same array

@@ -10,8 +10,6 @@ wherever the two largest logits are further apart than the rounding bound of the
 from __future__ import annotations
 
 import importlib.util
-import subprocess
-import sys
 import tempfile
 from pathlib import Path
 
@@ -21,11 +19,11 @@ from hypothesis import given, reject, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
+from net_strategies import networks
+from test_export_c import CTYPE, c_hex, compile_and_run, needs_cc
 from tinyprop.classify import softmax
 from tinyprop.datasets import machine_states
 from tinyprop.export.classes import c_string, fixed_point_class_agreement, fixed_point_decisions, probability_bound
-from net_strategies import networks
-from test_export_c import CC, CFLAGS, CTYPE, c_hex, compile_and_run, needs_cc
 
 
 def _classify_driver(name: str, ctype: str, X: np.ndarray) -> str:

@@ -193,11 +193,12 @@ def test_workspace_trace_serves_one_backward_and_is_invalidated_by_the_next_forw
         tp.build_mlp([3, 5, 1]).forward(X, workspace=work)
 
 
-@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.Sigmoid(), tp.ReLU(), tp.LeakyReLU(0.1), tp.Softplus(), tp.Identity()], ids=repr)
+@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.Sigmoid(), tp.ReLU(), tp.LeakyReLU(0.1), tp.Softplus(),
+                                    tp.Identity()], ids=repr)
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_workspace_row_blocks_cover_large_batches(hidden, dtype):
     """A batch spanning many ~256 KiB row blocks gives the plain path's gradients."""
-    net = tp.build_mlp([5, 96, 64, 2], hidden=hidden, seed=1, dtype=dtype)
+    net = tp.build_mlp([5, 96, 64, 2], activation=hidden, seed=1, dtype=dtype)
     X = np.random.default_rng(2).normal(size=(2500, 5))
     work = net.workspace(2500)
     assert len(work.row_blocks(2500, 96)) > 3
@@ -233,7 +234,7 @@ def test_params_are_views_of_the_flat_vector_and_relink_after_assignment():
 @pytest.mark.parametrize("with_workspace", [False, True])
 def test_a_pickled_network_backpropagates_like_the_original(hidden, with_workspace):
     """Process pools (tp.sweep) move networks by pickle; the copy must run the same passes."""
-    net = tp.build_mlp([3, 6, 5, 2], hidden=hidden, seed=3)
+    net = tp.build_mlp([3, 6, 5, 2], activation=hidden, seed=3)
     X = np.random.default_rng(4).normal(size=(7, 3))
     results = []
     for network in (net, pickle.loads(pickle.dumps(net))):
@@ -274,6 +275,7 @@ def test_a_sampled_check_equals_the_full_check_at_the_sampled_parameters(case, s
     starts = np.cumsum([0] + [p.size for p in net.params])
     assert all(np.any((part.indices >= lo) & (part.indices < hi)) for lo, hi in zip(starts[:-1], starts[1:]))
     np.testing.assert_array_equal(part.analytic, full.analytic[part.indices])
-    np.testing.assert_allclose(part.numerical, full.numerical[part.indices], rtol=1e-9, atol=1e-12 * np.abs(full.numerical).max())
+    np.testing.assert_allclose(part.numerical, full.numerical[part.indices], rtol=1e-9,
+                               atol=1e-12 * np.abs(full.numerical).max())
     again = tp.check_gradient(net, X, y, loss, parameters=k, seed=seed)
     np.testing.assert_array_equal(again.indices, part.indices)

@@ -106,7 +106,8 @@ def one_hot(indices: Any, n_classes: int, *, weights: Any = None) -> np.ndarray:
     [[0.0, 1.0, 0.0], [1.0, 0.0, 0.0]]
     """
     indices = np.asarray(indices)
-    if indices.ndim != 1 or indices.dtype.kind not in "iu" or (indices.size and (indices.min() < 0 or indices.max() >= n_classes)):
+    outside = indices.size and (indices.min() < 0 or indices.max() >= n_classes)
+    if indices.ndim != 1 or indices.dtype.kind not in "iu" or outside:
         raise ValueError(f"indices must be a 1-D integer array of class indices in [0, {n_classes}), got {indices!r}")
     scale = np.ones(n_classes) if weights is None else np.asarray(weights, dtype=np.float64)
     if scale.shape != (n_classes,) or not np.all(np.isfinite(scale)) or np.any(scale <= 0):

@@ -24,10 +24,10 @@ from .._version import __version__
 from ..classify import Classifier, encode_labels, stratified_split
 from ..classmetrics import ClassificationMetrics, classification_metrics
 from ..csvdata import CsvError, CsvTable
+from ..csvlabels import is_text_column, label_cells
 from ..export import export_c_fixed_point
 from ..export.classes import fixed_point_class_agreement
-from ..csvlabels import is_text_column, label_cells
-from ..modelfile import fingerprint, save
+from ..modelfile import save
 from ..plots import PLOT_HINT, PlotsUnavailable, confusion_plot, reliability_diagram
 from ..recipes import (
     CLASSIFICATION_EPOCHS,
@@ -49,8 +49,8 @@ def class_targets(table: CsvTable, targets: list[str], marked: list[str] | None)
     marked = marked or []
     strays = [name for name in marked if name not in targets]
     if strays:
-        raise CommandError(f"--classes names {', '.join(map(repr, strays))}, which {'is' if len(strays) == 1 else 'are'} "
-                           "not among --targets", USAGE)
+        verb = "is" if len(strays) == 1 else "are"
+        raise CommandError(f"--classes names {', '.join(map(repr, strays))}, which {verb} not among --targets", USAGE)
     found = []
     for name in targets:
         index = table.columns.index(name)
@@ -205,7 +205,9 @@ def _split(indices: np.ndarray, fraction: float, seed: int, classes: tuple[str, 
     return training, test
 
 
-def _measure(classifier: Classifier, X: np.ndarray, indices: np.ndarray, rows: np.ndarray) -> ClassificationMetrics | None:
+def _measure(
+    classifier: Classifier, X: np.ndarray, indices: np.ndarray, rows: np.ndarray
+) -> ClassificationMetrics | None:
     if rows.size == 0:
         return None
     return classification_metrics(indices[rows], classifier.probabilities(X[rows]), classifier.labels)

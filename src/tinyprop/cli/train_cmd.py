@@ -13,18 +13,6 @@ from typing import Any
 
 from ..csvdata import CsvTable
 from ..modelfile import save
-from . import _args, _classes
-from ._common import (
-    USAGE,
-    CommandError,
-    describe_os_error,
-    numeric_columns,
-    output_folder,
-    read_table,
-    require_columns,
-    write_json,
-    write_plots,
-)
 from ..recipes import (
     ACTIVATIONS,
     METHODS,
@@ -36,6 +24,18 @@ from ..recipes import (
     evaluate_all,
     fit,
     least_squares_uncertainty,
+)
+from . import _args, _classes
+from ._common import (
+    USAGE,
+    CommandError,
+    describe_os_error,
+    numeric_columns,
+    output_folder,
+    read_table,
+    require_columns,
+    write_json,
+    write_plots,
 )
 from ._fit_report import architecture, model_metadata, report, split_for_command
 
@@ -65,8 +65,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     data.add_argument("--class-weights", metavar="WEIGHTS",
                       help="for a class target: 'balanced' (every class weighs the same in total) or "
                            "LABEL=WEIGHT pairs, comma-separated (default: every row weighs 1)")
-    data.add_argument("--validation-fraction", type=_args.fraction, default=defaults.validation_fraction,
-                      metavar="F", help=f"share of rows held out for validation (default {defaults.validation_fraction})")
+    data.add_argument(
+        "--validation-fraction",
+        type=_args.fraction,
+        default=defaults.validation_fraction,
+        metavar="F",
+        help=f"share of rows held out for validation (default {defaults.validation_fraction})",
+    )
     data.add_argument("--test-fraction", type=_args.fraction, default=defaults.test_fraction,
                       metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
     network = parser.add_argument_group("network")
@@ -82,9 +87,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                               "Levenberg-Marquardt or L-BFGS (small networks)")
     fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
-    fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
-                         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items())
-                              + ")")
+    fitting.add_argument(
+        "--learning-rate",
+        type=_args.positive_float,
+        metavar="LR",
+        help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
+    )
     fitting.add_argument("--schedule", choices=SCHEDULES,
                          help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
                               f"(default {defaults.schedule})")
@@ -101,7 +109,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fitting.add_argument("--seed", type=_args.seed, default=defaults.seed,
                          help=f"seed of the split, the initial weights and the shuffling (default {defaults.seed})")
     output = parser.add_argument_group("output")
-    output.add_argument("--out", default="model.npz", metavar="MODEL.npz", help="model file to write (default model.npz)")
+    output.add_argument("--out", default="model.npz", metavar="MODEL.npz",
+                        help="model file to write (default model.npz)")
     output.add_argument("--report", metavar="REPORT.json",
                         help="JSON training report to write (default: next to the model, <model>.report.json)")
     output.add_argument("--plots", metavar="DIR", help="also write learning_curves.png and parity.png into DIR "
@@ -166,7 +175,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {report_path}")
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
-        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+        written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
                                     list(data.target_names), Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
@@ -199,7 +208,8 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     if args.patience is not None and args.validation_fraction == 0:
         raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
     return FitSettings(
-        hidden=defaults.hidden if args.hidden is None else args.hidden, activation=args.activation, method=args.method, seed=args.seed,
+        hidden=defaults.hidden if args.hidden is None else args.hidden, activation=args.activation,
+        method=args.method, seed=args.seed,
         validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
         **{option: value(option) for option, _, _ in _APPLIES_ONLY_TO},
     )

@@ -18,13 +18,9 @@ The generated code:
   (``weight[j][k]`` connects input ``j`` to unit ``k``) and the loops over the
   units ``k`` are innermost, so unit ``k``'s sum still runs over ``j = 0, 1,
   ...`` in order while consecutive units sit side by side in memory; each
-  statement adds four terms (in order) to cut the round trips through memory;
-  loop bounds are constants; activation functions are ``static inline``. GCC 12
-  at ``-O2`` (x86-64) vectorises a loop over a layer's units when the width is a
-  multiple of the vector length (4 floats or 2 doubles) and the body calls no
-  library function and computes nothing conditionally (LeakyReLU's ``z *
-  slope`` is conditional); for example every 32-unit loop of an 8-32-32-1 tanh
-  network in float;
+  statement adds four terms (in order); loop bounds are constants; activation
+  functions are ``static inline`` (what compilers make of it, measured:
+  ``docs/export.md``, "How the layout was found");
 - writes every constant so that it converts back to exactly the stored value:
   ``repr`` (shortest round trip) for double and 9 significant digits for float
   (decimal, the default, exact with any correctly rounding compiler such as
@@ -40,13 +36,13 @@ from typing import Any, Callable, Mapping, Sequence
 import numpy as np
 
 from ..network import Network
-from .classes import check_labels, write_c_classes
 from ._activations import activation_kind, c_body, c_input_limit, function_names
 from ._header import Provenance, header_lines, provenance
 from ._identifiers import check_c_name
 from ._metadata import check_metadata
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan, route_work_arrays, work_array_widths
 from ._source import c_block_comment, c_header, comment_text, output_directory, write_source
+from .classes import check_labels, write_c_classes
 
 __all__ = ["export_c"]
 
@@ -216,7 +212,7 @@ class _Writer:
         ]
         for step in self.plan.steps:
             lines += self._constants(step)
-        for (kind, body), function in self.functions.items():
+        for (_, body), function in self.functions.items():
             lines += ["", f"static inline {self.ctype} {function}({self.ctype} z)", "{"]
             lines += [f"    {statement}" for statement in body.split("\n")] + ["}"]
         lines += ["", self.signature, "{"] + self._function_body() + ["}"]

@@ -160,7 +160,9 @@ def output_multipliers(output_bits: Sequence[int]) -> list[int]:
     return [2 ** (top - bits) for bits in output_bits]
 
 
-def write_fixed_classes(folder: Path, name: str, labels: tuple[str, ...], output_bits: Sequence[int]) -> tuple[Path, Path]:
+def write_fixed_classes(
+    folder: Path, name: str, labels: tuple[str, ...], output_bits: Sequence[int]
+) -> tuple[Path, Path]:
     """``<name>_classes.h`` / ``.c`` for the integer-only C export."""
     macro = name.upper()
     multipliers = output_multipliers(output_bits)

@@ -48,7 +48,6 @@ import numpy as np
 
 from .._validate import as_samples
 from ..network import Network
-from .classes import check_labels, write_fixed_classes
 from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
 from ._fixed_program import (
     IntegerProgram,
@@ -59,10 +58,11 @@ from ._fixed_program import (
     build_program,
 )
 from ._header import header_lines, provenance
-from ._plan import make_plan
 from ._identifiers import check_c_name
 from ._metadata import check_metadata
+from ._plan import make_plan
 from ._source import c_block_comment, comment_text, output_directory, write_source
+from .classes import check_labels, write_fixed_classes
 
 __all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]
 
