@@ -142,6 +142,7 @@ def test_class_target_mistakes_are_one_line_each(tmp_path, capsys):
     cases = [
         (["--targets", "state", "--method", "lbfgs", "--hidden", "6"], 2, "--method applies to regression targets"),
         (["--targets", "state", "--batch-size", "8"], 2, "--batch-size applies to regression targets"),
+        (["--targets", "state", "--learning-rate", "0.1"], 2, "--learning-rate applies to regression targets"),
         (["--targets", "state,current_A"], 2, "must be the only target"),
         (["--targets", "current_A", "--class-weights", "balanced"], 2, "--class-weights applies to a class target"),
         (["--targets", "state", "--class-weights", "stalled=2"], 2, "'stalled' is not a label"),

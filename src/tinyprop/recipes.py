@@ -264,7 +264,7 @@ class FitSettings:
     activation: str = "tanh"
     method: str = "mini-batch"
     optimizer: str = "adam"
-    learning_rate: float | None = None  # None: the optimizer's default in OPTIMIZERS
+    lr: float | None = None  # the learning rate; None: the optimizer's default in OPTIMIZERS
     schedule: str = "cosine"
     momentum: float = 0.0
     epochs: int = 200
@@ -276,21 +276,21 @@ class FitSettings:
     dtype: str = "float64"
     max_evaluations: int = 1000
 
-    @property
-    def lr(self) -> float:
-        return OPTIMIZERS[self.optimizer][1] if self.learning_rate is None else self.learning_rate
+    def optimizer_lr(self) -> float:
+        """``lr``, or the optimizer's default learning rate when it is ``None``."""
+        return OPTIMIZERS[self.optimizer][1] if self.lr is None else self.lr
 
     def to_dict(self) -> dict[str, Any]:
         settings = asdict(self)
         settings["hidden"] = list(self.hidden)
-        settings["learning_rate"] = self.lr
+        settings["lr"] = self.optimizer_lr()
         settings["loss"] = "MeanSquaredError"
         return settings
 
     def describe_method(self) -> str:
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
-        text = (f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, "
+        text = (f"{self.optimizer}, learning rate {self.optimizer_lr():g} ({self.schedule}), batch {self.batch_size}, "
                 f"{self.epochs} epochs")
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
@@ -396,9 +396,9 @@ def _optimizer(settings: FitSettings, n_train: int) -> Optimizer:
     if settings.schedule == "cosine":
         schedule = CosineSchedule(settings.epochs * math.ceil(n_train / settings.batch_size))
     if settings.optimizer == "sgd":
-        return SGD(settings.lr, momentum=settings.momentum, schedule=schedule)
+        return SGD(settings.optimizer_lr(), momentum=settings.momentum, schedule=schedule)
     optimizer_class, _ = OPTIMIZERS[settings.optimizer]
-    return optimizer_class(settings.lr, schedule=schedule)
+    return optimizer_class(settings.optimizer_lr(), schedule=schedule)
 
 
 def evaluate(net: Network, data: Dataset, rows: np.ndarray) -> dict[str, Any] | None:

@@ -40,7 +40,7 @@ from ._common import SAFETY, USAGE, CommandError, describe_os_error, numeric_col
 from ._fit_report import architecture
 
 # options of tinyprop train that belong to the regression recipe: refused with a class target
-_REGRESSION_ONLY = ("activation", "method", "optimizer", "learning_rate", "schedule", "momentum", "batch_size",
+_REGRESSION_ONLY = ("activation", "method", "optimizer", "lr", "schedule", "momentum", "batch_size",
                     "patience", "max_evaluations", "dtype", "validation_fraction")
 
 
@@ -68,7 +68,8 @@ def check_options(args: argparse.Namespace, targets: list[str], classes: list[st
     for option in _REGRESSION_ONLY:
         given = getattr(args, option)
         if given is not None and given != getattr(defaults, option, None):
-            raise CommandError(f"--{option.replace('_', '-')} applies to regression targets; {targets[0]!r} is a "
+            flag = "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
+            raise CommandError(f"{flag} applies to regression targets; {targets[0]!r} is a "
                                "class target, fitted by the classification recipe (see docs/classification.md)", USAGE)
 
 

@@ -44,7 +44,7 @@ HELP = "fit a network to columns of a CSV file; write the model file and a JSON 
 # (option, the option it depends on, the values of that option it applies to), checked in this order
 _APPLIES_ONLY_TO = (
     *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
+      for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
     ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
     ("momentum", "optimizer", ("sgd",)),
 )
@@ -89,6 +89,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument(
         "--learning-rate",
+        dest="lr",
         type=_args.positive_float,
         metavar="LR",
         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
@@ -226,15 +227,15 @@ def _applicability() -> str:
 
 
 def _flag(option: str) -> str:
-    """``batch_size`` -> ``--batch-size``."""
-    return "--" + option.replace("_", "-")
+    """``batch_size`` -> ``--batch-size``; ``lr`` (the library's name) -> ``--learning-rate``."""
+    return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace, table: CsvTable, targets: list[str], inputs: list[str]) -> Dataset:
-    X, Y = numeric_columns(table, inputs, targets)
+    X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
