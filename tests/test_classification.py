@@ -234,3 +234,15 @@ def test_classifier_labels_survive_a_model_file(tmp_path):
         tp.Classifier.from_metadata(model.network, {})
     with pytest.raises(ValueError, match="3 outputs but 2 labels"):
         tp.Classifier(net, ("a", "b"))
+
+
+def test_a_yes_no_column_is_two_classes_whose_probability_is_the_sigmoid_of_the_logit_difference():
+    """Synthetic pump readings, 'is it cavitating?': two logits, p(yes) = 1 / (1 + exp(-(z_yes - z_no)))."""
+    X, states = machine_states(200, seed=8)
+    answers = np.where(states == "cavitation", "yes", "no")
+    fitted = tp.fit_tabular_classification(X, answers, hidden=6, epochs=40, penalty=1e-3)
+    classifier = fitted.classifier
+    assert classifier.labels == ("no", "yes") and classifier.net.n_out == 2
+    z = classifier.logits(X)
+    np.testing.assert_allclose(classifier.probabilities(X)[:, 1], 1 / (1 + np.exp(-(z[:, 1] - z[:, 0]))), rtol=1e-12)
+    assert np.mean(classifier.predict_labels(X) == answers) > 0.85
