@@ -12,7 +12,16 @@ modules: ``tinyprop.network.Trace``, ``tinyprop.workspace.Workspace``,
 """
 
 from ._version import __version__
-from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .activations import Activation, ActivationShape, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .bounds import (
+    Certificate,
+    GradientBounds,
+    OutputBounds,
+    UndeclaredActivation,
+    certificate,
+    gradient_bounds,
+    output_bounds,
+)
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .classify import Classifier
@@ -42,7 +51,14 @@ from .modelfile import (
 )
 from .network import Network
 from .optim import SGD, Adam, Optimizer, RMSProp
-from .recipes import ClassificationFit, TabularRegression, fit_tabular_classification, fit_tabular_regression
+from .posterior import PosteriorUncertainty
+from .recipes import (
+    ClassificationFit,
+    RecipeResult,
+    TabularRegression,
+    fit_tabular_classification,
+    fit_tabular_regression,
+)
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
@@ -63,6 +79,7 @@ __all__ = [
     "Network", "build_mlp", "Affine", "Standardize", "Unstandardize",
     # activations
     "Activation", "Sigmoid", "Tanh", "ReLU", "LeakyReLU", "Softplus", "Identity", "register_activation",
+    "ActivationShape",
     # losses
     "Loss", "SquaredError", "MeanSquaredError", "HuberError", "CrossEntropyOnSigmoid", "CrossEntropyOnSoftmax",
     # training: the loop, optimizers, schedules, checkpoints
@@ -73,7 +90,7 @@ __all__ = [
     # least-squares fitting
     "solve", "SolveResult",
     # recipes
-    "fit_tabular_regression", "TabularRegression",
+    "fit_tabular_regression", "TabularRegression", "RecipeResult",
     # classification
     "Classifier", "fit_tabular_classification", "ClassificationFit", "classification_metrics",
     "ClassificationMetrics",
@@ -84,8 +101,12 @@ __all__ = [
     "model_parts", "model_from_parts",
     # inference code
     "export_c", "export_python", "export_c_fixed_point", "FixedPointReport", "agreement_bound",
+    # guarantees over an input box
+    "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
+    "UndeclaredActivation",
     # how far to trust a fit
-    "parameter_uncertainty", "ParameterUncertainty", "PredictionIntervals", "RankDeficientError", "parameter_labels",
+    "parameter_uncertainty", "ParameterUncertainty", "PosteriorUncertainty", "PredictionIntervals",
+    "RankDeficientError", "parameter_labels",
     "input_sensitivity", "SensitivityTable", "uncertainty_report",
     # many networks
     "sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "Ensemble",
