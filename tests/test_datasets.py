@@ -65,7 +65,7 @@ def test_unchanged_files_match_original_digests():
             local = DATA.joinpath(*path.split("/"))
         assert _sha256(local.read_bytes()) == digest, path
         checked += 1
-    assert checked == 8 + 3 * 6
+    assert checked == 8 + 3 * 6 + 2  # NIST, UCI (6 unchanged files each), penguins and iris
 
 
 def test_repacked_split_indices_regenerate_original_files_byte_for_byte():
@@ -345,3 +345,27 @@ def test_battery_csv_round_trip(tmp_path):
     np.testing.assert_array_equal(table[:, 3], y)
     loaded = np.loadtxt(path, delimiter=",", skiprows=2)
     np.testing.assert_array_equal(loaded, np.column_stack([X, y]))
+
+
+# --------------------------------------------------------------------------- #
+# classification data (penguins, iris)
+
+
+def test_penguins_and_iris_loaders_match_the_published_row_counts():
+    """Counts from the shared data README (344 penguins, 333 complete; 150 iris) and, from memory,
+    the published species counts (penguins: 152 Adelie, 68 Chinstrap, 124 Gentoo; iris: 50 each)."""
+    from collections import Counter
+
+    from tinyprop.datasets import load_iris, load_penguins
+
+    penguins = load_penguins()
+    assert penguins.X.shape == (342, 4) and penguins.dropped_lines == (5, 273)
+    # 152 Adelie and 124 Gentoo, less the one unmeasured penguin of each
+    assert Counter(penguins.labels.tolist()) == {"Adelie": 151, "Chinstrap": 68, "Gentoo": 123}
+    text = DATA.joinpath("classification", "penguins.csv").read_text().splitlines()
+    assert len(text) - 1 == 344 and sum("NA" not in line for line in text[1:]) == 333
+    assert np.all(np.isfinite(penguins.X)) and penguins.X[:, 3].min() > 2000  # body mass in grams
+    iris = load_iris()
+    assert iris.X.shape == (150, 4) and iris.dropped_lines == ()
+    assert Counter(iris.labels.tolist()) == {"setosa": 50, "versicolor": 50, "virginica": 50}
+    assert iris.X[0].tolist() == [5.1, 3.5, 1.4, 0.2]  # Fisher (1936), Table I, first flower

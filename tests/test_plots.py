@@ -81,3 +81,25 @@ def test_without_matplotlib_train_still_works_and_says_how_to_enable_plots(witho
     assert (tmp_path / "m.npz").is_file() and (tmp_path / "m.report.json").is_file()
     assert list((tmp_path / "plots").iterdir()) == []
     assert "matplotlib is not installed" in err and 'pip install "tinyprop[plot]"' in err
+
+
+def test_confusion_matrix_and_reliability_diagram_are_valid_pngs(tmp_path):
+    pytest.importorskip("matplotlib")
+    from tinyprop import classification_metrics
+    from tinyprop.plots import confusion_plot, reliability_diagram
+
+    rng = np.random.default_rng(1)  # synthetic probabilities of three classes
+    p = rng.dirichlet([1.0, 1.0, 1.0], size=80)
+    metrics = classification_metrics(rng.integers(0, 3, 80), p, ["idle", "run", "fault"])
+    assert_png(confusion_plot(metrics, tmp_path / "confusion.png"))
+    assert_png(reliability_diagram(metrics, tmp_path / "reliability.png"))
+
+
+def test_classification_plots_without_matplotlib_say_how_to_install_it(tmp_path, without_matplotlib):
+    from tinyprop import classification_metrics
+    from tinyprop.plots import confusion_plot, reliability_diagram
+
+    metrics = classification_metrics([0, 1], [[0.9, 0.1], [0.2, 0.8]], ["a", "b"])
+    for draw in (confusion_plot, reliability_diagram):
+        with pytest.raises(PlotsUnavailable, match="matplotlib"):
+            draw(metrics, tmp_path / "x.png")

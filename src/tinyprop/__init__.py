@@ -24,6 +24,8 @@ from .bounds import (
 )
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
+from .classify import Classifier
+from .classmetrics import ClassificationMetrics, classification_metrics
 from .ensemble import Ensemble
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from .layers import Affine, Standardize, Unstandardize
@@ -50,7 +52,13 @@ from .modelfile import (
 from .network import Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .posterior import PosteriorUncertainty
-from .recipes import RecipeResult, TabularRegression, fit_tabular_regression
+from .recipes import (
+    ClassificationFit,
+    RecipeResult,
+    TabularRegression,
+    fit_tabular_classification,
+    fit_tabular_regression,
+)
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
@@ -84,6 +92,9 @@ __all__ = [
     "solve", "SolveResult",
     # recipes
     "fit_tabular_regression", "TabularRegression", "RecipeResult",
+    # classification
+    "Classifier", "fit_tabular_classification", "ClassificationFit", "classification_metrics",
+    "ClassificationMetrics",
     # verification
     "check_gradient", "GradientReport", "check_activation", "ActivationReport",
     # model files

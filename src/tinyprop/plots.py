@@ -1,4 +1,5 @@
-"""PNG plots of a training run: learning curves and a predicted-versus-actual parity plot.
+"""PNG plots of a training run: learning curves, a predicted-versus-actual parity plot, and for
+classifiers a confusion matrix and a reliability diagram.
 
 Needs the optional ``plot`` extra (matplotlib): ``pip install "tinyprop[plot]"``.
 Without it every function raises :class:`PlotsUnavailable` (an ``ImportError``)
@@ -18,7 +19,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-__all__ = ["PLOT_HINT", "PlotsUnavailable", "learning_curves", "parity_plot"]
+__all__ = ["PLOT_HINT", "PlotsUnavailable", "confusion_plot", "learning_curves", "parity_plot", "reliability_diagram"]
 
 PLOT_HINT = 'pip install "tinyprop[plot]"'
 
@@ -104,6 +105,61 @@ def parity_plot(
     figure.suptitle(title, fontsize=10)
     return _save(figure, canvas, path)
 
+
+def confusion_plot(metrics: Any, path: str | os.PathLike[str], *, title: str = "confusion matrix") -> Path:
+    """Write the confusion matrix of a :class:`~tinyprop.classmetrics.ClassificationMetrics` as a PNG.
+
+    Rows are the true classes, columns the decided ones; every cell shows its
+    count, shaded by its share of the true class's rows. Returns ``path``.
+    """
+    counts = np.asarray(metrics.confusion, dtype=np.float64)
+    labels = list(metrics.labels)
+    shares = counts / np.maximum(counts.sum(axis=1, keepdims=True), 1.0)
+    side = 1.2 + 0.7 * len(labels)
+    figure, canvas = _figure(1, (side + 1.5, side + 0.8))
+    axes = figure.add_subplot(1, 1, 1)
+    axes.imshow(shares, cmap="Blues", vmin=0.0, vmax=1.0)
+    for a in range(len(labels)):
+        for b in range(len(labels)):
+            axes.text(b, a, str(int(counts[a, b])), ha="center", va="center",
+                      color="white" if shares[a, b] > 0.5 else "black")
+    axes.set_xticks(range(len(labels)), labels, rotation=45, ha="right")
+    axes.set_yticks(range(len(labels)), labels)
+    axes.set_xlabel("decided class")
+    axes.set_ylabel("true class")
+    axes.set_title(f"{title}\naccuracy {100 * metrics.accuracy:.1f} % ({metrics.errors} errors in {metrics.rows})",
+                   fontsize=9)
+    return _save(figure, canvas, path)
+
+
+def reliability_diagram(metrics: Any, path: str | os.PathLike[str], *, title: str = "reliability") -> Path:
+    """Write the calibration table of a :class:`~tinyprop.classmetrics.ClassificationMetrics` as a PNG.
+
+    For every bin of the top predicted probability that holds rows: the share
+    of its rows decided correctly against their mean top probability, with the
+    diagonal a calibrated classifier follows; the bars below count the rows.
+    Returns ``path``.
+    """
+    used = [entry for entry in metrics.calibration if entry["rows"]]
+    figure, canvas = _figure(2, (5.2, 6.0))
+    axes = figure.add_subplot(2, 1, 1)
+    axes.plot([0, 1], [0, 1], color="0.5", linewidth=1, label="calibrated")
+    axes.plot([e["mean_probability"] for e in used], [e["observed_frequency"] for e in used], marker="o",
+              label="observed")
+    axes.set_xlim(0, 1)
+    axes.set_ylim(0, 1.02)
+    axes.set_xlabel("mean top probability in the bin")
+    axes.set_ylabel("share decided correctly")
+    axes.set_title(f"{title}\nlog loss {metrics.log_loss:.3g}, Brier {metrics.brier:.3g}", fontsize=9)
+    axes.grid(True, alpha=0.3)
+    axes.legend(loc="upper left")
+    counts = figure.add_subplot(2, 1, 2)
+    counts.bar([(e["low"] + e["high"]) / 2 for e in metrics.calibration], [e["rows"] for e in metrics.calibration],
+               width=[0.9 * (e["high"] - e["low"]) for e in metrics.calibration])
+    counts.set_xlim(0, 1)
+    counts.set_xlabel("top probability")
+    counts.set_ylabel("rows")
+    return _save(figure, canvas, path)
 
 def _figure(panels: int, size: tuple[float, float]) -> tuple[Any, Any]:
     try:

@@ -5,6 +5,11 @@ the same recipe with every setting open to a sweep) builds a scaled one-hidden-l
 tanh network and trains it with Adam and early stopping; its settings and their
 measured results are in ``docs/training.md``.
 
+**The default classification recipe** (:func:`fit_tabular_classification`, at the
+end of this module) builds a scaled tanh network giving one logit per class and
+chooses its L2 penalty by the evidence framework; ``docs/classification.md``
+gives its settings and measured results.
+
 **The command line's recipe** (:class:`FitSettings`; the steps :func:`split_rows`,
 :func:`build_network`, :func:`fit`, :func:`evaluate_all`) is what ``tinyprop train``
 and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``y`` (targets,
@@ -49,8 +54,9 @@ import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
+from .classify import Classifier, encode_labels, one_hot, softmax, softmax_curvature, stratified_folds
 from .layers import Affine, Standardize, Unstandardize
-from .losses import MeanSquaredError
+from .losses import CrossEntropyOnSoftmax, MeanSquaredError
 from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
@@ -76,6 +82,8 @@ __all__ = [
     "evaluate",
     "evaluate_all",
     "least_squares_uncertainty",
+    "fit_tabular_classification",
+    "ClassificationFit",
 ]
 
 
@@ -658,3 +666,207 @@ def least_squares_uncertainty(
     except ValueError as exc:  # e.g. no degrees of freedom left
         return {"unavailable": str(exc)}
 
+
+
+# ---------------------------------------------------------------- the default classification recipe
+# Chosen and measured in docs/classification.md (penguins and iris): the L2 penalty by MacKay's
+# evidence framework (default), or by cross-validation over a grid.
+CLASSIFICATION_HIDDEN_UNITS = 32
+CLASSIFICATION_PENALTIES = (1e-4, 3e-4, 1e-3, 3e-3, 1e-2)  # the grid for penalty="cross-validation"
+CLASSIFICATION_FOLDS = 5
+CLASSIFICATION_LR = 1e-2
+CLASSIFICATION_BATCH_SIZE = 32
+CLASSIFICATION_EPOCHS = 300
+EVIDENCE_START = 1e-3  # the L2 weight of the first evidence round
+EVIDENCE_ROUNDS = 6  # at most; stops when the weight changes by less than 5 %
+
+
+@dataclass(frozen=True)
+class ClassificationFit:
+    """What :func:`fit_tabular_classification` returns.
+
+    ``classifier`` (the network and its labels), ``result`` (the final
+    training run), ``penalty`` (the L2 weight used), ``cross_validation``
+    (``(penalty, mean held-out log loss)`` of every candidate, in the order
+    tried; empty unless the penalty was cross-validated), ``evidence``
+    (``(l2, gamma, sum of squared weights)`` per evidence round; empty unless
+    the evidence framework chose the penalty) and ``class_weights`` (one per
+    label, all 1 unless asked for).
+    """
+
+    classifier: Classifier
+    result: TrainingResult
+    penalty: float
+    cross_validation: tuple[tuple[float, float], ...]
+    class_weights: tuple[float, ...]
+    evidence: tuple[tuple[float, float, float], ...] = ()
+
+
+def fit_tabular_classification(
+    X: Any,
+    labels: Any,
+    *,
+    hidden: Any = (CLASSIFICATION_HIDDEN_UNITS,),
+    penalty: Any = "evidence",
+    penalties: Any = CLASSIFICATION_PENALTIES,
+    folds: int = CLASSIFICATION_FOLDS,
+    epochs: int = CLASSIFICATION_EPOCHS,
+    class_weights: Any = None,
+    seed: int = 0,
+    target: str = "class",
+) -> ClassificationFit:
+    """tinyprop's default recipe for small tabular classification.
+
+    ``X`` ``(n, d)``, ``labels`` ``(n,)`` (any values, compared as strings;
+    at least two distinct ones). The recipe:
+
+    - classes: the distinct labels, sorted (:func:`~tinyprop.classify.encode_labels`);
+    - network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine(., K)``
+      giving one logit per class, scaling fitted on all rows given, Glorot
+      initialisation;
+    - loss :class:`~tinyprop.losses.CrossEntropyOnSoftmax` on one-hot rows,
+      each multiplied by its class weight (:func:`~tinyprop.classify.one_hot`);
+    - ``Adam(lr=1e-2)`` with the learning rate falling along a cosine to 0,
+      mini-batches of 32, ``epochs`` epochs (no early stopping), plus the L2
+      penalty ``l2/2 * sum ||W||^2`` on the weight matrices of :func:`~tinyprop.train.train`.
+
+    ``penalty`` chooses ``l2``:
+
+    - ``"evidence"`` (default): MacKay's evidence framework (MacKay 1992, "The
+      evidence framework applied to classification networks", Neural
+      Computation 4(5)). With ``alpha = n * l2`` (``train``'s loss is a mean
+      over rows), train, then ``gamma = sum_j lambda_j / (lambda_j + alpha)``
+      over the eigenvalues ``lambda_j`` of the weight block of the
+      Gauss-Newton Hessian of the summed loss,
+      ``H = sum_i s_i J_i^T (diag(p_i) - p_i p_i^T) J_i`` (``J_i`` the
+      logits' Jacobian with respect to the weights, ``s_i`` the row's class
+      weight; :func:`~tinyprop.classify.softmax_curvature`), and set
+      ``alpha = gamma / sum ||W||^2``; from ``l2 = 1e-3``, at most 6 rounds,
+      stopping when ``alpha`` changes by less than 5 %; then train once more
+      with the last ``alpha``. ``gamma`` is the number of well-determined
+      weights;
+    - ``"cross-validation"``: ``l2`` from ``penalties`` by ``folds``-fold
+      stratified cross-validation on the rows given
+      (:func:`~tinyprop.classify.stratified_folds`), the lowest mean held-out
+      log loss (the first on a tie); then trained on all rows with it
+      (``len(penalties) * folds + 1`` trainings);
+    - a number: that ``l2``, one training.
+
+    ``class_weights``: ``None`` (all 1), ``"balanced"`` (``n / (K n_c)`` for
+    class ``c`` with ``n_c`` rows, so every class weighs the same in total)
+    or a dict from label to a positive weight (labels not named weigh 1).
+
+    ``seed`` gives the folds, the initial weights and the shuffling three
+    independent streams (``numpy.random.SeedSequence``); every training
+    starts from the same initial weights, and the same seed and data give
+    the same weights. ``target`` names the label column (kept with the labels
+    in model files).
+    """
+    X = as_float_array(X, "X", np.dtype(np.float64))
+    if X.ndim != 2:
+        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
+    classes, indices = encode_labels(labels)
+    if indices.size != X.shape[0]:
+        raise ValueError(f"labels must have one entry per row of X ({X.shape[0]}), got {indices.size}")
+    widths = tuple(positive_int(width, "each width in hidden") for width in
+                   ((hidden,) if isinstance(hidden, (int, np.integer)) else tuple(hidden)))
+    epochs = positive_int(epochs, "epochs")
+    if seed_value(seed) is None:
+        raise TypeError("seed must be an integer >= 0, got None")
+    weights = _class_weights(class_weights, classes, indices)
+    targets = one_hot(indices, len(classes), weights=weights)
+    fold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(int(seed)).generate_state(3))
+
+    def trained(rows: np.ndarray, l2: float) -> tuple[Network, TrainingResult]:
+        layers: list[Layer] = [Standardize.from_data(X[rows])]
+        for n_in, n_out in zip((X.shape[1], *widths[:-1]), widths):
+            layers += [Affine(n_in, n_out), Tanh()]
+        layers.append(Affine(widths[-1], len(classes)))
+        net = Network(layers, seed=init_seed)
+        schedule = CosineSchedule(epochs * math.ceil(rows.size / CLASSIFICATION_BATCH_SIZE))
+        result = train(net, X[rows], targets[rows], loss=CrossEntropyOnSoftmax(),
+                       optimizer=Adam(lr=CLASSIFICATION_LR, schedule=schedule), epochs=epochs,
+                       batch_size=CLASSIFICATION_BATCH_SIZE, seed=shuffle_seed, l2=l2)
+        return net, result
+
+    every_row = np.arange(indices.size)
+    scores: list[tuple[float, float]] = []
+    rounds: list[tuple[float, float, float]] = []
+    if isinstance(penalty, str) and penalty == "evidence":
+        chosen = EVIDENCE_START
+        for _ in range(EVIDENCE_ROUNDS):
+            net, _ = trained(every_row, chosen)
+            gamma, squares = _well_determined(net, X, targets, indices.size * chosen)
+            rounds.append((chosen, gamma, squares))
+            update = gamma / squares / indices.size
+            converged = abs(math.log(update / chosen)) < 0.05
+            chosen = update
+            if converged:
+                break
+    elif isinstance(penalty, str) and penalty == "cross-validation":
+        candidates = tuple(real_in_range(p, "each penalty", low=0.0) for p in penalties)
+        folds = positive_int(folds, "folds")
+        if not candidates:
+            raise ValueError("penalties must hold at least one value")
+        smallest = int(np.bincount(indices).min())
+        if folds < 2 or smallest < folds:
+            raise ValueError(f"cross-validation over {folds} folds needs at least {max(folds, 2)} rows of every "
+                             f"class; the smallest class has {smallest} (lower folds or give a fixed penalty)")
+        for l2 in candidates:
+            losses = []
+            for held in stratified_folds(indices, folds, fold_seed):
+                net, _ = trained(np.setdiff1d(every_row, held), l2)
+                p = softmax(net.predict(X[held]))
+                losses.append(-np.log(np.maximum(p[np.arange(held.size), indices[held]], 1e-300)))
+            scores.append((l2, float(np.mean(np.concatenate(losses)))))
+        chosen = min(scores, key=lambda entry: entry[1])[0]
+    elif isinstance(penalty, str):
+        raise ValueError(f"penalty must be 'evidence', 'cross-validation' or a number >= 0, got {penalty!r}")
+    else:
+        chosen = real_in_range(penalty, "penalty", low=0.0)
+    net, result = trained(every_row, chosen)
+    return ClassificationFit(Classifier(net, classes, str(target)), result, chosen, tuple(scores),
+                             tuple(float(w) for w in weights), tuple(rounds))
+
+
+def _well_determined(net: Network, X: np.ndarray, targets: np.ndarray, alpha: float) -> tuple[float, float]:
+    """``(gamma, sum ||W||^2)`` of the evidence framework at the prior weight ``alpha``.
+
+    ``gamma = sum_j lambda_j / (lambda_j + alpha)`` over the eigenvalues of the
+    weight block of ``H = sum_i s_i J_i^T C_i J_i``: ``J_i`` the logits'
+    Jacobian of row ``i`` with respect to the weight-matrix entries,
+    ``C_i = diag(p_i) - p_i p_i^T`` (:func:`~tinyprop.classify.softmax_curvature`),
+    ``s_i = sum_k targets[i, k]`` (the row's class weight). Rows are taken in
+    blocks of 256, so the memory is that of ``H`` plus one block's Jacobian.
+    """
+    mask = np.concatenate([np.full(p.size, p.ndim == 2) for p in net.params])
+    n_classes, size = targets.shape[1], int(mask.sum())
+    H = np.zeros((size, size))
+    for start in range(0, X.shape[0], 256):
+        rows = slice(start, start + 256)
+        J = net.jacobian(X[rows]).reshape(-1, n_classes, net.n_params)[:, :, mask]
+        C = softmax_curvature(net.predict(X[rows])) * targets[rows].sum(axis=1)[:, None, None]
+        H += J.reshape(-1, size).T @ np.einsum("ikl,ilb->ikb", C, J).reshape(-1, size)
+    eigenvalues = np.clip(np.linalg.eigvalsh(H), 0.0, None)
+    return float(np.sum(eigenvalues / (eigenvalues + alpha))), float(np.sum(net.get_vector()[mask] ** 2))
+
+
+def _class_weights(spec: Any, classes: tuple[str, ...], indices: np.ndarray) -> np.ndarray:
+    """One weight per class from ``None``, ``"balanced"`` or ``{label: weight}``."""
+    if spec is None:
+        return np.ones(len(classes))
+    if isinstance(spec, str):
+        if spec != "balanced":
+            raise ValueError(f"class_weights must be None, 'balanced' or a dict of label -> weight, got {spec!r}")
+        counts = np.bincount(indices, minlength=len(classes))
+        return indices.size / (len(classes) * counts)
+    if not isinstance(spec, Mapping):
+        raise TypeError(f"class_weights must be None, 'balanced' or a dict of label -> weight, got "
+                        f"{type(spec).__name__}")
+    unknown = sorted(str(label) for label in spec if str(label) not in classes)
+    if unknown:
+        raise ValueError(f"class_weights names {unknown}, which are not among the labels {list(classes)}")
+    weights = np.ones(len(classes))
+    for label, value in spec.items():
+        weights[classes.index(str(label))] = real_in_range(value, f"class_weights[{label!r}]", low=0.0, low_open=True)
+    return weights

@@ -16,7 +16,9 @@ from typing import Any
 
 import numpy as np
 
+from ..classify import class_entry
 from ..export import check_name, export_c, export_c_fixed_point, export_python
+from ..export.classes import fixed_point_class_agreement
 from ..modelfile import ModelFile
 from . import _args
 from ._common import (
@@ -78,17 +80,22 @@ def run(args: argparse.Namespace) -> int:
     model = read_model(args.model)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
-    written, report = [], None
+    entry = class_entry(model.metadata)
+    labels = None if entry is None else entry.get("labels")  # a classifier: add the class decision
+    written, report, agreement = [], None, None
     try:
         if "c" in languages:
             dtype = "float32" if args.c_type == "float" else "float64"
-            written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata)
+            written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata, labels=labels)
         if "python" in languages:
-            written.append(export_python(model.network, folder, name=args.name, metadata=metadata))
+            written.append(export_python(model.network, folder, name=args.name, metadata=metadata, labels=labels))
         if "c-fixed" in languages:
-            report = export_c_fixed_point(model.network, folder, _calibration_rows(args, model),
-                                          name=f"{args.name}_q", headroom=args.headroom, metadata=metadata)
-            written += [report.header, report.source]
+            calibration = _calibration_rows(args, model)
+            report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
+                                          headroom=args.headroom, metadata=metadata, labels=labels)
+            written += [report.header, report.source, *report.class_files]
+            if labels is not None:
+                agreement = fixed_point_class_agreement(report, model.network, calibration)
     except OSError as exc:
         raise CommandError(f"cannot write the code: {describe_os_error(exc)}") from None
     except (TypeError, ValueError) as exc:
@@ -98,6 +105,8 @@ def run(args: argparse.Namespace) -> int:
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
     if report is not None:
         print(report)
+    if agreement is not None:
+        print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
         for warning in report.warnings:
             print(f"tinyprop export: warning: {warning}", file=sys.stderr)
     return 0

@@ -26,7 +26,7 @@ from ..recipes import (
     fit,
     least_squares_uncertainty,
 )
-from . import _args
+from . import _args, _classes
 from ._common import (
     USAGE,
     CommandError,
@@ -61,6 +61,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                       help="input columns, comma-separated (default: every column that is not a target)")
     data.add_argument("--delimiter", default=",", help="field separator (default ',')")
+    data.add_argument("--classes", type=_args.names, action="extend", metavar="NAMES",
+                      help="target columns holding class labels written as numbers (a target column of text "
+                           "labels is a class column without this); see docs/classification.md")
+    data.add_argument("--class-weights", metavar="WEIGHTS",
+                      help="for a class target: 'balanced' (every class weighs the same in total) or "
+                           "LABEL=WEIGHT pairs, comma-separated (default: every row weighs 1)")
     data.add_argument(
         "--validation-fraction",
         type=_args.fraction,
@@ -73,7 +79,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     network = parser.add_argument_group("network")
     network.add_argument("--hidden", type=_args.widths, default=defaults.hidden, metavar="WIDTHS",
                          help="hidden-layer widths, comma-separated (default: the recipe's, 20 for evidence-lm and "
-                              "50 for adam-early-stopping; 16,16 for the other methods)")
+                              "50 for adam-early-stopping; 16,16 for the other methods; 32 for a class target)")
     network.add_argument("--activation", choices=sorted(ACTIVATIONS), default=defaults.activation,
                          help=f"hidden-layer activation (default {defaults.activation})")
     network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
@@ -121,11 +127,32 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    settings = _settings(args)
+    try:
+        settings, refusal = _settings(args), None
+    except CommandError as exc:  # a regression option misapplied: decided once we know the targets' kind
+        settings, refusal = None, exc
     model_path, report_path = _output_paths(args)
     plots = output_folder(args.plots) if args.plots else None
     started = time.perf_counter()
-    data = _dataset(args)
+    try:
+        table = read_table(args.data, args.delimiter)
+    except CommandError:
+        if refusal is not None:
+            raise refusal from None  # the command line's mistake first, as without class targets
+        raise
+    targets, inputs = _columns(table, args.targets, args.inputs)
+    classes = _classes.class_targets(table, targets, args.classes)
+    if classes:
+        _classes.check_options(args, targets, classes)
+        return _classes.run(args, table, targets[0], inputs, model_path, report_path, plots,
+                            time.perf_counter() - started)
+    if refusal is not None:
+        raise refusal
+    assert settings is not None
+    if args.class_weights is not None:
+        raise CommandError("--class-weights applies to a class target; the targets are numeric "
+                           "(mark a column of numeric class codes with --classes)", USAGE)
+    data = _dataset(args, table, targets, inputs)
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
     recipe = settings.method in RECIPE_METHODS
@@ -233,9 +260,7 @@ def _flag(option: str) -> str:
     return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
-def _dataset(args: argparse.Namespace) -> Dataset:
-    table = read_table(args.data, args.delimiter)
-    targets, inputs = _columns(table, args.targets, args.inputs)
+def _dataset(args: argparse.Namespace, table: CsvTable, targets: list[str], inputs: list[str]) -> Dataset:
     X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()

@@ -31,7 +31,7 @@ The generated code:
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any, Callable, Mapping
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -42,6 +42,7 @@ from ._identifiers import check_c_name
 from ._metadata import check_metadata
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan, route_work_arrays, work_array_widths
 from ._source import c_block_comment, c_header, comment_text, output_directory, write_source
+from .classes import check_labels, write_c_classes
 
 __all__ = ["export_c"]
 
@@ -60,7 +61,8 @@ def export_c(
     dtype: Any = "float32",
     metadata: Mapping[str, Any] | None = None,
     literals: str = "decimal",
-) -> tuple[Path, Path]:
+    labels: Sequence[str] | None = None,
+) -> tuple[Path, ...]:
     """Write ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
 
     Parameters
@@ -83,10 +85,16 @@ def export_c(
         see :func:`tinyprop.export._metadata.check_metadata`.
     literals:
         ``"decimal"`` (default) or ``"hex"`` (C99 hexadecimal constants).
+    labels:
+        For a classifier (one logit per output): the class labels in output
+        order. Then ``<name>_classes.h`` / ``<name>_classes.c`` are written too,
+        with the label table and ``int <name>_classify(const T *x, T *p)``
+        (:mod:`tinyprop.export.classes`).
 
     Returns
     -------
-    ``(header_path, source_path)``.
+    ``(header_path, source_path)``, followed by the two class files when
+    ``labels`` are given.
 
     Raises
     ------
@@ -105,6 +113,7 @@ def export_c(
     if widest > _INT_MAX:
         raise ValueError(f"layers may be at most {_INT_MAX} wide for int loop indices, got width {widest}")
     meta = check_metadata(metadata, plan.n_in, plan.n_out)
+    classes = None if labels is None else check_labels(labels, plan.n_out)
     writer = _Writer(name, ctype, plan, lambda v: _literal(v, ctype, literals == "hex"))
     origin = provenance(net)
 
@@ -114,6 +123,8 @@ def export_c(
 
     header_path = write_source(directory, f"{name}.h", writer.header_file(header(f"{name}.h"), origin))
     source_path = write_source(directory, f"{name}.c", writer.source_file(header(f"{name}.c")))
+    if classes is not None:
+        return (header_path, source_path, *write_c_classes(directory, name, classes, ctype))
     return header_path, source_path
 
 

@@ -42,7 +42,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -62,6 +62,7 @@ from ._identifiers import check_c_name
 from ._metadata import check_metadata
 from ._plan import make_plan
 from ._source import c_block_comment, comment_text, output_directory, write_source
+from .classes import check_labels, write_fixed_classes
 
 __all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]
 
@@ -113,6 +114,7 @@ class FixedPointReport:
     output_range: np.ndarray
     warnings: tuple[str, ...]
     program: IntegerProgram = field(repr=False)
+    class_files: tuple[Path, ...] = ()  # <name>_classes.h / .c when labels were given
 
     @property
     def max_rel_error(self) -> np.ndarray:
@@ -177,6 +179,7 @@ def export_c_fixed_point(
     name: str = "model",
     headroom: float = 2.0,
     metadata: Mapping[str, Any] | None = None,
+    labels: Sequence[str] | None = None,
 ) -> FixedPointReport:
     """Write integer-only ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
 
@@ -202,6 +205,11 @@ def export_c_fixed_point(
     metadata:
         Names and units of inputs and outputs and a description, written into
         the header comment (escaped), as for :func:`~tinyprop.export.export_c`.
+    labels:
+        For a classifier (one logit per output): the class labels in output
+        order. Then ``<name>_classes.h`` / ``<name>_classes.c`` are written too,
+        with the label table and ``int <name>_classify_q(const int16_t *x_q)``
+        (:mod:`tinyprop.export.classes`); ``report.class_files`` lists them.
 
     Returns
     -------
@@ -223,6 +231,7 @@ def export_c_fixed_point(
     if widest > _INT_MAX:
         raise ValueError(f"layers may be at most {_INT_MAX} wide for int loop indices, got width {widest}")
     meta = check_metadata(metadata, plan.n_in, plan.n_out)
+    classes = None if labels is None else check_labels(labels, plan.n_out)
     X = as_samples(calibration_X, "calibration_X", plan.n_in, np.dtype(np.float64))
     program = build_program(plan, X, float(headroom))
 
@@ -249,9 +258,10 @@ def export_c_fixed_point(
 
     header = write_source(directory, f"{name}.h", header_file(name, comment(f"{name}.h"), program, origin.fingerprint))
     source = write_source(directory, f"{name}.c", source_file(name, comment(f"{name}.c"), program))
+    class_files = () if classes is None else write_fixed_classes(directory, name, classes, program.out_bits)
     return FixedPointReport(header, source, float(headroom), len(X), program.in_bits, program.out_bits,
                             input_saturations, steps, tables, warnings=tuple(warnings), program=program,
-                            **report_numbers)
+                            class_files=tuple(class_files), **report_numbers)
 
 
 def _step_format(step, count: int) -> StepFormat:

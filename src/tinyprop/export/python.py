@@ -18,7 +18,7 @@ with its float32 numbers, computed in binary64, i.e. like
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -29,6 +29,7 @@ from ._identifiers import check_module_name
 from ._metadata import Metadata, check_metadata
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan
 from ._source import comment_text, output_directory, python_literal, write_source
+from .classes import check_labels, python_classes
 
 __all__ = ["export_python"]
 
@@ -59,6 +60,7 @@ def export_python(
     *,
     name: str = "model",
     metadata: Mapping[str, Any] | None = None,
+    labels: Sequence[str] | None = None,
 ) -> Path:
     """Write ``<name>.py`` into the existing directory ``path`` and return its path.
 
@@ -76,6 +78,10 @@ def export_python(
         Optional names and units of inputs and outputs and a description (see
         :func:`tinyprop.export._metadata.check_metadata`); written into the
         header comment and into the module's constants, escaped.
+    labels:
+        For a classifier (one logit per output): the class labels in output
+        order. Then the module also defines ``LABELS``, ``N_CLASSES`` and
+        ``classify(x) -> (index, probabilities)`` (:mod:`tinyprop.export.classes`).
 
     Raises
     ------
@@ -87,6 +93,7 @@ def export_python(
     directory = output_directory(path)
     plan = make_plan(net, np.dtype(np.float64))
     meta = check_metadata(metadata, plan.n_in, plan.n_out)
+    classes = None if labels is None else check_labels(labels, plan.n_out)
     functions = _activation_functions(plan)
     origin = provenance(net)
     interface = [
@@ -113,7 +120,8 @@ def export_python(
     for helper in helpers:
         lines += [""] + helper.rstrip("\n").split("\n")
     lines += ["", ""] + _predict(plan, functions)
-    return write_source(directory, f"{name}.py", "\n".join(lines) + "\n")
+    text = "\n".join(lines) + "\n" + ("" if classes is None else python_classes(classes))
+    return write_source(directory, f"{name}.py", text)
 
 
 def _activation_functions(plan: Plan) -> dict[tuple[str, str], str]:
