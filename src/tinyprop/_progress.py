@@ -23,6 +23,11 @@ class ProgressLine:
         self._last = -math.inf
         self._shown = False
 
+    @property
+    def terminal(self) -> bool:
+        """Whether the line goes to a terminal (rewritten in place) rather than a log file or a pipe."""
+        return is_terminal(self.stream)
+
     def show(self, line: str, *, force: bool = False) -> None:
         """Show ``line`` unless the last one was shown less than ``every`` seconds ago (``force`` shows it anyway)."""
         now = time.perf_counter()

@@ -48,6 +48,7 @@ from typing import Any
 
 import numpy as np
 
+from ._words import count
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from .activations import Activation, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp
@@ -56,7 +57,7 @@ from .losses import MeanSquaredError
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
-from .solve import solve
+from .solve import SolveResult, solve
 from .sweep import TrainingData
 from .train import EpochInfo, History, TrainingResult, train
 from .uncertainty import uncertainty_report
@@ -69,6 +70,7 @@ __all__ = [
     "Split",
     "FitOutcome",
     "split_rows",
+    "check_data",
     "build_network",
     "fit",
     "evaluate",
@@ -257,7 +259,18 @@ OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default le
     "sgd": (SGD, 1e-2),
 }
 METHODS = ("mini-batch", "levenberg-marquardt", "lbfgs")
+LEAST_SQUARES_METHODS = tuple(method for method in METHODS if method != "mini-batch")
 SCHEDULES = ("cosine", "constant")
+
+# Which settings apply to which choices: (setting, the setting it depends on, the values of that setting it
+# applies to). A FitSettings field not named here applies always. The report and the model's metadata record
+# only the settings that apply (FitSettings.to_dict); the command line refuses an option that does not apply.
+APPLIES_ONLY_TO: tuple[tuple[str, str, tuple[str, ...]], ...] = (
+    *((name, "method", ("mini-batch",)) for name in (
+        "optimizer", "learning_rate", "schedule", "momentum", "clip_norm", "epochs", "batch_size", "patience")),
+    ("max_evaluations", "method", LEAST_SQUARES_METHODS),
+    ("momentum", "optimizer", ("sgd",)),
+)
 
 
 @dataclass(frozen=True)
@@ -271,6 +284,7 @@ class FitSettings:
     learning_rate: float | None = None  # None: the optimizer's default in OPTIMIZERS
     schedule: str = "cosine"
     momentum: float = 0.0
+    clip_norm: float | None = None  # None: no gradient-norm clipping
     epochs: int = 200
     batch_size: int = 32
     patience: int | None = None
@@ -284,10 +298,17 @@ class FitSettings:
     def lr(self) -> float:
         return OPTIMIZERS[self.optimizer][1] if self.learning_rate is None else self.learning_rate
 
+    def applies(self, name: str) -> bool:
+        """Whether setting ``name`` takes part in the fit with these settings (the table ``APPLIES_ONLY_TO``)."""
+        return all(getattr(self, depends_on) in values
+                   for setting, depends_on, values in APPLIES_ONLY_TO if setting == name)
+
     def to_dict(self) -> dict[str, Any]:
-        settings = asdict(self)
+        """The settings that apply to the chosen method (with the learning rate actually used), and the loss."""
+        settings = {name: value for name, value in asdict(self).items() if self.applies(name)}
         settings["hidden"] = list(self.hidden)
-        settings["learning_rate"] = self.lr
+        if "learning_rate" in settings:
+            settings["learning_rate"] = self.lr
         settings["loss"] = "MeanSquaredError"
         return settings
 
@@ -295,6 +316,7 @@ class FitSettings:
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
         text = f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, {self.epochs} epochs"
+        text += f", gradient norm clipped at {self.clip_norm:g}" if self.clip_norm is not None else ""
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
 
@@ -343,6 +365,44 @@ def split_rows(n: int, settings: FitSettings) -> Split:
     return Split(order[n_test + n_val:], order[n_test:n_test + n_val], order[:n_test])
 
 
+def check_data(data: Dataset, split: Split, settings: FitSettings, n_params: int) -> list[str]:
+    """Refuse data that cannot be fitted or evaluated; return warnings (sentences) for data that are merely weak.
+
+    Raises ``ValueError`` when fewer than 2 rows are left for training, or when
+    a target column takes one value on every training row (there is nothing
+    to fit, and ``R^2`` is undefined). Warns when the training rows give fewer
+    target values than the network has parameters (``n_params``: it can
+    then fit them exactly, and the training error says little), and when the
+    validation or the test part is empty although its fraction is above 0.
+    """
+    n, n_train = data.X.shape[0], split.training.size
+    if n_train < 2:
+        raise ValueError(
+            f"{count(n_train, 'row')} left for training (of {count(n, 'data row')}); "
+            "fitting needs at least 2 training rows"
+        )
+    Y_train = data.Y[split.training]
+    for k, name in enumerate(data.target_names):
+        if np.all(Y_train[:, k] == Y_train[0, k]):
+            raise ValueError(
+                f"target column {name!r} is {Y_train[0, k]:g} on all {n_train} training rows; "
+                "a constant cannot be fitted or evaluated"
+            )
+    warnings = []
+    values = Y_train.size
+    if values < n_params:
+        warnings.append(
+            f"{count(n_train, 'training row')} give {count(values, 'target value')} for {n_params} parameters: "
+            "the network can fit them exactly, so its training error says little; use fewer hidden units or more rows"
+        )
+    for part, fraction in (("validation", settings.validation_fraction), ("test", settings.test_fraction)):
+        if getattr(split, part).size == 0 and fraction > 0:
+            warnings.append(f"the {part} part is empty ({part}_fraction {fraction:g} of {count(n, 'row')} rounds "
+                            "to 0 rows): " + ("no validation loss is tracked" if part == "validation"
+                                              else "there is no error measured on unseen rows"))
+    return warnings
+
+
 def build_network(data: Dataset, split: Split, settings: FitSettings) -> Network:
     """Step 2 of the recipe."""
     X_train, Y_train = data.X[split.training], data.Y[split.training]
@@ -387,9 +447,13 @@ def fit(
         return FitOutcome(summary, result.history, time.perf_counter() - started)
     solved = solve(net, X_train, Y_train, method=settings.method, max_evaluations=settings.max_evaluations,
                    progress=progress)
+    stop_reason, sentence = solver_stop(solved)
     summary = {
         "success": solved.success,
-        "message": solved.message,
+        "stop_reason": stop_reason,
+        "message": sentence,
+        "scipy_status": solved.status,
+        "scipy_message": solved.message,
         "rss": solved.rss,
         "gradient_norm": solved.gradient_norm,
         "iterations": solved.iterations,
@@ -399,14 +463,53 @@ def fit(
     return FitOutcome(summary, None, time.perf_counter() - started)
 
 
+def solver_stop(result: SolveResult) -> tuple[str, str]:
+    """Why :func:`~tinyprop.solve.solve` stopped: ``(stop_reason, sentence)``, in words of our own.
+
+    ``stop_reason`` is ``"converged"``, ``"evaluation limit"`` or ``"no progress"``.
+    They come from scipy's status: Levenberg-Marquardt (``least_squares``,
+    ``method="lm"``) 0 evaluation limit, 1 gradient test (``gtol``), 2 relative
+    reduction of the residual sum of squares (``ftol``), 3 relative step
+    (``xtol``), 4 both 2 and 3; L-BFGS-B (``minimize``) 0 converged (the
+    projected gradient, or the relative reduction, told apart by scipy's
+    message), 1 evaluation or iteration limit, 2 the line search found no
+    lower loss. Any other status keeps scipy's message in the sentence.
+    """
+    limit = ("evaluation limit", "stopped at the evaluation limit before converging")
+    if result.method == "levenberg-marquardt":
+        reasons = {
+            0: limit,
+            1: ("converged", "converged on the gradient: the residuals are orthogonal to the Jacobian's columns "
+                             "to within the tolerance"),
+            2: ("converged", "converged on the relative reduction: the residual sum of squares no longer falls "
+                             "by more than the tolerance"),
+            3: ("converged", "converged on the step size: the steps no longer change the weights by more than "
+                             "the tolerance"),
+            4: ("converged", "converged on the relative reduction and the step size"),
+        }
+    else:
+        gradient = "REDUCTION" not in result.message.upper()
+        reasons = {
+            0: ("converged", "converged on the gradient: its largest component is below the tolerance" if gradient
+                else "converged on the relative reduction: the loss no longer falls by more than the tolerance"),
+            1: limit,
+            2: ("no progress", "stopped: the line search found no lower loss (float64 precision reached near a "
+                               "minimum, or a badly scaled problem)"),
+        }
+    reason, sentence = reasons.get(result.status, ("no progress", f"ended with solver status {result.status} "
+                                                                  f"({result.message})"))
+    evaluations = f"{count(result.function_evaluations, 'evaluation')}, {count(result.iterations, 'iteration')}"
+    return reason, f"{sentence}; {evaluations}"
+
+
 def _optimizer(settings: FitSettings, n_train: int) -> Optimizer:
     schedule = None
     if settings.schedule == "cosine":
         schedule = CosineSchedule(settings.epochs * math.ceil(n_train / settings.batch_size))
     if settings.optimizer == "sgd":
-        return SGD(settings.lr, momentum=settings.momentum, schedule=schedule)
+        return SGD(settings.lr, momentum=settings.momentum, schedule=schedule, clip_norm=settings.clip_norm)
     optimizer_class, _ = OPTIMIZERS[settings.optimizer]
-    return optimizer_class(settings.lr, schedule=schedule)
+    return optimizer_class(settings.lr, schedule=schedule, clip_norm=settings.clip_norm)
 
 
 def evaluate(net: Network, data: Dataset, rows: np.ndarray) -> dict[str, Any] | None:

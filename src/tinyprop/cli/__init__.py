@@ -23,7 +23,7 @@ from typing import NoReturn, Sequence
 
 from .. import __version__
 from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
-from ._common import USAGE, CommandError, describe_os_error
+from ._common import USAGE, CommandError, describe_os_error, option_words
 
 __all__ = ["main"]
 
@@ -85,7 +85,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return COMMANDS[args.command].run(args)
     except CommandError as exc:
-        print(f"{prefix} {exc}", file=sys.stderr)
+        print(f"{prefix} {option_words(str(exc))}", file=sys.stderr)
         return exc.status
     except OSError as exc:  # a file that could not be read or written, reported without a traceback
         print(f"{prefix} {describe_os_error(exc)}", file=sys.stderr)

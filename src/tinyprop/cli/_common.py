@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import sys
 import time
 from pathlib import Path
@@ -36,6 +37,29 @@ class CommandError(Exception):
     def __init__(self, message: str, status: int = FAILURE) -> None:
         super().__init__(message)
         self.status = status
+
+
+# Phrases of library messages that name a Python argument, and the command-line words for them. Every error
+# and warning line a command prints passes through option_words (in cli.main and warn): this is the one place.
+# tests/test_cli_first_use.py checks that each phrase still occurs in the library's source.
+OPTION_WORDS: tuple[tuple[str, str], ...] = (
+    (r"use method='([a-z-]+)'", r"use --method \1"),
+    (r"\(lr=([^)]*)\) or set clip_norm on the optimizer", r"(--learning-rate \1) or set --clip-norm"),
+    (r"\b(test|validation)_fraction\b", r"--\1-fraction"),
+    (r"use fewer hidden units", "use a smaller --hidden"),
+)
+
+
+def option_words(message: str) -> str:
+    """``message`` with the Python arguments it names replaced by command-line options (``OPTION_WORDS``)."""
+    for pattern, replacement in OPTION_WORDS:
+        message = re.sub(pattern, replacement, message)
+    return message
+
+
+def warn(command: str, message: str) -> None:
+    """One warning line on stderr: ``tinyprop <command>: warning: <message>`` (in option words)."""
+    print(f"tinyprop {command}: warning: {option_words(message)}", file=sys.stderr)
 
 
 def describe_os_error(exc: OSError) -> str:

@@ -21,12 +21,11 @@ from ._common import SAFETY, USAGE, CommandError, EpochProgress, finite_or_none
 
 
 def split_for_command(n: int, settings: FitSettings) -> Split:
-    """:func:`tinyprop.recipes.split_rows`, its refusal as a usage error naming the options."""
+    """:func:`tinyprop.recipes.split_rows`, its refusal as a usage error (in option words, by ``cli.main``)."""
     try:
         return split_rows(n, settings)
     except ValueError as exc:
-        raise CommandError(str(exc).replace("test_fraction / validation_fraction",
-                                            "--test-fraction / --validation-fraction"), USAGE) from None
+        raise CommandError(str(exc), USAGE) from None
 
 
 def fit_with_progress(

@@ -23,32 +23,27 @@ from ._common import (
     output_folder,
     read_table,
     require_columns,
+    warn,
     write_json,
     write_plots,
 )
+from .._words import count
 from ..recipes import (
     ACTIVATIONS,
+    APPLIES_ONLY_TO,
     METHODS,
     OPTIMIZERS,
     SCHEDULES,
     Dataset,
     FitSettings,
     build_network,
+    check_data,
     evaluate_all,
     least_squares_uncertainty,
 )
 from ._fit import architecture, fit_with_progress, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
-
-# (option, the option it depends on, the values of that option it applies to), checked in this order
-_APPLIES_ONLY_TO = (
-    *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
-    ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
-    ("momentum", "optimizer", ("sgd",)),
-)
-
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     defaults = FitSettings()
@@ -83,6 +78,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
                               f"(default {defaults.schedule})")
     fitting.add_argument("--momentum", type=_args.momentum, help=f"momentum of sgd (default {defaults.momentum:g})")
+    fitting.add_argument("--clip-norm", type=_args.positive_float, metavar="C",
+                         help="scale each update's gradient down to global norm C when it is larger "
+                              "(default: no clipping)")
     fitting.add_argument("--epochs", type=_args.positive_int,
                          help=f"passes over the training rows (default {defaults.epochs})")
     fitting.add_argument("--batch-size", type=_args.positive_int, metavar="N",
@@ -112,20 +110,26 @@ def run(args: argparse.Namespace) -> int:
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
     net = build_network(data, split, settings)
-    print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
+    try:
+        weaknesses = check_data(data, split, settings, net.n_params)
+    except ValueError as exc:  # too few rows, a constant target
+        raise CommandError(f"{args.data}: {exc}") from None
+    print(f"data: {args.data}: {count(data.X.shape[0], 'row')}; inputs {', '.join(data.input_names)}; "
           f"targets {', '.join(data.target_names)}")
     sizes = split.sizes()
     print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
           f"{sizes['test']} test rows")
     print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
+    for weakness in weaknesses:
+        warn("train", f"{args.data}: {weakness}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
         outcome = fit_with_progress(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")
-    if outcome.summary.get("success") is False:
-        print("     the solver did not report convergence: raise --max-evaluations, or check the data and network size")
+    if outcome.summary["stop_reason"] == "evaluation limit":
+        print("     raise --max-evaluations, or check the data and the network size")
     started = time.perf_counter()
     metrics = evaluate_all(net, data, split)
     extra: dict[str, Any] = {}
@@ -163,7 +167,7 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     """The fit settings: options not given (``None``) take the defaults of :class:`FitSettings`.
 
     An option given with a ``--method`` (or ``--optimizer``) it does not apply
-    to is refused (``_APPLIES_ONLY_TO``), never silently ignored.
+    to is refused (:data:`tinyprop.recipes.APPLIES_ONLY_TO`), never silently ignored.
     """
     if args.validation_fraction + args.test_fraction >= 1.0:
         raise CommandError(
@@ -176,7 +180,7 @@ def _settings(args: argparse.Namespace) -> FitSettings:
         given = getattr(args, option)
         return getattr(defaults, option) if given is None else given
 
-    for option, depends_on, values in _APPLIES_ONLY_TO:
+    for option, depends_on, values in APPLIES_ONLY_TO:
         if getattr(args, option) is not None and value(depends_on) not in values:
             raise CommandError(f"{_flag(option)} applies to {_flag(depends_on)} {' or '.join(values)}, "
                                f"not {value(depends_on)}", USAGE)
@@ -185,14 +189,14 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     return FitSettings(
         hidden=args.hidden, activation=args.activation, method=args.method, seed=args.seed,
         validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
-        **{option: value(option) for option, _, _ in _APPLIES_ONLY_TO},
+        **{option: value(option) for option, _, _ in APPLIES_ONLY_TO},
     )
 
 
 def _applicability() -> str:
-    """``_APPLIES_ONLY_TO`` in words, for ``--help``."""
+    """:data:`tinyprop.recipes.APPLIES_ONLY_TO` in words, for ``--help``."""
     groups: dict[tuple[str, tuple[str, ...]], list[str]] = {}
-    for option, depends_on, values in _APPLIES_ONLY_TO:
+    for option, depends_on, values in APPLIES_ONLY_TO:
         groups.setdefault((depends_on, values), []).append(_flag(option))
     text = "; ".join(f"{', '.join(flags)} only with {_flag(depends_on)} {' or '.join(values)}"
                      for (depends_on, values), flags in groups.items())
@@ -259,4 +263,4 @@ def _print_metrics(metrics: dict[str, Any]) -> None:
         if result is None:
             continue
         values = ", ".join(f"{name} {m['rmse']:.4g}" for name, m in result["targets"].items())
-        print(f"{part} RMSE ({result['rows']} rows): {values}")
+        print(f"{part} RMSE ({count(result['rows'], 'row')}): {values}")

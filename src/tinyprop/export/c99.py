@@ -39,6 +39,7 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
+from .._words import count
 from ..network import Network
 from ._activations import activation_kind, c_body, c_input_limit, function_names
 from ._header import Provenance, header_lines, provenance
@@ -178,7 +179,7 @@ class _Writer:
         return [
             f"Interface (declared in {self.name}.h):",
             f"  {self.signature};",
-            f"  x holds {self.macro}_N_INPUTS = {self.plan.n_in} values, y receives "
+            f"  x holds {self.macro}_N_INPUTS = {count(self.plan.n_in, 'value')}, y receives "
             f"{self.macro}_N_OUTPUTS = {self.plan.n_out}; x and y may be the same array.",
             f"Arithmetic: {self.ctype} (IEEE 754 binary{size * 8}) throughout. No dynamic allocation,",
             "no mutable global state (reentrant); the only dependency is <math.h>.",

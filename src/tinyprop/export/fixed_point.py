@@ -46,6 +46,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from .._words import count
 from .._validate import as_samples
 from ..network import Network
 from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
@@ -140,8 +141,8 @@ class FixedPointReport:
         return {"input": clamped, **{step.label: count for step, count in zip(self.program.steps, counts)}}
 
     def __str__(self) -> str:
-        rows = [f"Fixed-point export {self.header.name} / {self.source.name}: {len(self.input_bits)} inputs, "
-                f"{len(self.output_bits)} outputs, {self.n_calibration} calibration rows, "
+        rows = [f"Fixed-point export {self.header.name} / {self.source.name}: {count(len(self.input_bits), 'input')}, "
+                f"{count(len(self.output_bits), 'output')}, {count(self.n_calibration, 'calibration row')}, "
                 f"headroom {self.headroom:g}",
                 f"  inputs: {describe_formats(self.input_bits)}; saturated on calibration rows: "
                 f"{self.input_saturations}",
@@ -231,8 +232,8 @@ def export_c_fixed_point(
     reference = (net if net.dtype == np.float64 else net.copy(dtype=np.float64)).predict(X)
     error = program.to_values(y_q) - reference
     steps = tuple(_step_format(step, count) for step, count in zip(program.steps, counts))
-    warnings = ([f"input conversion saturated {input_saturations} values"] if input_saturations else [])
-    warnings += [f"layer {s.layer} ({s.description}) saturated {s.saturations} values"
+    warnings = ([f"input conversion saturated {count(input_saturations, 'value')}"] if input_saturations else [])
+    warnings += [f"layer {s.layer} ({s.description}) saturated {count(s.saturations, 'value')}"
                  for s in steps if s.saturations]
     tables = tuple(dict.fromkeys(step.table.describe() for step in program.steps if isinstance(step, QTable)))
     report_numbers = dict(
