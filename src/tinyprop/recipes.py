@@ -43,7 +43,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import asdict, dataclass, fields, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
@@ -322,13 +322,29 @@ class FitSettings:
 
 @dataclass(frozen=True)
 class Dataset:
-    """Inputs ``X`` ``(n, n_in)`` and targets ``Y`` ``(n, n_out)`` with their column names and origin."""
+    """Inputs ``X`` ``(n, n_in)`` and targets ``Y`` ``(n, n_out)`` with their column names, origin and units.
+
+    ``units`` maps a column name to its unit (free text such as ``"m"`` or
+    ``"m3/h"``); a column without a unit is left out.
+    """
 
     X: np.ndarray
     Y: np.ndarray
     input_names: tuple[str, ...]
     target_names: tuple[str, ...]
     source: dict[str, Any]  # for the report: where the data came from
+    units: Mapping[str, str] = field(default_factory=dict)
+
+    def label(self, name: str) -> str:
+        """``"head [m]"`` for a column with a unit, else the bare name."""
+        return f"{name} [{self.units[name]}]" if self.units.get(name) else name
+
+    def ports(self) -> dict[str, list[dict[str, str]]]:
+        """Names and units of inputs and outputs, in the form the model file's metadata and the exporters take."""
+        def entries(names: tuple[str, ...]) -> list[dict[str, str]]:
+            return [{"name": name, **({"unit": self.units[name]} if self.units.get(name) else {})} for name in names]
+
+        return {"inputs": entries(self.input_names), "outputs": entries(self.target_names)}
 
 
 @dataclass(frozen=True)

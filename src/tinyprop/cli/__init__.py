@@ -1,7 +1,7 @@
 """The ``tinyprop`` command (also ``python -m tinyprop``).
 
 Subcommands, one module each: ``demo``, ``train``, ``check``, ``inspect``,
-``export``, ``bench``. Every module has ``add_arguments(parser)`` and
+``export``, ``bench``, ``docs``. Every module has ``add_arguments(parser)`` and
 ``run(args) -> int``; :func:`main` parses, dispatches and turns user mistakes
 and failures into one line on stderr:
 
@@ -22,7 +22,7 @@ import sys
 from typing import NoReturn, Sequence
 
 from .. import __version__
-from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
+from . import bench_cmd, check_cmd, demo_cmd, docs_cmd, export_cmd, inspect_cmd, train_cmd
 from ._common import USAGE, CommandError, describe_os_error, option_words
 
 __all__ = ["main"]
@@ -34,6 +34,7 @@ COMMANDS = {
     "inspect": inspect_cmd,
     "export": export_cmd,
     "bench": bench_cmd,
+    "docs": docs_cmd,
 }
 
 SHORT_HELP = f"""tinyprop {__version__}: verified multilayer perceptrons for controllers, instruments and test rigs
@@ -43,7 +44,8 @@ Start here:   tinyprop demo        (the whole job on synthetic data in a few sec
 Commands:
 """ + "\n".join(f"  {name:<9}{module.HELP}" for name, module in COMMANDS.items()) + """
 
-'tinyprop <command> --help' shows a command's options. Documentation: docs/cli.md in the tinyprop source.
+'tinyprop <command> --help' shows a command's options; 'tinyprop docs' lists the guides shipped with
+tinyprop and 'tinyprop docs cli' prints the full guide to the command line.
 """
 
 

@@ -8,6 +8,7 @@ import os
 import re
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 from typing import Any, Callable, TextIO
 
@@ -99,7 +100,48 @@ def _unregistered_activations(path: str) -> list[str]:
 
 
 def read_table(path: str, delimiter: str) -> CsvTable:
-    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`), turning every problem into a one-line :class:`CommandError`."""
+    """:func:`read_table_and_units` without the units: columns named without their ``[unit]``."""
+    return read_table_and_units(path, delimiter)[0]
+
+
+def read_table_and_units(path: str, delimiter: str) -> tuple[CsvTable, dict[str, str]]:
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`) and split the units off its header (:func:`split_units`).
+
+    Every problem becomes a one-line :class:`CommandError`.
+    """
+    try:
+        return split_units(_read_csv(path, delimiter))
+    except CsvError as exc:
+        raise CommandError(str(exc)) from None
+
+
+_UNIT = re.compile(r"(?P<name>.*?\S)\s*\[(?P<unit>[^\[\]]*)\]")
+
+
+def split_units(table: CsvTable) -> tuple[CsvTable, dict[str, str]]:
+    """A header cell ``name [unit]`` names the column ``name`` and gives its unit ``unit``.
+
+    Returns the table with the bare names and a dict of the units (columns
+    without a ``[...]`` at the end of their header cell have none). Two
+    cells that give one name are refused (:class:`CsvError`).
+
+    >>> table, units = split_units(CsvTable("p.csv", ("speed [rpm]", "head [m]", "note"), (), ()))
+    >>> table.columns, units
+    (('speed', 'head', 'note'), {'speed': 'rpm', 'head': 'm'})
+    """
+    names, units = [], {}
+    for cell in table.columns:
+        match = _UNIT.fullmatch(cell)
+        name = match["name"] if match else cell
+        if name in names:
+            raise CsvError(f"{table.path}: the header names the column {name!r} twice (with its unit or without)")
+        names.append(name)
+        if match and match["unit"].strip():
+            units[name] = match["unit"].strip()
+    return replace(table, columns=tuple(names)), units
+
+
+def _read_csv(path: str, delimiter: str) -> CsvTable:
     try:
         return read_csv(path, delimiter=delimiter)
     except OSError as exc:

@@ -53,11 +53,10 @@ def architecture(net: Network) -> str:
 
 
 def model_metadata(data: Dataset, settings: FitSettings, description: str) -> dict[str, Any]:
-    """What the model file keeps: names of inputs and outputs (used by ``export``), a description, the recipe."""
+    """What the model file keeps: names and units of inputs and outputs (used by ``export``), a description, the recipe."""
     return {
         "description": description,
-        "inputs": [{"name": name} for name in data.input_names],
-        "outputs": [{"name": name} for name in data.target_names],
+        **data.ports(),
         "training": {"settings": settings.to_dict(), "data": data.source},
     }
 
@@ -81,7 +80,7 @@ def report(
         "command": command,
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "data": {**data.source, "rows": int(data.X.shape[0]), "inputs": list(data.input_names),
-                 "targets": list(data.target_names), "split": split.sizes()},
+                 "targets": list(data.target_names), "units": dict(data.units), "split": split.sizes()},
         "settings": settings.to_dict(),
         "network": {"fingerprint": fingerprint(net), "n_params": net.n_params, "dtype": net.dtype.name,
                     "architecture": architecture(net)},

@@ -21,7 +21,7 @@ from ._common import (
     describe_os_error,
     numeric_columns,
     output_folder,
-    read_table,
+    read_table_and_units,
     require_columns,
     warn,
     write_json,
@@ -114,8 +114,8 @@ def run(args: argparse.Namespace) -> int:
         weaknesses = check_data(data, split, settings, net.n_params)
     except ValueError as exc:  # too few rows, a constant target
         raise CommandError(f"{args.data}: {exc}") from None
-    print(f"data: {args.data}: {count(data.X.shape[0], 'row')}; inputs {', '.join(data.input_names)}; "
-          f"targets {', '.join(data.target_names)}")
+    print(f"data: {args.data}: {count(data.X.shape[0], 'row')}; inputs {', '.join(map(data.label, data.input_names))}; "
+          f"targets {', '.join(map(data.label, data.target_names))}")
     sizes = split.sizes()
     print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
           f"{sizes['test']} test rows")
@@ -136,7 +136,7 @@ def run(args: argparse.Namespace) -> int:
     if settings.method != "mini-batch":
         extra["uncertainty"] = least_squares_uncertainty(net, data, split)
     evaluate_seconds = time.perf_counter() - started
-    _print_metrics(metrics)
+    _print_metrics(metrics, data)
     if "uncertainty" in extra:
         print(_uncertainty_line(extra["uncertainty"]))
 
@@ -155,7 +155,7 @@ def run(args: argparse.Namespace) -> int:
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
         written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
-                                    list(data.target_names), Path(args.data).name, label)
+                                    [data.label(name) for name in data.target_names], Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
         if note:
@@ -209,12 +209,13 @@ def _flag(option: str) -> str:
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
-    table = read_table(args.data, args.delimiter)
+    table, units = read_table_and_units(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
     X, Y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+    used = {name: unit for name, unit in units.items() if name in inputs or name in targets}
+    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest}, used)
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
@@ -257,10 +258,11 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
             f"rows {widths} (per-parameter standard errors and input sensitivities in the report)")
 
 
-def _print_metrics(metrics: dict[str, Any]) -> None:
+def _print_metrics(metrics: dict[str, Any], data: Dataset) -> None:
     for part in ("training", "validation", "test"):
         result = metrics[part]
         if result is None:
             continue
-        values = ", ".join(f"{name} {m['rmse']:.4g}" for name, m in result["targets"].items())
+        values = ", ".join(f"{name} {m['rmse']:.4g}" + (f" {data.units[name]}" if name in data.units else "")
+                           for name, m in result["targets"].items())
         print(f"{part} RMSE ({count(result['rows'], 'row')}): {values}")

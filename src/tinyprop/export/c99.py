@@ -64,14 +64,15 @@ def export_c(
     metadata: Mapping[str, Any] | None = None,
     literals: str = "decimal",
 ) -> tuple[Path, Path]:
-    """Write ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
+    """Write ``<name>.h`` and ``<name>.c`` into the directory ``path`` (created if missing).
 
     Parameters
     ----------
     net:
         The network to export. It is not modified.
     path:
-        An existing directory; files of the same names are overwritten.
+        A directory, created with its parents if missing; files of the same names
+        are overwritten.
     name:
         Prefix of every generated identifier (``<name>_predict``,
         ``<NAME>_N_INPUTS``, ...): ``[A-Za-z][A-Za-z0-9_]{0,63}``, not a C

@@ -60,7 +60,7 @@ def export_ensemble_python(
     if name in sys.stdlib_module_names:
         raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
     package = output_directory(path) / name
-    package.mkdir(exist_ok=True)
+    package.mkdir(parents=True, exist_ok=True)
     for index, net in enumerate(members):
         export_python(net, package, name=f"member{index}", metadata=metadata)
     m, n_in, n_out = len(members), members[0].n_in, members[0].n_out
@@ -109,7 +109,7 @@ def export_ensemble_c(
     literals: str = "decimal",
     ensemble_fingerprint: str,
 ) -> tuple[Path, ...]:
-    """Write C99 code for the mean into the existing directory ``path``; return the files written.
+    """Write C99 code for the mean into the directory ``path`` (created if missing); return the files written.
 
     Member ``k`` becomes ``<name>_member<k>.h/.c`` through
     :func:`~tinyprop.export.export_c` (with ``dtype``, ``metadata`` and
