@@ -77,7 +77,7 @@ RUNS = {
                                    "--out", "x.npz"], 2),
     "mini-batch": (TRAIN + ["small.csv", "--targets", "y", "--hidden", "2", "--epochs", "2", "--out", "mb.npz"], 0),
     "lm-log": (["train", "small.csv", "--targets", "y", "--hidden", "4", "--method", "lbfgs",
-                "--max-evaluations", "300", "--out", "log.npz"], 0),
+                "--max-evaluations", "100", "--out", "log.npz"], 0),
     "pump": (TRAIN + ["pump.csv", "--targets", "head,power", "--inputs", "speed,flow", "--hidden", "3",
                       "--epochs", "3", "--out", "pump.npz"], 0),
     "twice": (TRAIN + ["twice.csv", "--targets", "y"], 1),
@@ -185,6 +185,7 @@ def test_every_translated_phrase_occurs_in_the_library():
     for pattern, _ in OPTION_WORDS:
         assert re.search(pattern, source), pattern
     assert option_words("x; use method='lbfgs'") == "x; use --method lbfgs"
+    assert option_words("(see docs/export.md, 'Custom activations')") == "(see 'tinyprop docs export', 'Custom activations')"
 
 
 # ---------------------------------------------------------------- 6: why the solver stopped, in our words
@@ -265,7 +266,7 @@ def test_the_parity_plot_is_labelled_with_units(runs, folder, tmp_path):
 def test_least_squares_progress_in_a_log_has_the_epoch_lines_cadence(runs):
     progress = [line for line in lines(runs["lm-log"].stderr) if line.startswith("lbfgs: ")]
     assert 2 <= len(progress) <= 12, progress
-    assert progress[0].startswith("lbfgs: 1 of at most 300 evaluations, 1 gradient, lowest rss ")
+    assert progress[0].startswith("lbfgs: 1 of at most 100 evaluations, 1 gradient, lowest rss ")
     assert not any("\r" in line or "\033" in line for line in progress)
 
 

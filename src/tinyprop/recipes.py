@@ -24,7 +24,7 @@ For data ``X`` (``n`` rows of inputs) and ``Y`` (targets), with seed ``s``:
 3. **Fit** on the training rows, in the data's units:
 
    - ``mini-batch``: ``train(net, X_train, Y_train, loss=MeanSquaredError(),
-     optimizer=<optimizer>(lr, schedule=...), epochs, batch_size,
+     optimizer=<optimizer>(lr, schedule=..., clip_norm=...), epochs, batch_size,
      validation=(X_val, Y_val) or None, patience, seed=s)``, where the schedule is
      ``None`` (``constant``) or ``CosineSchedule(epochs * ceil(n_train / batch_size))``
      (``cosine``: the learning rate falls along half a cosine to 0 at the last epoch);
@@ -35,7 +35,10 @@ For data ``X`` (``n`` rows of inputs) and ``Y`` (targets), with seed ``s``:
    absolute error, largest absolute error and ``R^2 = 1 - SS_res / SS_tot``.
 
 This is what ``docs/cli.md`` documents and what ``tests/test_cli.py`` reproduces
-with the library calls above.
+with the library calls above. Around the steps: :func:`check_data` refuses data
+that cannot be fitted and names weak data, :data:`APPLIES_ONLY_TO` says which
+settings apply to which method (the report records only those), and
+:func:`solver_stop` says in our words why a least-squares fit ended.
 """
 
 from __future__ import annotations
@@ -361,7 +364,11 @@ class Split:
 
 @dataclass(frozen=True)
 class FitOutcome:
-    """The fit's facts for the report; ``history`` is ``None`` for the least-squares methods."""
+    """The fit's facts for the report; ``history`` is ``None`` for the least-squares methods.
+
+    ``summary`` always has ``stop_reason`` and ``message`` (a sentence of our own);
+    for the least-squares methods also scipy's ``scipy_status`` and ``scipy_message``.
+    """
 
     summary: dict[str, Any]
     history: History | None
