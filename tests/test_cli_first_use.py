@@ -146,6 +146,9 @@ def test_check_data_in_the_library():
     assert len(check_data(data, split_rows(40, settings), settings, n_params=29)) == 1  # 28 training values
     empty = FitSettings(validation_fraction=0.0, test_fraction=0.0)
     assert check_data(data, split_rows(40, empty), empty, n_params=20) == []  # parts emptied on purpose
+    flat_input = replace(data, X=np.column_stack([X, np.zeros_like(X)]), input_names=("x", "off"))
+    assert check_data(flat_input, split_rows(40, settings), settings, n_params=20) == [
+        "input column 'off' is 0 on all 28 training rows: it cannot inform the fit"]
     constant = replace(data, Y=np.full_like(X, 2.5))
     with pytest.raises(ValueError, match="target column 'y' is 2.5 on all 28 training rows"):
         check_data(constant, split_rows(40, settings), settings, n_params=20)

@@ -393,7 +393,8 @@ def check_data(data: Dataset, split: Split, settings: FitSettings, n_params: int
 
     Raises ``ValueError`` when fewer than 2 rows are left for training, or when
     a target column takes one value on every training row (there is nothing
-    to fit, and ``R^2`` is undefined). Warns when the training rows give fewer
+    to fit, and ``R^2`` is undefined). Warns when an input column is constant
+    on the training rows, when the training rows give fewer
     target values than the network has parameters (``n_params``: it can
     then fit them exactly, and the training error says little), and when the
     validation or the test part is empty although its fraction is above 0.
@@ -412,6 +413,11 @@ def check_data(data: Dataset, split: Split, settings: FitSettings, n_params: int
                 "a constant cannot be fitted or evaluated"
             )
     warnings = []
+    X_train = data.X[split.training]
+    for j, name in enumerate(data.input_names):
+        if np.all(X_train[:, j] == X_train[0, j]):
+            warnings.append(f"input column {name!r} is {X_train[0, j]:g} on all {n_train} training rows: "
+                            "it cannot inform the fit")
     values = Y_train.size
     if values < n_params:
         warnings.append(
