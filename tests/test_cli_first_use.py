@@ -9,12 +9,14 @@ numbers.
 
 from __future__ import annotations
 
+import importlib
 import json
 import re
 import subprocess
 import sys
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -26,7 +28,10 @@ from tinyprop.cli._common import OPTION_WORDS, option_words
 from tinyprop.export import export_c, export_c_fixed_point, export_python
 from tinyprop.modelfile import load_model_file
 from tinyprop.recipes import Dataset, FitSettings, check_data, solver_stop, split_rows
+from tinyprop._progress import ProgressLine
 from tinyprop.solve import solve
+
+solve_module = importlib.import_module("tinyprop.solve")  # the module; tinyprop.solve is the function
 
 ROOT = Path(__file__).resolve().parents[1]
 SCRIPT = Path(sys.executable).with_name("tinyprop")
@@ -276,7 +281,7 @@ def test_least_squares_progress_in_a_log_has_the_epoch_lines_cadence(runs):
 def test_least_squares_progress_in_a_log_does_not_follow_the_clock(monkeypatch, capsys):
     """A slow fit (here: a clock that moves 1 s per reading) still logs once per tenth of the evaluation limit."""
     ticks = iter(range(10**6))
-    monkeypatch.setattr("time.perf_counter", lambda: float(next(ticks)))
+    monkeypatch.setattr(solve_module, "ProgressLine", partial(ProgressLine, clock=lambda: float(next(ticks))))
     x = np.linspace(-1, 1, 20).reshape(-1, 1)
     net = tp.Network([tp.Affine(1, 4), tp.Tanh(), tp.Affine(4, 1)], seed=0)
     result = solve(net, x, np.sin(3 * x[:, 0]), method="lbfgs", max_evaluations=200, progress=True)

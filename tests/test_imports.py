@@ -25,6 +25,7 @@ def test_import_tinyprop_does_not_import_scipy_or_matplotlib():
 # are for type checkers and not counted). A package comes after its modules.
 LAYERS = (
     "tinyprop._version",
+    "tinyprop._json",
     "tinyprop._validate",
     "tinyprop._words",
     "tinyprop._progress",
@@ -47,7 +48,9 @@ LAYERS = (
     "tinyprop.check",
     "tinyprop.sensitivity",
     "tinyprop.uncertainty",
-    "tinyprop.export._text",
+    "tinyprop.export._identifiers",
+    "tinyprop.export._metadata",
+    "tinyprop.export._source",
     "tinyprop.export._plan",
     "tinyprop.export._activations",
     "tinyprop.export._header",

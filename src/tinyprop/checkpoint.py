@@ -167,7 +167,7 @@ def save_checkpoint(state: TrainingState, path: str | os.PathLike[str]) -> None:
     if not isinstance(state, TrainingState):
         raise TypeError(f"state must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
     scalars, arrays = state.to_parts()
-    if any(v is not None and not _finite(v) for v in _all_losses(scalars)):
+    if any(v is not None and not math.isfinite(v) for v in _all_losses(scalars)):
         raise CheckpointError(f"{os.fspath(path)}: the state holds a non-finite loss; a diverged run cannot be resumed")
     write_archive(path, arrays, {"kind": _KIND, **scalars})
 
@@ -191,6 +191,3 @@ def load_checkpoint(path: str | os.PathLike[str]) -> TrainingState:
 def _all_losses(scalars: dict[str, Any]) -> list[Any]:
     return [*scalars["training_loss"], *(scalars["validation_loss"] or []), scalars["best_loss"]]
 
-
-def _finite(value: Any) -> bool:
-    return isinstance(value, (int, float)) and value == value and abs(value) != float("inf")

@@ -16,8 +16,7 @@ from typing import Any
 
 import numpy as np
 
-from ..export import export_c, export_c_fixed_point, export_python
-from ..export._text import check_name
+from ..export import check_name, export_c, export_c_fixed_point, export_python
 from ..modelfile import ModelFile
 from . import _args
 from ._common import (
