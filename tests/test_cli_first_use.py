@@ -193,6 +193,7 @@ def test_every_translated_phrase_occurs_in_the_library():
     for pattern, _ in OPTION_WORDS:
         assert re.search(pattern, source), pattern
     assert option_words("x; use method='lbfgs'") == "x; use --method lbfgs"
+    assert option_words("not finite; choose other starting weights") == "not finite; try another --seed"
     assert option_words("(see docs/export.md, 'Custom activations')") == "(see 'tinyprop docs export', 'Custom activations')"
 
 

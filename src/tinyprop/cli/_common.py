@@ -44,6 +44,7 @@ OPTION_WORDS: tuple[tuple[str, str], ...] = (
     (r"\(lr=([^)]*)\) or set clip_norm on the optimizer", r"(--learning-rate \1) or set --clip-norm"),
     (r"\b(test|validation)_fraction\b", r"--\1-fraction"),
     (r"use fewer hidden units", "use a smaller --hidden"),
+    (r"choose other starting weights", "try another --seed"),
     (r"see docs/([a-z-]+)\.md", r"see 'tinyprop docs \1'"),
 )
 
