@@ -53,8 +53,8 @@ import numpy as np
 
 from ._words import count
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
-from .activations import Activation, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .build import build_mlp
+from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
+from .mlp import build_mlp
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
 from .network import Layer, Network
@@ -247,12 +247,9 @@ def _fit_tabular(
 
 
 # ---------------------------------------------------------------- the command line's recipe
+# the hidden-layer activations on offer: every built-in but Identity (a linear hidden layer adds nothing)
 ACTIVATIONS: dict[str, type[Activation]] = {
-    "tanh": Tanh,
-    "sigmoid": Sigmoid,
-    "relu": ReLU,
-    "leaky-relu": LeakyReLU,
-    "softplus": Softplus,
+    built_in_name(cls).replace("_", "-"): cls for cls in BUILT_IN_ACTIVATIONS if cls is not Identity
 }
 OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default learning rate
     "adam": (Adam, 1e-3),

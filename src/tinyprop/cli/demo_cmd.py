@@ -27,7 +27,7 @@ from ..losses import MeanSquaredError
 from ..network import Network
 from ._common import SAFETY, CommandError, output_folder, write_json, write_plots
 from ..recipes import Dataset, FitSettings, build_network, evaluate_all, fit, split_rows
-from ._fit import architecture, model_metadata, report
+from ._fit_report import architecture, model_metadata, report
 
 HELP = "the whole job on a synthetic battery state-of-charge scenario: check, train, test, save, export"
 

@@ -41,7 +41,7 @@ from ..recipes import (
     fit,
     least_squares_uncertainty,
 )
-from ._fit import architecture, model_metadata, report, split_for_command
+from ._fit_report import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 

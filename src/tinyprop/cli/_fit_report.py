@@ -1,4 +1,4 @@
-"""What ``tinyprop train`` and ``tinyprop demo`` add to the library's recipe: progress, metadata, the report.
+"""What ``tinyprop train`` and ``tinyprop demo`` add to the library's recipe: usage errors, metadata, the report.
 
 The recipe itself (split, network, fit, evaluation) is :mod:`tinyprop.recipes`;
 this module turns its refusals into usage errors and writes what the commands
