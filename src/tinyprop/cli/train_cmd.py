@@ -44,11 +44,13 @@ from ..recipes import (
 from ._fit_report import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
+EPILOG = "The CSV format, exactly what train does and the report's keys: 'tinyprop docs cli'."
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     defaults = FitSettings()
     data = parser.add_argument_group("data")
-    data.add_argument("data", metavar="DATA.csv", help="CSV file with a header row of column names")
+    data.add_argument("data", metavar="DATA.csv", help="CSV file with a header row of column names; a header cell "
+                                                       "'head [m]' names the column head with the unit m")
     data.add_argument("--targets", type=_args.names, action="extend", required=True, metavar="NAMES",
                       help="column(s) to predict, comma-separated (required)")
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
