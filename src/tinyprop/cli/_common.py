@@ -113,19 +113,19 @@ def read_table_and_units(path: str, delimiter: str) -> tuple[CsvTable, dict[str,
         raise CommandError(str(exc)) from None
 
 
-_UNIT = re.compile(r"(?P<name>.*?\S)\s*\[(?P<unit>[^\[\]]*)\]")
+_UNIT = re.compile(r"(?P<name>.*?\S)\s+\[(?P<unit>[^\[\]]*)\]")  # a space before "[": x[0] stays a name
 
 
 def split_units(table: CsvTable) -> tuple[CsvTable, dict[str, str]]:
     """A header cell ``name [unit]`` names the column ``name`` and gives its unit ``unit``.
 
-    Returns the table with the bare names and a dict of the units (columns
-    without a ``[...]`` at the end of their header cell have none). Two
-    cells that give one name are refused (:class:`CsvError`).
+    Returns the table with the bare names and a dict of the units. A cell
+    without a space and ``[...]`` at its end (``note``, ``x[0]``) is a name
+    with no unit. Two cells that give one name are refused (:class:`CsvError`).
 
-    >>> table, units = split_units(CsvTable("p.csv", ("speed [rpm]", "head [m]", "note"), (), ()))
+    >>> table, units = split_units(CsvTable("p.csv", ("speed [rpm]", "head [m]", "note", "x[0]"), (), ()))
     >>> table.columns, units
-    (('speed', 'head', 'note'), {'speed': 'rpm', 'head': 'm'})
+    (('speed', 'head', 'note', 'x[0]'), {'speed': 'rpm', 'head': 'm'})
     """
     names, units = [], {}
     for cell in table.columns:
