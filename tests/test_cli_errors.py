@@ -114,7 +114,8 @@ def folder(tmp_path_factory) -> Path:
         (folder / name).write_text(text, encoding="utf-8")
     (folder / "latin1.csv").write_bytes("x1,x2,y\n1,2,3\n4,5,6 \xb0C\n".encode("latin-1"))
     net = tp.Network([tp.Affine(2, 3), tp.Tanh(), tp.Affine(3, 1)], seed=0)
-    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}], "outputs": [{"name": "v"}]})
+    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}],
+                                                 "outputs": [{"name": "v"}]})
     _tampered(folder / "model.npz", folder / "tampered.npz")
     return folder
 
@@ -145,7 +146,8 @@ def test_user_mistake_gives_one_clear_line(name, arguments, status, fragments, f
     assert "Traceback" not in message
     command = "tinyprop" if name == "unknown-command" else f"tinyprop {arguments[0]}"
     # warnings about weak data may come first (one line each); the mistake itself is one line
-    message = "".join(line for line in message.splitlines(keepends=True) if not line.startswith(f"{command}: warning: "))
+    message = "".join(line for line in message.splitlines(keepends=True)
+                      if not line.startswith(f"{command}: warning: "))
     assert message.count("\n") == 1 and message.endswith("\n"), f"expected one line, got {message!r}"
     assert message.startswith(f"{command}: error: "), message
     for fragment in fragments:

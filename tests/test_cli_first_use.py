@@ -23,12 +23,12 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from tinyprop._progress import ProgressLine
 from tinyprop.cli import build_parser
 from tinyprop.cli._common import OPTION_WORDS, option_words
 from tinyprop.export import export_c, export_c_fixed_point, export_python
 from tinyprop.modelfile import load_model_file
 from tinyprop.recipes import Dataset, FitSettings, check_data, solver_stop, split_rows
-from tinyprop._progress import ProgressLine
 from tinyprop.solve import solve
 
 solve_module = importlib.import_module("tinyprop.solve")  # the module; tinyprop.solve is the function
@@ -123,7 +123,8 @@ def report(folder: Path, model: str) -> dict:
 # ---------------------------------------------------------------- 3: tiny or degenerate data
 def test_data_that_cannot_be_fitted_is_refused_in_one_line(runs):
     assert lines(runs["one-row"].stderr) == [
-        "tinyprop train: error: one.csv: 1 row left for training (of 1 data row); fitting needs at least 2 training rows"]
+        "tinyprop train: error: one.csv: 1 row left for training (of 1 data row); "
+        "fitting needs at least 2 training rows"]
     assert lines(runs["constant-target"].stderr) == [
         "tinyprop train: error: const.csv: target column 'y' is 1 on all 14 training rows; "
         "a constant cannot be fitted or evaluated"]
@@ -178,7 +179,8 @@ def test_library_advice_is_given_as_options(runs):
         "tinyprop train: error: fitting failed: Levenberg-Marquardt needs at least as many residuals as parameters: "
         "22 residuals (samples x outputs) for 321 parameters; use --method lbfgs")
     assert lines(runs["diverging"].stderr)[-1].endswith(
-        "the network holds the last finite weights. Lower the learning rate (--learning-rate 1e+200) or set --clip-norm")
+        "the network holds the last finite weights. "
+        "Lower the learning rate (--learning-rate 1e+200) or set --clip-norm")
     assert lines(runs["clip-norm-with-lm"].stderr) == [
         "tinyprop train: error: --clip-norm applies to --method mini-batch, not lbfgs"]
 
@@ -191,7 +193,8 @@ def test_every_translated_phrase_occurs_in_the_library():
         assert re.search(pattern, source), pattern
     assert option_words("x; use method='lbfgs'") == "x; use --method lbfgs"
     assert option_words("not finite; choose other starting weights") == "not finite; try another --seed"
-    assert option_words("(see docs/export.md, 'Custom activations')") == "(see 'tinyprop docs export', 'Custom activations')"
+    assert option_words("(see docs/export.md, 'Custom activations')") == (
+        "(see 'tinyprop docs export', 'Custom activations')")
 
 
 # ---------------------------------------------------------------- 6: why the solver stopped, in our words
@@ -327,7 +330,8 @@ def test_docs_ship_with_the_package_and_the_help_points_to_them(runs):
     assert runs["docs-cli"].stdout == (ROOT / "docs" / "cli.md").read_text(encoding="utf-8")
     listing = lines(runs["docs-list"].stdout)
     assert any(re.fullmatch(r"  cli +The `tinyprop` command", line) for line in listing), listing
-    assert lines(runs["docs-unknown"].stderr)[0].startswith("tinyprop docs: error: no page named 'nope'; the pages are ")
+    assert lines(runs["docs-unknown"].stderr)[0].startswith(
+        "tinyprop docs: error: no page named 'nope'; the pages are ")
     overview = runs["overview"].stdout
     assert "in the tinyprop source" not in overview and "'tinyprop docs cli' prints the full guide" in overview
 

@@ -76,7 +76,11 @@ class TrainingState:
             "version": 1,
             "epoch": self.epoch,
             "n_weights": len(self.weights),
-            "optimizer": {"kind": self.optimizer.kind, "settings": self.optimizer.settings, "steps": self.optimizer.steps},
+            "optimizer": {
+                "kind": self.optimizer.kind,
+                "settings": self.optimizer.settings,
+                "steps": self.optimizer.steps,
+            },
             "rng": self.rng,
             "training_loss": list(self.training_loss),
             "validation_loss": None if self.validation_loss is None else list(self.validation_loss),
@@ -100,10 +104,16 @@ class TrainingState:
         settings against the run) is checked when :func:`train` resumes.
         """
         if not isinstance(scalars, dict) or not isinstance(arrays, dict):
-            raise TypeError(f"scalars and arrays must be dicts, got {type(scalars).__name__} and {type(arrays).__name__}")
+            raise TypeError(
+                f"scalars and arrays must be dicts, got {type(scalars).__name__} and "
+                f"{type(arrays).__name__}"
+            )
         try:
             if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
-                raise ValueError(f"not a version-1 tinyprop training state: {scalars['format']!r} {scalars['version']!r}")
+                raise ValueError(
+                    f"not a version-1 tinyprop training state: {scalars['format']!r} "
+                    f"{scalars['version']!r}"
+                )
             n = _whole(scalars["n_weights"], "n_weights")
             weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
             has_best = "best_weights/0" in arrays
@@ -116,7 +126,8 @@ class TrainingState:
                 steps=_whole(optimizer_scalars["steps"], "optimizer steps"),
                 arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
             )
-            expected = {f"weights/{i}" for i in range(n)} | ({f"best_weights/{i}" for i in range(n)} if has_best else set())
+            expected = {f"weights/{i}" for i in range(n)}
+            expected |= {f"best_weights/{i}" for i in range(n)} if has_best else set()
             extra = {k for k in arrays if not k.startswith(prefix)} - expected
             if extra:
                 raise ValueError(f"unexpected arrays {sorted(extra)}")

@@ -51,12 +51,12 @@ from typing import Any
 
 import numpy as np
 
-from ._words import count
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
+from ._words import count
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
-from .mlp import build_mlp
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
+from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
@@ -313,7 +313,8 @@ class FitSettings:
     def describe_method(self) -> str:
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
-        text = f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, {self.epochs} epochs"
+        text = (f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, "
+                f"{self.epochs} epochs")
         text += f", gradient norm clipped at {self.clip_norm:g}" if self.clip_norm is not None else ""
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
@@ -354,7 +355,7 @@ class Split:
     test: np.ndarray
 
     def sizes(self) -> dict[str, int]:
-        return {"training": int(self.training.size), "validation": int(self.validation.size), "test": int(self.test.size)}
+        return {part: int(getattr(self, part).size) for part in ("training", "validation", "test")}
 
 
 @dataclass(frozen=True)

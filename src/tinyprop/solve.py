@@ -10,7 +10,8 @@ the residual vector ``r`` ordered like the rows of ``net.jacobian``:
 
 - ``method="levenberg-marquardt"``: ``scipy.optimize.least_squares`` with
   ``method="lm"`` (MINPACK's ``lmder``; Moré (1978), "The Levenberg-Marquardt
-  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer, pp. 105-116, pages from memory),
+  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer,
+  pp. 105-116, pages from memory),
   given the residuals and the exact Jacobian ``dr/dtheta = net.jacobian(X)``
   from backpropagation. Each iteration solves
   ``(J^T J + mu D^T D) delta = -J^T r`` with a trust-region choice of ``mu``
@@ -42,8 +43,8 @@ from typing import Any
 import numpy as np
 
 from ._progress import ProgressLine
-from ._words import count
 from ._validate import as_samples, as_targets, positive_int, real_in_range
+from ._words import count
 from .losses import SquaredError
 from .network import Network
 

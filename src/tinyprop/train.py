@@ -47,8 +47,8 @@ import numpy as np
 
 from ._json import json_copy
 from ._progress import EpochProgress
-from .checkpoint import TrainingState, save_checkpoint
 from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
+from .checkpoint import TrainingState, save_checkpoint
 from .layers import Affine
 from .losses import Loss
 from .network import Network
@@ -289,7 +289,9 @@ class _Run:
             "parameter_shapes": [list(p.shape) for p in net.params],
         }
         self.params = net.params
-        self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
+        self.is_weight = [
+            is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]
+        ]
         self.backup = np.empty_like(net.vector)
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
         self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
@@ -336,10 +338,16 @@ class _Run:
 
     def restore(self, state: TrainingState) -> None:
         if not isinstance(state, TrainingState):
-            raise TypeError(f"resume must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
-        differing = sorted(k for k in set(self.settings) | set(state.settings) if self.settings.get(k) != state.settings.get(k))
+            raise TypeError(
+                "resume must be a TrainingState (result.state or info.capture()), got "
+                f"{type(state).__name__}"
+            )
+        keys = set(self.settings) | set(state.settings)
+        differing = sorted(k for k in keys if self.settings.get(k) != state.settings.get(k))
         if differing:
-            detail = ", ".join(f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing)
+            detail = ", ".join(
+                f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing
+            )
             raise ValueError(f"resume state does not match this training run ({detail})")
         if not 0 <= state.epoch <= self.epochs:
             raise ValueError(f"resume state has {state.epoch} epochs done, more than epochs={self.epochs}")
@@ -525,7 +533,10 @@ def _check_like(targets: list[np.ndarray], sources: list[np.ndarray], what: str)
     for i, (t, s) in enumerate(zip(targets, sources)):
         s = np.asarray(s)
         if s.shape != t.shape or s.dtype != t.dtype:
-            raise ValueError(f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} {s.dtype}")
+            raise ValueError(
+                f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} "
+                f"{s.dtype}"
+            )
         require_finite(s, f"{what} array {i}")
 
 

@@ -140,6 +140,7 @@ def split_units(table: CsvTable) -> tuple[CsvTable, dict[str, str]]:
 
 
 def _read_csv(path: str, delimiter: str) -> CsvTable:
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`); every problem becomes a one-line :class:`CommandError`."""
     try:
         return read_csv(path, delimiter=delimiter)
     except OSError as exc:
@@ -169,7 +170,8 @@ def numeric_columns(table: CsvTable, inputs: list[str], targets: list[str]) -> t
 def stored_names(metadata: dict, key: str) -> list[str] | None:
     """The column names a model's metadata lists under ``key`` (``"inputs"`` or ``"outputs"``), if well formed."""
     entries = metadata.get(key)
-    if not isinstance(entries, list) or not all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries):
+    named = isinstance(entries, list) and all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries)
+    if not named:
         return None
     return [e["name"] for e in entries]
 

@@ -46,8 +46,8 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from .._words import count
 from .._validate import as_samples
+from .._words import count
 from ..network import Network
 from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
 from ._fixed_program import (
@@ -59,9 +59,9 @@ from ._fixed_program import (
     build_program,
 )
 from ._header import header_lines, provenance
-from ._plan import make_plan
 from ._identifiers import check_c_name
 from ._metadata import check_metadata
+from ._plan import make_plan
 from ._source import c_block_comment, comment_text, output_directory, write_source
 
 __all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]
@@ -165,7 +165,8 @@ class FixedPointReport:
         rows.append(f"  {'output':<{width}} {'format':<7} {'max |error|':>12} {'rms error':>12} {'range':>12} "
                     f"{'max/range':>10} {'rms/range':>10}")
         for k, bits in enumerate(self.output_bits):
-            rows.append(f"  {self.output_label(k):<{width}} Q{bits:<6} {self.max_abs_error[k]:>12.4g} {self.rms_error[k]:>12.4g} "
+            rows.append(f"  {self.output_label(k):<{width}} Q{bits:<6} {self.max_abs_error[k]:>12.4g} "
+                        f"{self.rms_error[k]:>12.4g} "
                         f"{self.output_range[k]:>12.4g} {self.max_rel_error[k]:>10.3g} "
                         f"{self.rms_rel_error[k]:>10.3g}")
         rows += [f"  {table}" for table in self.tables]
@@ -315,7 +316,8 @@ def _interface(name: str, program: IntegerProgram, headroom: float, n_rows: int,
         spread = numbers["output_range"][k]
         relative = f"{numbers['max_abs_error'][k] / spread:.3g}" if spread > 0 else "n/a"
         named = f" ({comment_text(labels[k])})" if labels else ""
-        lines.append(f"  y[{k}]{named}: largest |error| {numbers['max_abs_error'][k]:.3g}, rms {numbers['rms_error'][k]:.3g}, "
+        lines.append(f"  y[{k}]{named}: largest |error| {numbers['max_abs_error'][k]:.3g}, "
+                     f"rms {numbers['rms_error'][k]:.3g}, "
                      f"largest / observed range {relative}")
     lines += [f"WARNING: {comment_text(w)} on the calibration rows." for w in warnings] or [
         "No saturation on the calibration rows; inputs beyond them may saturate (clamp)."]
