@@ -152,7 +152,7 @@ def test_check_data_in_the_library():
     flat_input = replace(data, X=np.column_stack([X, np.zeros_like(X)]), input_names=("x", "off"))
     assert check_data(flat_input, split_rows(40, settings), settings, n_params=20) == [
         "input column 'off' is 0 on all 28 training rows: it cannot inform the fit"]
-    constant = replace(data, Y=np.full_like(X, 2.5))
+    constant = replace(data, y=np.full_like(X, 2.5))
     with pytest.raises(ValueError, match="target column 'y' is 2.5 on all 28 training rows"):
         check_data(constant, split_rows(40, settings), settings, n_params=20)
 
@@ -168,7 +168,7 @@ def test_least_squares_records_no_mini_batch_settings(runs, folder):
 
 def test_mini_batch_records_no_least_squares_or_sgd_settings(runs, folder):
     settings = report(folder, "six.npz")["settings"]
-    assert {"optimizer", "learning_rate", "epochs", "batch_size", "schedule", "clip_norm", "patience"} <= set(settings)
+    assert {"optimizer", "lr", "epochs", "batch_size", "schedule", "clip_norm", "patience"} <= set(settings)
     assert "max_evaluations" not in settings and "momentum" not in settings  # momentum applies to sgd only
     assert set(load_model_file(folder / "six.npz").metadata["training"]["settings"]) == set(settings)
 

@@ -160,7 +160,7 @@ def require_columns(table: CsvTable, names: list[str], what: str) -> None:
 
 
 def numeric_columns(table: CsvTable, inputs: list[str], targets: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, Y)``: the input and target columns as float64 arrays; a cell that is not a number fails the command."""
+    """``(X, y)``: the input and target columns as float64 arrays; a cell that is not a number fails the command."""
     try:
         return table.numeric(inputs), table.numeric(targets)
     except CsvError as exc:

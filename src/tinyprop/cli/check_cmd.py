@@ -8,7 +8,7 @@ fits). Rows come from a CSV file (``--data``; ``--rows`` of them, drawn with
 - inputs ``X = mean + scale * Z`` with ``Z`` standard normal, where ``mean`` and
   ``scale`` are those of the model's leading :class:`~tinyprop.layers.Standardize`
   layer (``0`` and ``1`` without one), so the rows look like the training data;
-- targets ``Y = predict(X) + s * W``, ``W`` standard normal, with ``s`` the scale
+- targets ``y = predict(X) + s * W``, ``W`` standard normal, with ``s`` the scale
   of a trailing :class:`~tinyprop.layers.Unstandardize` layer (else ``1``), so
   the residuals, and hence the gradient, are not near zero.
 
@@ -35,7 +35,7 @@ HELP = "check a saved model's gradient against numerical differentiation (exit 1
 EPILOG = """rows without --data, drawn with numpy.random.default_rng(SEED):
   inputs  X = mean + scale * Z, Z standard normal, with the mean and scale of the
           model's leading Standardize layer (0 and 1 without one)
-  targets Y = predict(X) + s * W, W standard normal, s the scale of a trailing
+  targets y = predict(X) + s * W, W standard normal, s the scale of a trailing
           Unstandardize layer (1 without one)
 the loss is the mean squared error; exit status 0 when every array passes, 1 otherwise"""
 
@@ -69,13 +69,13 @@ def run(args: argparse.Namespace) -> int:
                            f"and bias array), got {args.parameters}", USAGE)
     rng = np.random.default_rng(args.seed)
     if args.data:
-        X, Y = _rows_from_csv(args, model.metadata, net, rng)
+        X, y = _rows_from_csv(args, model.metadata, net, rng)
         source = f"{count(X.shape[0], 'row')} of {args.data}"
     else:
-        X, Y = _generated_rows(net, args.rows, rng)
+        X, y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"
     try:
-        report = check_gradient(net, X, Y, MeanSquaredError(), tolerance=args.tolerance,
+        report = check_gradient(net, X, y, MeanSquaredError(), tolerance=args.tolerance,
                                 parameters=args.parameters, seed=args.seed)
     except ValueError as exc:  # a pre-activation exactly on a kink, rows that do not fit the model, ...
         raise CommandError(f"cannot check on these rows: {exc}") from None
@@ -95,8 +95,8 @@ def _generated_rows(net: Network, rows: int, rng: np.random.Generator) -> tuple[
     Z = rng.standard_normal((rows, net.n_in))
     X = first.mean + first.scale * Z if isinstance(first, Standardize) else Z
     spread = last.scale if isinstance(last, Unstandardize) else 1.0
-    Y = net.predict(X).astype(np.float64) + spread * rng.standard_normal((rows, net.n_out))
-    return X, Y
+    y = net.predict(X).astype(np.float64) + spread * rng.standard_normal((rows, net.n_out))
+    return X, y
 
 
 def _rows_from_csv(

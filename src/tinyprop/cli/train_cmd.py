@@ -46,6 +46,7 @@ from ._fit_report import architecture, model_metadata, report, split_for_command
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 EPILOG = "The CSV format, exactly what train does and the report's keys: 'tinyprop docs cli'."
 
+
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     defaults = FitSettings()
     data = parser.add_argument_group("data")
@@ -80,6 +81,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument(
         "--learning-rate",
+        dest="lr",
         type=_args.positive_float,
         metavar="LR",
         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
@@ -165,7 +167,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {report_path}")
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
-        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+        written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
                                     [data.label(name) for name in data.target_names], Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
@@ -215,18 +217,18 @@ def _applicability() -> str:
 
 
 def _flag(option: str) -> str:
-    """``batch_size`` -> ``--batch-size``."""
-    return "--" + option.replace("_", "-")
+    """``batch_size`` -> ``--batch-size``; ``lr`` (the library's name) -> ``--learning-rate``."""
+    return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
     table, units = read_table_and_units(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
-    X, Y = numeric_columns(table, inputs, targets)
+    X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
     used = {name: unit for name, unit in units.items() if name in inputs or name in targets}
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest}, used)
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest}, used)
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
