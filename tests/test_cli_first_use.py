@@ -64,23 +64,24 @@ FILES = {
     "twice.csv": "a [m],a,y\n1,2,3\n4,5,6\n",
 }
 TRAIN = ["train", "--quiet"]
+MINI_BATCH = TRAIN + ["--method", "mini-batch"]
 # name: (arguments, status); every case runs once, in parallel, as `python -m tinyprop`
 RUNS = {
     "one-row": (TRAIN + ["one.csv", "--targets", "y", "--out", "one.npz"], 1),
     "constant-target": (TRAIN + ["const.csv", "--targets", "y", "--out", "const.npz"], 1),
-    "three-rows": (TRAIN + ["three.csv", "--targets", "y", "--hidden", "2", "--epochs", "2", "--out", "three.npz"], 0),
-    "six-rows": (TRAIN + ["six.csv", "--targets", "y", "--hidden", "1", "--epochs", "2", "--out", "six.npz"], 0),
+    "three-rows": (MINI_BATCH + ["three.csv", "--targets", "y", "--hidden", "2", "--epochs", "2", "--out", "three.npz"], 0),
+    "six-rows": (MINI_BATCH + ["six.csv", "--targets", "y", "--hidden", "1", "--epochs", "2", "--out", "six.npz"], 0),
     "lm": (TRAIN + ["tanh.csv", "--targets", "y", "--hidden", "1", "--method", "levenberg-marquardt",
                     "--out", "lm.npz"], 0),
     "lm-too-few-rows": (TRAIN + ["small.csv", "--targets", "y", "--method", "levenberg-marquardt",
                                  "--out", "few.npz"], 1),
-    "diverging": (TRAIN + ["small.csv", "--targets", "y", "--optimizer", "sgd", "--learning-rate", "1e200",
+    "diverging": (MINI_BATCH + ["small.csv", "--targets", "y", "--optimizer", "sgd", "--learning-rate", "1e200",
                            "--schedule", "constant", "--out", "diverged.npz"], 1),
     "clip-norm-with-lm": (TRAIN + ["small.csv", "--targets", "y", "--method", "lbfgs", "--clip-norm", "1",
                                    "--out", "x.npz"], 2),
     "lm-log": (["train", "small.csv", "--targets", "y", "--hidden", "4", "--method", "lbfgs",  # stops at the limit
                 "--max-evaluations", "100", "--out", "log.npz"], 0),
-    "pump": (TRAIN + ["pump.csv", "--targets", "head,power", "--inputs", "speed,flow", "--hidden", "3",
+    "pump": (MINI_BATCH + ["pump.csv", "--targets", "head,power", "--inputs", "speed,flow", "--hidden", "3",
                       "--epochs", "3", "--out", "pump.npz"], 0),
     "twice": (TRAIN + ["twice.csv", "--targets", "y"], 1),
     "docs-list": (["docs"], 0),
