@@ -69,7 +69,8 @@ MINI_BATCH = TRAIN + ["--method", "mini-batch"]
 RUNS = {
     "one-row": (TRAIN + ["one.csv", "--targets", "y", "--out", "one.npz"], 1),
     "constant-target": (TRAIN + ["const.csv", "--targets", "y", "--out", "const.npz"], 1),
-    "three-rows": (MINI_BATCH + ["three.csv", "--targets", "y", "--hidden", "2", "--epochs", "2", "--out", "three.npz"], 0),
+    "three-rows": (MINI_BATCH + ["three.csv", "--targets", "y", "--hidden", "2", "--epochs", "2",
+                                 "--out", "three.npz"], 0),
     "six-rows": (MINI_BATCH + ["six.csv", "--targets", "y", "--hidden", "1", "--epochs", "2", "--out", "six.npz"],
                  0),
     "lm": (TRAIN + ["tanh.csv", "--targets", "y", "--hidden", "1", "--method", "levenberg-marquardt",
