@@ -43,7 +43,9 @@ digits that forming ``J^T J`` loses (the normal equations square the
 condition number: ``cond(J^T J) = cond(J)^2``); it is the method that meets
 the NIST StRD certified values (``tests/test_solve_nist.py``).
 ``"blocked-levenberg-marquardt"`` whenever ``regularization`` is given or
-the Jacobian would be larger than that. ``result.method`` says which ran.
+the Jacobian would be larger than that. ``method="levenberg-marquardt"``
+with ``regularization`` runs the blocked engine too (MINPACK cannot add the
+penalty; it is the same method). ``result.method`` says which ran.
 
 All run in float64: the network is copied to float64, the copy is fitted, and
 the result is written back into ``net`` (rounded to float32 for a float32
@@ -269,10 +271,12 @@ def _method(method: str | None, regularization: str | float | None, n_residuals:
     if method is None:
         small = n_residuals * n_params * 8 <= _MINPACK_JACOBIAN_BYTES
         return "levenberg-marquardt" if regularization is None and small else "blocked-levenberg-marquardt"
+    if regularization is not None and method == "levenberg-marquardt":
+        return "blocked-levenberg-marquardt"  # MINPACK cannot add a penalty; the blocked engine is the same method
     if regularization is not None and method != "blocked-levenberg-marquardt":
         raise ValueError(
-            f"regularization={regularization!r} needs method='blocked-levenberg-marquardt' (or method=None), "
-            f"got method={method!r}"
+            f"regularization={regularization!r} needs a Levenberg-Marquardt method "
+            f"('levenberg-marquardt', 'blocked-levenberg-marquardt' or None), got method={method!r}"
         )
     return method
 
