@@ -92,8 +92,10 @@ def assert_same_network(a: tp.Network, b: tp.Network) -> None:
         (["--optimizer", "sgd", "--momentum", "0.9", "--schedule", "constant", "--patience", "4",
           "--activation", "sigmoid"],
          lambda n_train: tp.SGD(0.01, momentum=0.9)),
+        (["--clip-norm", "0.5"],
+         lambda n_train: tp.Adam(0.01, schedule=tp.CosineSchedule(30 * math.ceil(n_train / 16)), clip_norm=0.5)),
     ],
-    ids=["adam-cosine", "sgd-momentum-early-stopping"],
+    ids=["adam-cosine", "sgd-momentum-early-stopping", "adam-clip-norm"],
 )
 def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimizer):
     path, X, Y = csv_file

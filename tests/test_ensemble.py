@@ -275,8 +275,8 @@ def test_bad_export_arguments(tmp_path):
         ensemble.export_c(tmp_path, name="_hidden")
     with pytest.raises(TypeError, match="dtype must be 'float32' or 'float64'"):
         ensemble.export_c(tmp_path, dtype="float16")
-    with pytest.raises(ValueError, match="existing directory"):
-        ensemble.export_c(tmp_path / "missing")
+    with pytest.raises(ValueError, match="is a file"):
+        ensemble.export_c(__file__)
 
 
 # ----------------------------------------------------------------------------- UCI concrete

@@ -343,7 +343,7 @@ class Ensemble:
         metadata: Mapping[str, Any] | None = None,
         literals: str = "decimal",
     ) -> tuple[Path, ...]:
-        """Write C99 code for the mean into the existing directory ``path``; return the files written.
+        """Write C99 code for the mean into the directory ``path`` (created if missing); return the files written.
 
         See :func:`tinyprop.export.ensemble.export_ensemble_c`.
         """

@@ -35,6 +35,7 @@ import numpy as np
 from ._json import canonical_json, json_copy, sha256_hex
 from ._validate import require_finite
 from ._version import __version__
+from ._words import count
 from .activations import Activation
 from .archive import ArchiveError, array_record, check_json, read_archive, write_archive
 from .layers import Affine, Standardize, Unstandardize
@@ -564,9 +565,8 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     """
     if not isinstance(net, Network):
         raise TypeError(f"expected a tinyprop Network, got {type(net).__name__}")
-    inputs = "input" if net.n_in == 1 else "inputs"
-    outputs = "output" if net.n_out == 1 else "outputs"
-    lines = [f"network: {net.n_in} {inputs} -> {net.n_out} {outputs}, {net.n_params} parameters, {net.dtype.name}"]
+    lines = [f"network: {count(net.n_in, 'input')} -> {count(net.n_out, 'output')}, "
+             f"{count(net.n_params, 'parameter')}, {net.dtype.name}"]
     try:
         lines.append(f"fingerprint: {fingerprint(net)}")
     except ModelFileError as exc:

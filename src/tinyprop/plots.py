@@ -19,6 +19,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from ._words import count
+
 __all__ = ["PLOT_HINT", "PlotsUnavailable", "confusion_plot", "learning_curves", "parity_plot", "reliability_diagram"]
 
 PLOT_HINT = 'pip install "tinyprop[plot]"'
@@ -100,7 +102,7 @@ def parity_plot(
         axes.set_aspect("equal")
         axes.set_xlabel(f"actual {name}")
         axes.set_ylabel(f"predicted {name}")
-        axes.set_title(f"RMSE {rmse:.4g} on {a.size} rows", fontsize=9)
+        axes.set_title(f"RMSE {rmse:.4g} on {count(a.size, 'row')}", fontsize=9)
         axes.grid(True, alpha=0.3)
     figure.suptitle(title, fontsize=10)
     return _save(figure, canvas, path)

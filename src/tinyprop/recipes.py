@@ -27,7 +27,7 @@ and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``y`` (targ
 3. **Fit** on the training rows, in the data's units:
 
    - ``mini-batch``: ``train(net, X_train, y_train, loss=MeanSquaredError(),
-     optimizer=<optimizer>(lr, schedule=...), epochs, batch_size,
+     optimizer=<optimizer>(lr, schedule=..., clip_norm=...), epochs, batch_size,
      validation=(X_val, y_val) or None, patience, seed=s)``, where the schedule is
      ``None`` (``constant``) or ``CosineSchedule(epochs * ceil(n_train / batch_size))``
      (``cosine``: the learning rate falls along half a cosine to 0 at the last epoch);
@@ -38,7 +38,10 @@ and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``y`` (targ
    absolute error, largest absolute error and ``R^2 = 1 - SS_res / SS_tot``.
 
 This is what ``docs/cli.md`` documents and what ``tests/test_cli.py`` reproduces
-with the library calls above.
+with the library calls above. Around the steps: :func:`check_data` refuses data
+that cannot be fitted and names weak data, :data:`APPLIES_ONLY_TO` says which
+settings apply to which method (the report records only those), and
+:func:`solver_stop` says in our words why a least-squares fit ended.
 """
 
 from __future__ import annotations
@@ -53,6 +56,7 @@ from typing import Any
 import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
+from ._words import count
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
 from .classify import Classifier, encode_labels, one_hot, softmax, softmax_curvature, stratified_folds
 from .layers import Affine, Standardize, Unstandardize
@@ -77,6 +81,7 @@ __all__ = [
     "Split",
     "FitOutcome",
     "split_rows",
+    "check_data",
     "build_network",
     "fit",
     "evaluate",
@@ -448,7 +453,19 @@ OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default le
 }
 METHODS = (*RECIPE_METHODS, "mini-batch", "levenberg-marquardt", "lbfgs")
 COMMAND_LINE_HIDDEN = (16, 16)  # the widths of the mini-batch / least-squares methods when none are given
+LEAST_SQUARES_METHODS = ("levenberg-marquardt", "lbfgs")
 SCHEDULES = ("cosine", "constant")
+
+# Which settings apply to which choices: (setting, the setting it depends on, the values of that setting it
+# applies to). A FitSettings field not named here applies always. The report and the model's metadata record
+# only the settings that apply (FitSettings.to_dict); the command line refuses an option that does not apply.
+APPLIES_ONLY_TO: tuple[tuple[str, str, tuple[str, ...]], ...] = (
+    *((name, "method", ("mini-batch",)) for name in (
+        "optimizer", "lr", "schedule", "momentum", "clip_norm", "epochs", "batch_size", "patience")),
+    ("max_evaluations", "method", LEAST_SQUARES_METHODS),
+    ("restarts", "method", ("auto", "evidence-lm")),
+    ("momentum", "optimizer", ("sgd",)),
+)
 
 
 @dataclass(frozen=True)
@@ -462,6 +479,7 @@ class FitSettings:
     lr: float | None = None  # the learning rate; None: the optimizer's default in OPTIMIZERS
     schedule: str = "cosine"
     momentum: float = 0.0
+    clip_norm: float | None = None  # None: no gradient-norm clipping
     epochs: int = 200
     batch_size: int = 32
     patience: int | None = None
@@ -476,10 +494,17 @@ class FitSettings:
         """``lr``, or the optimizer's default learning rate when it is ``None``."""
         return OPTIMIZERS[self.optimizer][1] if self.lr is None else self.lr
 
+    def applies(self, name: str) -> bool:
+        """Whether setting ``name`` takes part in the fit with these settings (the table ``APPLIES_ONLY_TO``)."""
+        return all(getattr(self, depends_on) in values
+                   for setting, depends_on, values in APPLIES_ONLY_TO if setting == name)
+
     def to_dict(self) -> dict[str, Any]:
-        settings = asdict(self)
+        """The settings that apply to the chosen method (with the learning rate actually used), and the loss."""
+        settings = {name: value for name, value in asdict(self).items() if self.applies(name)}
         settings["hidden"] = None if self.hidden is None else list(self.hidden)
-        settings["lr"] = self.optimizer_lr()
+        if "lr" in settings:
+            settings["lr"] = self.optimizer_lr()
         settings["loss"] = "MeanSquaredError"
         return settings
 
@@ -491,18 +516,35 @@ class FitSettings:
             return f"{self.method}, at most {self.max_evaluations} evaluations"
         text = (f"{self.optimizer}, learning rate {self.optimizer_lr():g} ({self.schedule}), batch {self.batch_size}, "
                 f"{self.epochs} epochs")
+        text += f", gradient norm clipped at {self.clip_norm:g}" if self.clip_norm is not None else ""
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
 
 @dataclass(frozen=True)
 class Dataset:
-    """Inputs ``X`` ``(n, n_in)`` and targets ``y`` ``(n, n_out)`` with their column names and origin."""
+    """Inputs ``X`` ``(n, n_in)`` and targets ``y`` ``(n, n_out)`` with their column names, origin and units.
+
+    ``units`` maps a column name to its unit (free text such as ``"m"`` or
+    ``"m3/h"``); a column without a unit is left out.
+    """
 
     X: np.ndarray
     y: np.ndarray
     input_names: tuple[str, ...]
     target_names: tuple[str, ...]
     source: dict[str, Any]  # for the report: where the data came from
+    units: Mapping[str, str] = field(default_factory=dict)
+
+    def label(self, name: str) -> str:
+        """``"head [m]"`` for a column with a unit, else the bare name."""
+        return f"{name} [{self.units[name]}]" if self.units.get(name) else name
+
+    def ports(self) -> dict[str, list[dict[str, str]]]:
+        """Names and units of inputs and outputs, in the form the model file's metadata and the exporters take."""
+        def entries(names: tuple[str, ...]) -> list[dict[str, str]]:
+            return [{"name": name, **({"unit": self.units[name]} if self.units.get(name) else {})} for name in names]
+
+        return {"inputs": entries(self.input_names), "outputs": entries(self.target_names)}
 
 
 @dataclass(frozen=True)
@@ -524,6 +566,10 @@ class FitOutcome:
     ``network``: the fitted network (for the recipe's methods the recipe builds
     it; otherwise the one passed to :func:`fit`); ``recipe``: the recipe's
     :class:`RecipeResult` (``None`` for the other methods).
+
+    ``summary`` has ``message`` (a sentence of our own) and, for ``mini-batch`` and the
+    least-squares methods, ``stop_reason``; for the least-squares methods also scipy's
+    ``scipy_status`` and ``scipy_message``.
     """
 
     summary: dict[str, Any]
@@ -544,6 +590,51 @@ def split_rows(n: int, settings: FitSettings) -> Split:
             "(lower test_fraction / validation_fraction)"
         )
     return Split(order[n_test + n_val:], order[n_test:n_test + n_val], order[:n_test])
+
+
+def check_data(data: Dataset, split: Split, settings: FitSettings, n_params: int | None) -> list[str]:
+    """Refuse data that cannot be fitted or evaluated; return warnings (sentences) for data that are merely weak.
+
+    Raises ``ValueError`` when fewer than 2 rows are left for training, or when
+    a target column takes one value on every training row (there is nothing
+    to fit, and ``R^2`` is undefined). Warns when an input column is constant
+    on the training rows, when the training rows give fewer
+    target values than the network has parameters (``n_params``, ``None``
+    when the network is not built yet: it can then fit them exactly, and the
+    training error says little), and when the
+    validation or the test part is empty although its fraction is above 0.
+    """
+    n, n_train = data.X.shape[0], split.training.size
+    if n_train < 2:
+        raise ValueError(
+            f"{count(n_train, 'row')} left for training (of {count(n, 'data row')}); "
+            "fitting needs at least 2 training rows"
+        )
+    y_train = data.y[split.training]
+    for k, name in enumerate(data.target_names):
+        if np.all(y_train[:, k] == y_train[0, k]):
+            raise ValueError(
+                f"target column {name!r} is {y_train[0, k]:g} on all {n_train} training rows; "
+                "a constant cannot be fitted or evaluated"
+            )
+    warnings = []
+    X_train = data.X[split.training]
+    for j, name in enumerate(data.input_names):
+        if np.all(X_train[:, j] == X_train[0, j]):
+            warnings.append(f"input column {name!r} is {X_train[0, j]:g} on all {n_train} training rows: "
+                            "it cannot inform the fit")
+    values = y_train.size
+    if n_params is not None and values < n_params:
+        warnings.append(
+            f"{count(n_train, 'training row')} give {count(values, 'target value')} for {n_params} parameters: "
+            "the network can fit them exactly, so its training error says little; use fewer hidden units or more rows"
+        )
+    for part, fraction in (("validation", settings.validation_fraction), ("test", settings.test_fraction)):
+        if getattr(split, part).size == 0 and fraction > 0:
+            warnings.append(f"the {part} part is empty ({part}_fraction {fraction:g} of {count(n, 'row')} rounds "
+                            "to 0 rows): " + ("no validation loss is tracked" if part == "validation"
+                                              else "there is no error measured on unseen rows"))
+    return warnings
 
 
 def build_network(data: Dataset, split: Split, settings: FitSettings) -> Network:
@@ -603,9 +694,13 @@ def fit(
         return FitOutcome(summary, result.history, time.perf_counter() - started, network=net)
     solved = solve(net, X_train, y_train, method=settings.method, max_evaluations=settings.max_evaluations,
                    progress=progress)
+    stop_reason, sentence = solver_stop(solved)
     summary = {
         "success": solved.success,
-        "message": solved.message,
+        "stop_reason": stop_reason,
+        "message": sentence,
+        "scipy_status": solved.status,
+        "scipy_message": solved.message,
         "rss": solved.rss,
         "gradient_norm": solved.gradient_norm,
         "iterations": solved.iterations,
@@ -615,14 +710,57 @@ def fit(
     return FitOutcome(summary, None, time.perf_counter() - started, network=net)
 
 
+def solver_stop(result: SolveResult) -> tuple[str, str]:
+    """Why :func:`~tinyprop.solve.solve` stopped: ``(stop_reason, sentence)``, in words of our own.
+
+    ``stop_reason`` is ``"converged"``, ``"evaluation limit"`` or ``"no progress"``.
+    They come from scipy's status: Levenberg-Marquardt (``least_squares``,
+    ``method="lm"``) 0 evaluation limit, 1 gradient test (``gtol``), 2 relative
+    reduction of the residual sum of squares (``ftol``), 3 relative step
+    (``xtol``), 4 both 2 and 3; L-BFGS-B (``minimize``) 0 converged (the
+    projected gradient, or the relative reduction, told apart by scipy's
+    message), 1 evaluation or iteration limit, 2 the line search found no
+    lower loss. Any other status keeps scipy's message in the sentence.
+    """
+    limit = ("evaluation limit", "stopped at the evaluation limit before converging")
+    evaluations = f"{count(result.function_evaluations, 'evaluation')}, {count(result.iterations, 'iteration')}"
+    if result.method == "blocked-levenberg-marquardt":  # tinyprop's own engine: its message is already ours
+        reason = ("converged" if result.success else "evaluation limit" if "limit" in result.message
+                  else "no progress")
+        return reason, f"{result.message}; {evaluations}"
+    if result.method == "levenberg-marquardt":
+        reasons = {
+            0: limit,
+            1: ("converged", "converged on the gradient: the residuals are orthogonal to the Jacobian's columns "
+                             "to within the tolerance"),
+            2: ("converged", "converged on the relative reduction: the residual sum of squares no longer falls "
+                             "by more than the tolerance"),
+            3: ("converged", "converged on the step size: the steps no longer change the weights by more than "
+                             "the tolerance"),
+            4: ("converged", "converged on the relative reduction and the step size"),
+        }
+    else:
+        gradient = "REDUCTION" not in result.message.upper()
+        reasons = {
+            0: ("converged", "converged on the gradient: its largest component is below the tolerance" if gradient
+                else "converged on the relative reduction: the loss no longer falls by more than the tolerance"),
+            1: limit,
+            2: ("no progress", "stopped: the line search found no lower loss (float64 precision reached near a "
+                               "minimum, or a badly scaled problem)"),
+        }
+    reason, sentence = reasons.get(result.status, ("no progress", f"ended with solver status {result.status} "
+                                                                  f"({result.message})"))
+    return reason, f"{sentence}; {evaluations}"
+
+
 def _optimizer(settings: FitSettings, n_train: int) -> Optimizer:
     schedule = None
     if settings.schedule == "cosine":
         schedule = CosineSchedule(settings.epochs * math.ceil(n_train / settings.batch_size))
     if settings.optimizer == "sgd":
-        return SGD(settings.optimizer_lr(), momentum=settings.momentum, schedule=schedule)
+        return SGD(settings.optimizer_lr(), momentum=settings.momentum, schedule=schedule, clip_norm=settings.clip_norm)
     optimizer_class, _ = OPTIMIZERS[settings.optimizer]
-    return optimizer_class(settings.optimizer_lr(), schedule=schedule)
+    return optimizer_class(settings.optimizer_lr(), schedule=schedule, clip_norm=settings.clip_norm)
 
 
 def evaluate(net: Network, data: Dataset, rows: np.ndarray) -> dict[str, Any] | None:

@@ -73,6 +73,7 @@ import numpy as np
 
 from ._progress import ProgressLine
 from ._validate import as_samples, as_targets, positive_int, real_in_range
+from ._words import count
 from .blocked_lm import minimise
 from .evidence import log_evidence
 from .losses import SquaredError
@@ -195,9 +196,11 @@ def solve(
         default ``1000 * (n_params + 1)`` (L-BFGS: ``10000 * (n_params + 1)``;
         blocked: 2000 forward passes, each taken step counting one more).
     progress:
-        Show on stderr, at most twice a second and once at the end, the
-        evaluations so far, the lowest residual sum of squares seen and the
-        elapsed time (one line rewritten in place on a terminal).
+        Show on stderr the evaluations so far, the lowest residual sum of
+        squares seen and the elapsed time: on a terminal one line rewritten in
+        place at most twice a second; in a log file or a pipe a line at the
+        first evaluation, at every tenth of ``max_evaluations`` and at the end
+        (at most a dozen lines, the cadence of the epoch lines of training).
 
     >>> import numpy as np, tinyprop as tp
     >>> x = np.linspace(-2, 2, 20).reshape(-1, 1)
@@ -329,6 +332,8 @@ class _Progress:
         self.lowest = math.inf
         self.started = time.perf_counter()
         self.line = ProgressLine(every=0.5)
+        self.log_step = max(1, max_evaluations // 10)  # not on a terminal: a line per tenth of the limit
+        self.next_logged = 1
 
     def evaluated(self, rss: float, *, with_derivative: bool = False) -> None:
         self.evaluations += 1
@@ -346,10 +351,15 @@ class _Progress:
         self.line.finish()
 
     def _show(self, force: bool = False) -> None:
-        what = "gradients" if self.method == "lbfgs" else "Jacobians"
+        if not force and not self.line.terminal:
+            if self.evaluations < self.next_logged:
+                return
+            self.next_logged = (self.evaluations // self.log_step + 1) * self.log_step
+            force = True
+        what = "gradient" if self.method == "lbfgs" else "Jacobian"
         self.line.show(
-            f"{self.method}: {self.evaluations} of at most {self.max_evaluations} evaluations, "
-            f"{self.derivatives} {what}, lowest rss {self.lowest:.6g}, "
+            f"{self.method}: {self.evaluations} of at most {count(self.max_evaluations, 'evaluation')}, "
+            f"{count(self.derivatives, what)}, lowest rss {self.lowest:.6g}, "
             f"elapsed {time.perf_counter() - self.started:.1f} s",
             force=force,
         )

@@ -1,7 +1,7 @@
 """The ``tinyprop`` command (also ``python -m tinyprop``).
 
 Subcommands, one module each: ``demo``, ``train``, ``check``, ``inspect``,
-``export``, ``predict``, ``bench``, ``certify``. Every module has ``add_arguments(parser)`` and
+``export``, ``predict``, ``bench``, ``certify``, ``docs``. Every module has ``add_arguments(parser)`` and
 ``run(args) -> int``; :func:`main` parses, dispatches and turns user mistakes
 and failures into one line on stderr:
 
@@ -22,8 +22,8 @@ import sys
 from typing import NoReturn, Sequence
 
 from .._version import __version__
-from . import bench_cmd, certify_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, predict_cmd, train_cmd
-from ._common import USAGE, CommandError, describe_os_error
+from . import bench_cmd, certify_cmd, check_cmd, demo_cmd, docs_cmd, export_cmd, inspect_cmd, predict_cmd, train_cmd
+from ._common import USAGE, CommandError, describe_os_error, option_words
 
 __all__ = ["main"]
 
@@ -36,6 +36,7 @@ COMMANDS = {
     "predict": predict_cmd,
     "bench": bench_cmd,
     "certify": certify_cmd,
+    "docs": docs_cmd,
 }
 
 SHORT_HELP = f"""tinyprop {__version__}: verified multilayer perceptrons for controllers, instruments and test rigs
@@ -45,7 +46,8 @@ Start here:   tinyprop demo        (the whole job on synthetic data in a few sec
 Commands:
 """ + "\n".join(f"  {name:<9}{module.HELP}" for name, module in COMMANDS.items()) + """
 
-'tinyprop <command> --help' shows a command's options. Documentation: docs/cli.md in the tinyprop source.
+'tinyprop <command> --help' shows a command's options; 'tinyprop docs' lists the guides shipped with
+tinyprop and 'tinyprop docs cli' prints the full guide to the command line.
 """
 
 
@@ -89,7 +91,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return COMMANDS[args.command].run(args)
     except CommandError as exc:
-        print(f"{prefix} {exc}", file=sys.stderr)
+        print(f"{prefix} {option_words(str(exc))}", file=sys.stderr)
         return exc.status
     except OSError as exc:  # a file that could not be read or written, reported without a traceback
         print(f"{prefix} {describe_os_error(exc)}", file=sys.stderr)

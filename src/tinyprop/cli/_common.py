@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import json
 import os
+import re
+import sys
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -31,6 +34,31 @@ class CommandError(Exception):
     def __init__(self, message: str, status: int = FAILURE) -> None:
         super().__init__(message)
         self.status = status
+
+
+# Phrases of library messages that name a Python argument, and the command-line words for them. Every error
+# and warning line a command prints passes through option_words (in cli.main and warn): this is the one place.
+# tests/test_cli_first_use.py checks that each phrase still occurs in the library's source.
+OPTION_WORDS: tuple[tuple[str, str], ...] = (
+    (r"use method='([a-z-]+)'", r"use --method \1"),
+    (r"\(lr=([^)]*)\) or set clip_norm on the optimizer", r"(--learning-rate \1) or set --clip-norm"),
+    (r"\b(test|validation)_fraction\b", r"--\1-fraction"),
+    (r"use fewer hidden units", "use a smaller --hidden"),
+    (r"choose other starting weights", "try another --seed"),
+    (r"see docs/([a-z-]+)\.md", r"see 'tinyprop docs \1'"),
+)
+
+
+def option_words(message: str) -> str:
+    """``message`` with the Python arguments it names replaced by command-line options (``OPTION_WORDS``)."""
+    for pattern, replacement in OPTION_WORDS:
+        message = re.sub(pattern, replacement, message)
+    return message
+
+
+def warn(command: str, message: str) -> None:
+    """One warning line on stderr: ``tinyprop <command>: warning: <message>`` (in option words)."""
+    print(f"tinyprop {command}: warning: {option_words(message)}", file=sys.stderr)
 
 
 def describe_os_error(exc: OSError) -> str:
@@ -70,6 +98,48 @@ def _unregistered_activations(path: str) -> list[str]:
 
 
 def read_table(path: str, delimiter: str) -> CsvTable:
+    """:func:`read_table_and_units` without the units: columns named without their ``[unit]``."""
+    return read_table_and_units(path, delimiter)[0]
+
+
+def read_table_and_units(path: str, delimiter: str) -> tuple[CsvTable, dict[str, str]]:
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`) and split the units off its header (:func:`split_units`).
+
+    Every problem becomes a one-line :class:`CommandError`.
+    """
+    try:
+        return split_units(_read_csv(path, delimiter))
+    except CsvError as exc:
+        raise CommandError(str(exc)) from None
+
+
+_UNIT = re.compile(r"(?P<name>.*?\S)\s+\[(?P<unit>[^\[\]]*)\]")  # a space before "[": x[0] stays a name
+
+
+def split_units(table: CsvTable) -> tuple[CsvTable, dict[str, str]]:
+    """A header cell ``name [unit]`` names the column ``name`` and gives its unit ``unit``.
+
+    Returns the table with the bare names and a dict of the units. A cell
+    without a space and ``[...]`` at its end (``note``, ``x[0]``) is a name
+    with no unit. Two cells that give one name are refused (:class:`CsvError`).
+
+    >>> table, units = split_units(CsvTable("p.csv", ("speed [rpm]", "head [m]", "note", "x[0]"), (), ()))
+    >>> table.columns, units
+    (('speed', 'head', 'note', 'x[0]'), {'speed': 'rpm', 'head': 'm'})
+    """
+    names, units = [], {}
+    for cell in table.columns:
+        match = _UNIT.fullmatch(cell)
+        name = match["name"] if match else cell
+        if name in names:
+            raise CsvError(f"{table.path}: the header names the column {name!r} twice (with its unit or without)")
+        names.append(name)
+        if match and match["unit"].strip():
+            units[name] = match["unit"].strip()
+    return replace(table, columns=tuple(names)), units
+
+
+def _read_csv(path: str, delimiter: str) -> CsvTable:
     """Read a CSV file (:func:`tinyprop.csvdata.read_csv`); every problem becomes a one-line :class:`CommandError`."""
     try:
         return read_csv(path, delimiter=delimiter)

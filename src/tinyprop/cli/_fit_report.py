@@ -20,12 +20,11 @@ from ._common import SAFETY, USAGE, CommandError
 
 
 def split_for_command(n: int, settings: FitSettings) -> Split:
-    """:func:`tinyprop.recipes.split_rows`, its refusal as a usage error naming the options."""
+    """:func:`tinyprop.recipes.split_rows`, its refusal as a usage error (in option words, by ``cli.main``)."""
     try:
         return split_rows(n, settings)
     except ValueError as exc:
-        raise CommandError(str(exc).replace("test_fraction / validation_fraction",
-                                            "--test-fraction / --validation-fraction"), USAGE) from None
+        raise CommandError(str(exc), USAGE) from None
 
 
 def architecture(net: Network) -> str:
@@ -44,7 +43,7 @@ def architecture(net: Network) -> str:
 def model_metadata(
     data: Dataset, settings: FitSettings, description: str, outcome: FitOutcome | None = None
 ) -> dict[str, Any]:
-    """What the model file keeps: names of inputs and outputs (used by ``export``), a description, the recipe.
+    """What the model file keeps: input and output names and units (used by ``export``), a description, the recipe.
 
     For the default recipe's methods also the branch it chose and why (``training.fit``).
     """
@@ -53,8 +52,7 @@ def model_metadata(
         training["fit"] = {"recipe_method": outcome.recipe.method, "reason": outcome.recipe.reason}
     return {
         "description": description,
-        "inputs": [{"name": name} for name in data.input_names],
-        "outputs": [{"name": name} for name in data.target_names],
+        **data.ports(),
         "training": training,
     }
 
@@ -78,7 +76,7 @@ def report(
         "command": command,
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "data": {**data.source, "rows": int(data.X.shape[0]), "inputs": list(data.input_names),
-                 "targets": list(data.target_names), "split": split.sizes()},
+                 "targets": list(data.target_names), "units": dict(data.units), "split": split.sizes()},
         "settings": settings.to_dict(),
         "network": {"fingerprint": fingerprint(net), "n_params": net.n_params, "dtype": net.dtype.name,
                     "architecture": architecture(net)},

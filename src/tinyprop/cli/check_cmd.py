@@ -22,6 +22,7 @@ import sys
 
 import numpy as np
 
+from .._words import count
 from ..check import check_gradient
 from ..layers import Standardize, Unstandardize
 from ..losses import MeanSquaredError
@@ -69,7 +70,7 @@ def run(args: argparse.Namespace) -> int:
     rng = np.random.default_rng(args.seed)
     if args.data:
         X, y = _rows_from_csv(args, model.metadata, net, rng)
-        source = f"{X.shape[0]} rows of {args.data}"
+        source = f"{count(X.shape[0], 'row')} of {args.data}"
     else:
         X, y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from ..check import check_gradient
-from ..datasets.battery import BATTERY_COLUMNS, BATTERY_TARGET, battery_pack, write_battery_csv
+from ..datasets.battery import BATTERY_TARGET, battery_pack, write_battery_csv
 from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from ..losses import MeanSquaredError
 from ..modelfile import save
@@ -58,7 +58,7 @@ def run(args: argparse.Namespace) -> int:
         "synthetic": True,
         "description": SYNTHETIC,
         "generator": f"tinyprop.datasets.battery_pack({N_ROWS}, seed={DATA_SEED})",
-    })
+    }, UNITS)
     split = split_rows(N_ROWS, DEMO_SETTINGS)
     sizes = split.sizes()
     _step(1, "data", f"{N_ROWS} synthetic rows: {sizes['training']} training, {sizes['validation']} validation, "
@@ -96,7 +96,7 @@ def run(args: argparse.Namespace) -> int:
     files["integer C"] = [fixed.header, fixed.source]
     files["report"] = [out / "report.json"]
     plots, plot_note = write_plots(out, outcome.history, data.y[split.test], net.predict(data.X[split.test]),
-                                   [BATTERY_TARGET], "SYNTHETIC battery demo")
+                                   [data.label(BATTERY_TARGET)], "SYNTHETIC battery demo")
     if plots:
         files["plots"] = plots
     timings["write"] = time.perf_counter() - clock
@@ -136,11 +136,9 @@ def _step(number: int, label: str, text: str, flush: bool = False) -> None:
 
 def _save_and_export(out: Path, net: Network, data: Dataset, outcome: FitOutcome) -> dict[str, list[Path]]:
     """The model file (with names, units and a description), C and Python code, and the data as CSV."""
-    inputs = [{"name": name, "unit": UNITS[name]} for name in BATTERY_COLUMNS]
-    outputs = [{"name": BATTERY_TARGET, "unit": UNITS[BATTERY_TARGET]}]
     description = f"tinyprop demo: battery state of charge. {SYNTHETIC}."
-    metadata = {**model_metadata(data, DEMO_SETTINGS, description, outcome), "inputs": inputs, "outputs": outputs}
-    export_metadata = {"inputs": inputs, "outputs": outputs, "description": description}
+    metadata = model_metadata(data, DEMO_SETTINGS, description, outcome)
+    export_metadata = {**data.ports(), "description": description}
     model = out / f"{NAME}.npz"
     save(net, model, metadata=metadata)
     return {
@@ -155,10 +153,8 @@ def _export_fixed_point(
     out: Path, net: Network, data: Dataset, training: np.ndarray, test: np.ndarray
 ) -> FixedPointReport:
     """Integer-only C calibrated on the training rows (the test rows stay unseen, as on a device)."""
-    metadata = {"inputs": [{"name": name, "unit": UNITS[name]} for name in BATTERY_COLUMNS],
-                "outputs": [{"name": BATTERY_TARGET, "unit": UNITS[BATTERY_TARGET]}]}
     return export_c_fixed_point(net, output_folder(out / "c-fixed"), data.X[training], name=f"{NAME}_q",
-                                metadata=metadata)
+                                metadata=data.ports())
 
 
 def _fixed_point_test_error(fixed: FixedPointReport, net: Network, X: np.ndarray) -> dict[str, Any]:

@@ -11,7 +11,6 @@ columns of a ``--calibration`` CSV file.
 from __future__ import annotations
 
 import argparse
-import sys
 from typing import Any
 
 import numpy as np
@@ -31,6 +30,7 @@ from ._common import (
     read_table,
     require_columns,
     stored_names,
+    warn,
 )
 from ._imports import add_import_option, import_modules
 
@@ -108,7 +108,7 @@ def run(args: argparse.Namespace) -> int:
     if agreement is not None:
         print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
         for warning in report.warnings:
-            print(f"tinyprop export: warning: {warning}", file=sys.stderr)
+            warn("export", warning)
     return 0
 
 

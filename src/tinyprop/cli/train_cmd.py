@@ -11,10 +11,12 @@ import time
 from pathlib import Path
 from typing import Any
 
+from .._words import count
 from ..csvdata import CsvTable
 from ..modelfile import save
 from ..recipes import (
     ACTIVATIONS,
+    APPLIES_ONLY_TO,
     METHODS,
     OPTIMIZERS,
     RECIPE_METHODS,
@@ -22,6 +24,7 @@ from ..recipes import (
     Dataset,
     FitSettings,
     build_network,
+    check_data,
     evaluate_all,
     fit,
     least_squares_uncertainty,
@@ -33,29 +36,24 @@ from ._common import (
     describe_os_error,
     numeric_columns,
     output_folder,
-    read_table,
+    read_table_and_units,
     require_columns,
+    warn,
     write_json,
     write_plots,
 )
 from ._fit_report import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
+EPILOG = "The CSV format, exactly what train does and the report's keys: 'tinyprop docs cli'."
 
-# (option, the option it depends on, the values of that option it applies to), checked in this order
-_APPLIES_ONLY_TO = (
-    *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
-    ("max_evaluations", "method", ("levenberg-marquardt", "lbfgs")),
-    ("restarts", "method", ("auto", "evidence-lm")),
-    ("momentum", "optimizer", ("sgd",)),
-)
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     defaults = FitSettings()
     data = parser.add_argument_group("data")
-    data.add_argument("data", metavar="DATA.csv", help="CSV file with a header row of column names")
+    data.add_argument("data", metavar="DATA.csv", help="CSV file with a header row of column names; a header cell "
+                                                       "'head [m]' names the column head with the unit m")
     data.add_argument("--targets", type=_args.names, action="extend", required=True, metavar="NAMES",
                       help="column(s) to predict, comma-separated (required)")
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
@@ -105,6 +103,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
                               f"(default {defaults.schedule})")
     fitting.add_argument("--momentum", type=_args.momentum, help=f"momentum of sgd (default {defaults.momentum:g})")
+    fitting.add_argument("--clip-norm", type=_args.positive_float, metavar="C",
+                         help="scale each update's gradient down to global norm C when it is larger "
+                              "(default: no clipping)")
     fitting.add_argument("--epochs", type=_args.positive_int,
                          help=f"passes over the training rows (default {defaults.epochs})")
     fitting.add_argument("--batch-size", type=_args.positive_int, metavar="N",
@@ -135,7 +136,7 @@ def run(args: argparse.Namespace) -> int:
     plots = output_folder(args.plots) if args.plots else None
     started = time.perf_counter()
     try:
-        table = read_table(args.data, args.delimiter)
+        table, units = read_table_and_units(args.data, args.delimiter)
     except CommandError:
         if refusal is not None:
             raise refusal from None  # the command line's mistake first, as without class targets
@@ -152,18 +153,24 @@ def run(args: argparse.Namespace) -> int:
     if args.class_weights is not None:
         raise CommandError("--class-weights applies to a class target; the targets are numeric "
                            "(mark a column of numeric class codes with --classes)", USAGE)
-    data = _dataset(args, table, targets, inputs)
+    data = _dataset(args, table, units, targets, inputs)
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
     recipe = settings.method in RECIPE_METHODS
     net = None if recipe else build_network(data, split, settings)
-    print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
-          f"targets {', '.join(data.target_names)}")
+    try:  # the recipe's methods build their network during the fit: no parameter count yet
+        weaknesses = check_data(data, split, settings, None if net is None else net.n_params)
+    except ValueError as exc:  # too few rows, a constant target
+        raise CommandError(f"{args.data}: {exc}") from None
+    print(f"data: {args.data}: {count(data.X.shape[0], 'row')}; inputs {', '.join(map(data.label, data.input_names))}; "
+          f"targets {', '.join(map(data.label, data.target_names))}")
     sizes = split.sizes()
     print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
           f"{sizes['test']} test rows")
     if net is not None:
         print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
+    for weakness in weaknesses:
+        warn("train", f"{args.data}: {weakness}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
         outcome = fit(net, data, split, settings, progress=not args.quiet)
@@ -175,8 +182,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"method chosen: {outcome.recipe.method} ({outcome.recipe.reason})")
         print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")
-    if outcome.summary.get("success") is False and outcome.recipe is None:
-        print("     the solver did not report convergence: raise --max-evaluations, or check the data and network size")
+    if outcome.summary.get("stop_reason") == "evaluation limit" and outcome.recipe is None:
+        print("     raise --max-evaluations, or check the data and the network size")
     started = time.perf_counter()
     metrics = evaluate_all(net, data, split)
     extra: dict[str, Any] = {}
@@ -185,7 +192,7 @@ def run(args: argparse.Namespace) -> int:
     elif settings.method in ("levenberg-marquardt", "lbfgs"):
         extra["uncertainty"] = least_squares_uncertainty(net, data, split)
     evaluate_seconds = time.perf_counter() - started
-    _print_metrics(metrics)
+    _print_metrics(metrics, data)
     if "uncertainty" in extra:
         print(_uncertainty_line(extra["uncertainty"]))
 
@@ -204,7 +211,7 @@ def run(args: argparse.Namespace) -> int:
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
         written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
-                                    list(data.target_names), Path(args.data).name, label)
+                                    [data.label(name) for name in data.target_names], Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
         if note:
@@ -216,7 +223,7 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     """The fit settings: options not given (``None``) take the defaults of :class:`FitSettings`.
 
     An option given with a ``--method`` (or ``--optimizer``) it does not apply
-    to is refused (``_APPLIES_ONLY_TO``), never silently ignored.
+    to is refused (:data:`tinyprop.recipes.APPLIES_ONLY_TO`), never silently ignored.
     """
     if args.validation_fraction + args.test_fraction >= 1.0:
         raise CommandError(
@@ -229,7 +236,7 @@ def _settings(args: argparse.Namespace) -> FitSettings:
         given = getattr(args, option)
         return getattr(defaults, option) if given is None else given
 
-    for option, depends_on, values in _APPLIES_ONLY_TO:
+    for option, depends_on, values in APPLIES_ONLY_TO:
         if getattr(args, option) is not None and value(depends_on) not in values:
             raise CommandError(f"{_flag(option)} applies to {_flag(depends_on)} {' or '.join(values)}, "
                                f"not {value(depends_on)}", USAGE)
@@ -241,14 +248,14 @@ def _settings(args: argparse.Namespace) -> FitSettings:
     return FitSettings(
         hidden=args.hidden, activation=args.activation, method=args.method, seed=args.seed,
         validation_fraction=args.validation_fraction, test_fraction=args.test_fraction, dtype=args.dtype,
-        **{option: value(option) for option, _, _ in _APPLIES_ONLY_TO},
+        **{option: value(option) for option, _, _ in APPLIES_ONLY_TO},
     )
 
 
 def _applicability() -> str:
-    """``_APPLIES_ONLY_TO`` in words, for ``--help``."""
+    """:data:`tinyprop.recipes.APPLIES_ONLY_TO` in words, for ``--help``."""
     groups: dict[tuple[str, tuple[str, ...]], list[str]] = {}
-    for option, depends_on, values in _APPLIES_ONLY_TO:
+    for option, depends_on, values in APPLIES_ONLY_TO:
         groups.setdefault((depends_on, values), []).append(_flag(option))
     text = "; ".join(f"{', '.join(flags)} only with {_flag(depends_on)} {' or '.join(values)}"
                      for (depends_on, values), flags in groups.items())
@@ -260,11 +267,13 @@ def _flag(option: str) -> str:
     return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
-def _dataset(args: argparse.Namespace, table: CsvTable, targets: list[str], inputs: list[str]) -> Dataset:
+def _dataset(args: argparse.Namespace, table: CsvTable, units: dict[str, str], targets: list[str],
+             inputs: list[str]) -> Dataset:
     X, y = numeric_columns(table, inputs, targets)
     with open(args.data, "rb") as handle:
         digest = hashlib.sha256(handle.read()).hexdigest()
-    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest})
+    used = {name: unit for name, unit in units.items() if name in inputs or name in targets}
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest}, used)
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
@@ -315,10 +324,11 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
             f"rows {widths} (per-parameter standard errors and input sensitivities in the report)")
 
 
-def _print_metrics(metrics: dict[str, Any]) -> None:
+def _print_metrics(metrics: dict[str, Any], data: Dataset) -> None:
     for part in ("training", "validation", "test"):
         result = metrics[part]
         if result is None:
             continue
-        values = ", ".join(f"{name} {m['rmse']:.4g}" for name, m in result["targets"].items())
-        print(f"{part} RMSE ({result['rows']} rows): {values}")
+        values = ", ".join(f"{name} {m['rmse']:.4g}" + (f" {data.units[name]}" if name in data.units else "")
+                           for name, m in result["targets"].items())
+        print(f"{part} RMSE ({count(result['rows'], 'row')}): {values}")

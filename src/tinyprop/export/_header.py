@@ -11,6 +11,7 @@ import re
 import textwrap
 
 from .._version import __version__
+from .._words import count as counted
 from ..modelfile import fingerprint
 from ..network import Network
 from ._activations import activation_kind
@@ -72,7 +73,7 @@ def header_lines(title: str, plan: Plan, metadata: Metadata, origin: Provenance,
 
 def _ports(label: str, symbol: str, count: int, ports: tuple[Port, ...]) -> list[str]:
     if not ports:
-        return [f"{label}: {symbol}[0] .. {symbol}[{count - 1}] ({count} values; no names or units given)"]
+        return [f"{label}: {symbol}[0] .. {symbol}[{count - 1}] ({counted(count, 'value')}; no names or units given)"]
     lines = [f"{label}, in this order (name [unit]):"]
     for index, port in enumerate(ports):
         unit = f" [{comment_text(port.unit)}]" if port.unit else ""

@@ -75,21 +75,29 @@ def c_header(
 
 
 def output_directory(path: Any) -> Path:
-    """``path`` as an existing directory, or a ``ValueError`` saying what it is instead."""
+    """``path`` as a directory to write into, or a ``ValueError`` when it is an existing file.
+
+    The rule of every export function (and of the ``tinyprop`` command): a
+    missing directory, and its missing parents, are created when the first
+    file is written (:func:`write_source`), so a refused call creates nothing.
+    """
     directory = Path(path)
-    if not directory.is_dir():
-        what = "is a file" if directory.exists() else "does not exist"
+    if directory.exists() and not directory.is_dir():
         raise ValueError(
-            f"path must be an existing directory (the files are named after `name`), but {str(directory)!r} {what}"
+            f"path must be a directory (the files are named after `name`), but {str(directory)!r} is a file"
         )
     return directory
 
 
 def write_source(directory: Path, filename: str, text: str) -> Path:
-    """Write generated source with LF line ends; it must be printable ASCII (a guard against bugs)."""
+    """Write generated source with LF line ends, creating ``directory`` if missing; printable ASCII only.
+
+    The ASCII check is a guard against bugs.
+    """
     stray = sorted({c for c in text if not (" " <= c <= "~" or c == "\n")})
     if stray:
         raise RuntimeError(f"generated {filename} holds the characters {stray}; this is a bug in tinyprop")
+    directory.mkdir(parents=True, exist_ok=True)
     target = directory / filename
     with open(target, "w", encoding="ascii", newline="\n") as handle:
         handle.write(text)

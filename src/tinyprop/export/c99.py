@@ -35,6 +35,7 @@ from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
+from .._words import count
 from ..network import Network
 from ._activations import activation_kind, c_body, c_input_limit, function_names
 from ._header import Provenance, header_lines, provenance
@@ -63,14 +64,15 @@ def export_c(
     literals: str = "decimal",
     labels: Sequence[str] | None = None,
 ) -> tuple[Path, ...]:
-    """Write ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
+    """Write ``<name>.h`` and ``<name>.c`` into the directory ``path`` (created if missing).
 
     Parameters
     ----------
     net:
         The network to export. It is not modified.
     path:
-        An existing directory; files of the same names are overwritten.
+        A directory, created with its parents if missing; files of the same names
+        are overwritten.
     name:
         Prefix of every generated identifier (``<name>_predict``,
         ``<NAME>_N_INPUTS``, ...): ``[A-Za-z][A-Za-z0-9_]{0,63}``, not a C
@@ -181,7 +183,7 @@ class _Writer:
         return [
             f"Interface (declared in {self.name}.h):",
             f"  {self.signature};",
-            f"  x holds {self.macro}_N_INPUTS = {self.plan.n_in} values, y receives "
+            f"  x holds {self.macro}_N_INPUTS = {count(self.plan.n_in, 'value')}, y receives "
             f"{self.macro}_N_OUTPUTS = {self.plan.n_out}; x and y may be the same array.",
             f"Arithmetic: {self.ctype} (IEEE 754 binary{size * 8}) throughout. No dynamic allocation,",
             "no mutable global state (reentrant); the only dependency is <math.h>.",

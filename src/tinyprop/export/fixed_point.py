@@ -47,6 +47,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .._validate import as_samples
+from .._words import count
 from ..network import Network
 from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
 from ._fixed_program import (
@@ -97,7 +98,9 @@ class FixedPointReport:
     (largest minus smallest reference output; ``nan`` where that is 0).
     ``input_saturations`` counts inputs clamped by the conversion; each
     step's own count is in ``steps``. ``warnings`` names every step that
-    saturated on the calibration rows.
+    saturated on the calibration rows. ``output_labels`` are the outputs'
+    names with their units (``"head [m]"``) from the metadata, empty without
+    names; the printed table uses them instead of ``y[k]``.
     """
 
     header: Path
@@ -114,7 +117,12 @@ class FixedPointReport:
     output_range: np.ndarray
     warnings: tuple[str, ...]
     program: IntegerProgram = field(repr=False)
+    output_labels: tuple[str, ...] = ()  # "name [unit]" per output from the metadata; y[k] without names
     class_files: tuple[Path, ...] = ()  # <name>_classes.h / .c when labels were given
+
+    def output_label(self, k: int) -> str:
+        """Output ``k``'s name and unit from the metadata (``"head [m]"``), or ``"y[k]"`` without names."""
+        return self.output_labels[k] if self.output_labels else f"y[{k}]"
 
     @property
     def max_rel_error(self) -> np.ndarray:
@@ -144,8 +152,8 @@ class FixedPointReport:
         return {"input": clamped, **{step.label: count for step, count in zip(self.program.steps, counts)}}
 
     def __str__(self) -> str:
-        rows = [f"Fixed-point export {self.header.name} / {self.source.name}: {len(self.input_bits)} inputs, "
-                f"{len(self.output_bits)} outputs, {self.n_calibration} calibration rows, "
+        rows = [f"Fixed-point export {self.header.name} / {self.source.name}: {count(len(self.input_bits), 'input')}, "
+                f"{count(len(self.output_bits), 'output')}, {count(self.n_calibration, 'calibration row')}, "
                 f"headroom {self.headroom:g}",
                 f"  inputs: {describe_formats(self.input_bits)}; saturated on calibration rows: "
                 f"{self.input_saturations}",
@@ -155,10 +163,12 @@ class FixedPointReport:
             constants = describe_formats(step.constant_bits) if step.constant_bits else "-"
             rows.append(f"  {step.layer:>5}  {step.description[:40]:<40} {constants:<14} {bias:<5} "
                         f"{describe_formats(step.result_bits):<14} {step.saturations}")
-        rows.append(f"  {'output':<7} {'format':<7} {'max |error|':>12} {'rms error':>12} {'range':>12} "
+        width = max([7] + [len(self.output_label(k)) for k in range(len(self.output_bits))])
+        rows.append(f"  {'output':<{width}} {'format':<7} {'max |error|':>12} {'rms error':>12} {'range':>12} "
                     f"{'max/range':>10} {'rms/range':>10}")
         for k, bits in enumerate(self.output_bits):
-            rows.append(f"  y[{k}]{'':<3} Q{bits:<6} {self.max_abs_error[k]:>12.4g} {self.rms_error[k]:>12.4g} "
+            rows.append(f"  {self.output_label(k):<{width}} Q{bits:<6} {self.max_abs_error[k]:>12.4g} "
+                        f"{self.rms_error[k]:>12.4g} "
                         f"{self.output_range[k]:>12.4g} {self.max_rel_error[k]:>10.3g} "
                         f"{self.rms_rel_error[k]:>10.3g}")
         rows += [f"  {table}" for table in self.tables]
@@ -181,7 +191,7 @@ def export_c_fixed_point(
     metadata: Mapping[str, Any] | None = None,
     labels: Sequence[str] | None = None,
 ) -> FixedPointReport:
-    """Write integer-only ``<name>.h`` and ``<name>.c`` into the existing directory ``path``.
+    """Write integer-only ``<name>.h`` and ``<name>.c`` into the directory ``path`` (created if missing).
 
     Parameters
     ----------
@@ -191,7 +201,8 @@ def export_c_fixed_point(
         Affine, Standardize and Unstandardize layers; at least one Affine. It
         is not modified.
     path:
-        An existing directory; files of the same names are overwritten.
+        A directory, created with its parents if missing; files of the same names
+        are overwritten.
     calibration_X:
         Inputs ``(n, n_in)``, finite, covering the range the device will see:
         every format between steps is chosen from the largest magnitude these
@@ -240,8 +251,8 @@ def export_c_fixed_point(
     reference = (net if net.dtype == np.float64 else net.copy(dtype=np.float64)).predict(X)
     error = program.to_values(y_q) - reference
     steps = tuple(_step_format(step, count) for step, count in zip(program.steps, counts))
-    warnings = ([f"input conversion saturated {input_saturations} values"] if input_saturations else [])
-    warnings += [f"layer {s.layer} ({s.description}) saturated {s.saturations} values"
+    warnings = ([f"input conversion saturated {count(input_saturations, 'value')}"] if input_saturations else [])
+    warnings += [f"layer {s.layer} ({s.description}) saturated {count(s.saturations, 'value')}"
                  for s in steps if s.saturations]
     tables = tuple(dict.fromkeys(step.table.describe() for step in program.steps if isinstance(step, QTable)))
     report_numbers = dict(
@@ -249,7 +260,9 @@ def export_c_fixed_point(
         output_range=np.max(reference, axis=0) - np.min(reference, axis=0))
 
     origin = provenance(net)
-    interface = _interface(name, program, float(headroom), len(X), steps, tables, report_numbers, warnings)
+    output_labels = tuple(f"{p.name} [{p.unit}]" if p.unit else p.name for p in meta.outputs)
+    interface = _interface(name, program, float(headroom), len(X), steps, tables, report_numbers, warnings,
+                           output_labels)
 
     def comment(filename: str) -> list[str]:
         lines = header_lines(f"{filename}: neural-network inference in C99 with integers only, generated by tinyprop",
@@ -261,7 +274,7 @@ def export_c_fixed_point(
     class_files = () if classes is None else write_fixed_classes(directory, name, classes, program.out_bits)
     return FixedPointReport(header, source, float(headroom), len(X), program.in_bits, program.out_bits,
                             input_saturations, steps, tables, warnings=tuple(warnings), program=program,
-                            class_files=tuple(class_files), **report_numbers)
+                            class_files=tuple(class_files), output_labels=output_labels, **report_numbers)
 
 
 def _step_format(step, count: int) -> StepFormat:
@@ -276,7 +289,8 @@ def _step_format(step, count: int) -> StepFormat:
 
 
 def _interface(name: str, program: IntegerProgram, headroom: float, n_rows: int, steps: tuple[StepFormat, ...],
-               tables: tuple[str, ...], numbers: dict[str, np.ndarray], warnings: list[str]) -> list[str]:
+               tables: tuple[str, ...], numbers: dict[str, np.ndarray], warnings: list[str],
+               labels: tuple[str, ...]) -> list[str]:
     macro = name.upper()
     widths = buffer_widths(program)
     stack = 2 * sum(widths.values())
@@ -312,7 +326,9 @@ def _interface(name: str, program: IntegerProgram, headroom: float, n_rows: int,
     for k in range(len(program.out_bits)):
         spread = numbers["output_range"][k]
         relative = f"{numbers['max_abs_error'][k] / spread:.3g}" if spread > 0 else "n/a"
-        lines.append(f"  y[{k}]: largest |error| {numbers['max_abs_error'][k]:.3g}, rms {numbers['rms_error'][k]:.3g}, "
+        named = f" ({comment_text(labels[k])})" if labels else ""
+        lines.append(f"  y[{k}]{named}: largest |error| {numbers['max_abs_error'][k]:.3g}, "
+                     f"rms {numbers['rms_error'][k]:.3g}, "
                      f"largest / observed range {relative}")
     lines += [f"WARNING: {comment_text(w)} on the calibration rows." for w in warnings] or [
         "No saturation on the calibration rows; inputs beyond them may saturate (clamp)."]

@@ -62,14 +62,15 @@ def export_python(
     metadata: Mapping[str, Any] | None = None,
     labels: Sequence[str] | None = None,
 ) -> Path:
-    """Write ``<name>.py`` into the existing directory ``path`` and return its path.
+    """Write ``<name>.py`` into the directory ``path`` (created if missing); return its path.
 
     Parameters
     ----------
     net:
         The network to export. It is not modified.
     path:
-        An existing directory; a file of the same name is overwritten.
+        A directory, created with its parents if missing; a file of the same name
+        is overwritten.
     name:
         The module name: ``[A-Za-z_][A-Za-z0-9_]{0,63}``, not a C or Python
         keyword, and not the name of a standard-library module (which the
