@@ -10,6 +10,7 @@ file are compared with copies taken before the call. All data is synthetic.
 from __future__ import annotations
 
 import copy
+import dataclasses
 import re
 import zipfile
 from dataclasses import dataclass
@@ -151,6 +152,46 @@ def _resume_with_other_batch_size(inputs: Inputs) -> Any:
     return _train(inputs, batch_size=2, seed=0, resume=first.state)
 
 
+def _first_state(inputs: Inputs, net: tp.Network | None = None, **options: Any) -> Any:
+    """The state after one epoch of a run like ``_train``'s (on a copy of the network), with validation."""
+    settings = {"loss": tp.MeanSquaredError(), "epochs": 1, "batch_size": 4, "seed": 0,
+                "validation": (inputs.X, inputs.y)}
+    settings.update(options)
+    return train(net or inputs.net.copy(), inputs.X, inputs.y, optimizer=Adam(lr=0.01), **settings).state
+
+
+def _resume(inputs: Inputs, state: Any, **options: Any) -> Any:
+    return _train(inputs, seed=0, validation=(inputs.X, inputs.y), resume=state, **options)
+
+
+def _resume_best_epoch_without_best_weights(inputs: Inputs) -> Any:
+    state = dataclasses.replace(_first_state(inputs, patience=2), best_weights=None, best_loss=-1.0)
+    return _resume(inputs, state, patience=2)
+
+
+def _resume_optimizer_wrong_shape(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    arrays = {name: np.zeros(3) for name in state.optimizer.arrays}
+    return _resume(inputs, dataclasses.replace(state, optimizer=dataclasses.replace(state.optimizer, arrays=arrays)))
+
+
+def _resume_rng_out_of_range(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    state.rng["state"]["state"] = 2**200
+    return _resume(inputs, state)
+
+
+def _resume_other_activation(inputs: Inputs) -> Any:
+    other = tp.Network([tp.Affine(3, 4), tp.Sigmoid(), tp.Affine(4, 2)], seed=0)
+    return _resume(inputs, _first_state(inputs, other))
+
+
+def _resume_other_data(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    return train(inputs.net, inputs.X[::-1], inputs.y, loss=tp.MeanSquaredError(), optimizer=inputs.optimizer,
+                 epochs=2, batch_size=4, seed=0, validation=(inputs.X, inputs.y), resume=state)
+
+
 def _write_text(inputs: Inputs) -> Any:
     other = inputs.path.with_name("notes.npz")
     other.write_text("weights: 0.1 0.2 0.3\n")
@@ -225,6 +266,13 @@ ROWS = [
     Row("train-negative-seed", lambda i: _train(i, seed=-1), ValueError, r"seed must be None or an integer >= 0, got -1"),
     Row("train-resume-other-settings", _resume_with_other_batch_size, ValueError,
         r"resume state does not match this training run \(batch_size: state has 4, this call 2\)"),
+    Row("resume-best-epoch-without-best-weights", _resume_best_epoch_without_best_weights, ValueError,
+        r"resume state is inconsistent: training state best_epoch, best_loss, epochs_since_best are 1, -1\.0, 0"),
+    Row("resume-optimizer-arrays-wrong-shape", _resume_optimizer_wrong_shape, ValueError,
+        r"state array 0 has shape \(3,\) float64, the parameter array it updates has \(26,\) float64"),
+    Row("resume-generator-state-out-of-range", _resume_rng_out_of_range, ValueError, r"resume state has an unusable rng state"),
+    Row("resume-other-activation", _resume_other_activation, ValueError, r"resume state comes from another network"),
+    Row("resume-other-data", _resume_other_data, ValueError, r"resume state does not match this training run \(data_sha256"),
     Row("sgd-negative-learning-rate", lambda i: SGD(lr=-0.1), ValueError, r"lr must be"),
     # ------------------------------------------------------------ solve
     Row("solve-unknown-method", lambda i: solve(i.net, i.X, i.y, method="gauss-newton"), ValueError,
