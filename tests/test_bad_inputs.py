@@ -96,6 +96,7 @@ def make_inputs(folder: Path) -> Inputs:
         "points_nan": np.array([0.0, np.nan, 1.0]),
         "metadata_tuple": {"hidden": (4, 4)},
         "metadata_array": {"mean": np.zeros(3)},
+        "metadata_surrogate": {"note": "\ud800"},
         "layers_mismatch": [tp.Affine(3, 4), tp.Tanh(), tp.Affine(5, 1)],
     }
     return Inputs(net, Adam(lr=0.01), path, user)
@@ -190,6 +191,25 @@ def _resume_other_data(inputs: Inputs) -> Any:
     state = _first_state(inputs)
     return train(inputs.net, inputs.X[::-1], inputs.y, loss=tp.MeanSquaredError(), optimizer=inputs.optimizer,
                  epochs=2, batch_size=4, seed=0, validation=(inputs.X, inputs.y), resume=state)
+
+
+def _concatenated(inputs: Inputs) -> Any:
+    other = inputs.path.with_name("both.npz")
+    save(tp.build_mlp([3, 4, 2], seed=1), other)
+    other.write_bytes(inputs.path.read_bytes() + other.read_bytes())
+    return load(other)
+
+
+def _manifest_edited(inputs: Inputs, old: bytes, new: bytes, name: str) -> Any:
+    other = inputs.path.with_name(name)
+    with zipfile.ZipFile(inputs.path) as archive:
+        members = {info.filename: archive.read(info) for info in archive.infolist()}
+    assert old in members["manifest.json"]
+    members["manifest.json"] = members["manifest.json"].replace(old, new, 1)
+    with zipfile.ZipFile(other, "w") as archive:  # valid ZIP checksums: only the manifest differs
+        for member, data in members.items():
+            archive.writestr(member, data)
+    return load(other)
 
 
 def _write_text(inputs: Inputs) -> Any:
@@ -308,6 +328,14 @@ ROWS = [
     Row("load-tampered-weights", _tampered, ModelFileError, r"tampered\.npz: the archive is damaged or truncated \(BadZipFile: Bad CRC-32 for file 'layer0\.weight\.npy'\)"),
     Row("load-unknown-activation", _names_unknown_activation, ModelFileError,
         r"names the activation 'test_bad_inputs\.Halving', which is not registered in this program"),
+    Row("load-two-archives-concatenated", _concatenated, ModelFileError,
+        r"both\.npz: the archive is ambiguous: \d+ bytes before the first member"),
+    Row("load-device-file", lambda i: load("/dev/zero"), ModelFileError,
+        r"/dev/zero: not a regular file \(a character device\)"),
+    Row("load-overflowing-manifest-number", lambda i: _manifest_edited(i, b'"format_version": 1', b'"format_version": 1e999', "big.npz"),
+        ModelFileError, r"big\.npz: manifest\.json is not valid UTF-8 JSON: 1e999 is not a finite number"),
+    Row("save-lone-surrogate-in-metadata", lambda i: save(i.net, i.path, metadata=i.metadata_surrogate), ModelFileError,
+        r"metadata\['note'\] holds the character '\\ud800' at position 0, which UTF-8 cannot encode"),
     Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError, r"expected a tinyprop Network, got str"),
     Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError,
         r"seed must be None or an integer >= 0, got -1"),
