@@ -318,10 +318,10 @@ if __name__ == "__main__":
     print(lre_table())
 
 
-def test_solve_result_exposes_the_uncertainty():
-    """SolveResult.uncertainty(net) is parameter_uncertainty(net, result=...)."""
+def test_uncertainty_from_the_solve_result_equals_the_one_from_the_data():
+    """parameter_uncertainty(net, result=...) uses the SolveResult's float64 Jacobian and residuals."""
     problem = load_nist("Rat42")
     net = build("Rat42", problem.start1)
     result = tp.solve(net, problem.x, problem.y)
     direct = tp.parameter_uncertainty(net, problem.x, problem.y)
-    np.testing.assert_allclose(result.uncertainty(net).standard_errors, direct.standard_errors, rtol=1e-10)
+    np.testing.assert_allclose(tp.parameter_uncertainty(net, result=result).standard_errors, direct.standard_errors, rtol=1e-10)

@@ -5,7 +5,7 @@ generated from it against the applicable functional-safety standards, local
 codes and qualified review is the user's responsibility.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
 from .build import build_mlp

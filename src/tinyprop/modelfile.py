@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 
 from .activations import Activation
+from ._version import __version__
 from .archive import ArchiveError, array_record, check_json, read_archive, write_archive
 from .layers import Affine, Standardize, Unstandardize
 from .network import Network
@@ -292,7 +293,7 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     manifest = {
         "format": MODEL_FORMAT,
         "format_version": MODEL_FORMAT_VERSION,
-        "tinyprop_version": _tinyprop_version(),
+        "tinyprop_version": __version__,
         "dtype": net.dtype.name,
         "n_params": net.n_params,
         "fingerprint": _fingerprint_of(net.dtype.name, layers, records),
@@ -348,12 +349,6 @@ def _require_finite(name: str, array: np.ndarray) -> None:
     if bad.any():
         index = tuple(int(i) for i in np.argwhere(bad)[0])
         raise ModelFileError(f"array {name} holds a non-finite value ({array[index]}) at index {index}")
-
-
-def _tinyprop_version() -> str:
-    from . import __version__  # imported here: the package imports this module while it initialises
-
-    return __version__
 
 
 # ---------------------------------------------------------------- loading

@@ -45,7 +45,6 @@ from ._progress import ProgressLine
 from ._validate import as_samples, as_targets, positive_int, real_in_range
 from .losses import SquaredError
 from .network import Network
-from .uncertainty import ParameterUncertainty, parameter_uncertainty
 
 __all__ = ["solve", "SolveResult", "METHODS"]
 
@@ -66,7 +65,8 @@ class SolveResult:
     value, scipy's "cost"). ``residuals``: ``r`` at ``theta`` (length
     ``n * n_out``). ``jacobian``: ``dr/dtheta`` at ``theta``, shape
     ``(n * n_out, n_params)``, for later uncertainty estimates
-    (``J^T J`` approximates the Hessian of ``rss / 2``).
+    (``J^T J`` approximates the Hessian of ``rss / 2``;
+    ``tinyprop.uncertainty.parameter_uncertainty(net, result=result)``).
     ``gradient_norm``: max-norm of ``J^T r``. ``iterations``: outer
     iterations (Levenberg-Marquardt: one Jacobian per iteration).
     ``function_evaluations`` and ``jacobian_evaluations``: residual and
@@ -86,10 +86,6 @@ class SolveResult:
     iterations: int
     function_evaluations: int
     jacobian_evaluations: int
-
-    def uncertainty(self, net: Network) -> ParameterUncertainty:
-        """Standard errors and delta-method intervals at this solution: ``parameter_uncertainty(net, result=self)``."""
-        return parameter_uncertainty(net, result=self)
 
 
 def solve(

@@ -65,7 +65,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
@@ -74,9 +74,7 @@ from .activations import Identity, LeakyReLU, ReLU
 from .layers import Affine
 from .network import Network
 from .sensitivity import input_sensitivity
-
-if TYPE_CHECKING:
-    from .solve import SolveResult
+from .solve import SolveResult
 
 __all__ = [
     "ParameterUncertainty",

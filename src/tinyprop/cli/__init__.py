@@ -21,7 +21,7 @@ import argparse
 import sys
 from typing import NoReturn, Sequence
 
-from .. import __version__
+from .._version import __version__
 from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
 from ._common import USAGE, CommandError, describe_os_error
 

@@ -12,7 +12,7 @@ import time
 from typing import Any
 
 
-from .. import __version__
+from .._version import __version__
 from ..modelfile import fingerprint
 from ..layers import Affine, ColumnScaling
 from ..network import Network

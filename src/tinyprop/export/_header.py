@@ -10,6 +10,8 @@ from __future__ import annotations
 import re
 import textwrap
 
+from .._version import __version__
+from ..modelfile import fingerprint
 from ..network import Network
 from ._activations import activation_kind
 from ._plan import ActivationStep, Plan, ScalingStep
@@ -44,9 +46,6 @@ class Provenance:
 
 def provenance(net: Network) -> Provenance:
     """The fingerprint of ``net`` (:func:`tinyprop.modelfile.fingerprint`), ``tinyprop.__version__``, ``net.dtype``."""
-    from .. import __version__
-    from ..modelfile import fingerprint
-
     return Provenance(fingerprint(net), __version__, net.dtype.name)
 
 
