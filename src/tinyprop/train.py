@@ -489,6 +489,8 @@ class _Run:
             ),
         }
         message = messages[reason]
+        if reason == STOP_DIVERGED and self._targets_overflow() is not None:
+            message = f"training diverged {problem}; the network holds the last finite weights. {self._targets_overflow()}"
         if reason == STOP_CALLBACK and self.patience is not None and self.best_epoch is not None:
             message += f"; restored the weights of epoch {self.best_epoch}"
         if reason == STOP_EPOCHS and self.patience is not None and self.best_epoch is not None:
@@ -506,6 +508,22 @@ class _Run:
             elapsed=time.perf_counter() - self.started,
             state=self.capture(),
         )
+
+    def _targets_overflow(self) -> str | None:
+        """A sentence saying the targets are too large for the loss in this dtype, or ``None``.
+
+        The loss sums squares over a mini-batch: when ``max |y|**2`` times the
+        batch's element count exceeds the dtype's largest number, it
+        overflows whatever the learning rate.
+        """
+        largest = float(np.max(np.abs(self.y)))
+        limit = float(np.finfo(self.y.dtype).max)
+        elements = min(self.batch_size, self.y.shape[0]) * self.y.shape[1]
+        if largest * largest * elements <= limit:
+            return None
+        return (f"The targets are too large for the loss in {self.y.dtype.name}: |y| reaches {largest:.3g}, and the "
+                f"sum of squares over a mini-batch overflows (largest {self.y.dtype.name} {limit:.3g}); lowering the "
+                "learning rate cannot help: rescale the targets (other units, or divide by a power of ten)")
 
     def _show_progress(self) -> None:
         if self.progress_line is None:
