@@ -369,6 +369,8 @@ def test_the_rows_are_distinct_and_many():
 
 
 def test_docs_table_lists_exactly_these_rows():
-    documented = re.findall(r"^\| `([a-z0-9-]+)` \|", DOC.read_text(encoding="utf-8"), flags=re.M)
+    text = DOC.read_text(encoding="utf-8")
+    table = text[text.index("## The bad-input table"):text.index("## Command-line cases")]
+    documented = re.findall(r"^\| `([a-z0-9-]+)` \|", table, flags=re.M)
     assert sorted(documented) == sorted(row.id for row in ROWS)
     assert len(documented) == len(set(documented))

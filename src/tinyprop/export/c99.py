@@ -54,6 +54,18 @@ _PER_LINE = 4
 _TERMS = 4  # products added per statement of an affine sum
 
 
+def check_c_name(name: Any) -> str:
+    """Return ``name`` if :func:`export_c` accepts it, else raise ``TypeError``/``ValueError``.
+
+    :func:`~tinyprop.export._text.check_name`, and no leading underscore
+    (reserved in C, C99 7.1.3).
+    """
+    name = check_name(name)
+    if name.startswith("_"):
+        raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
+    return name
+
+
 def export_c(
     net: Network,
     path: Any,
@@ -97,9 +109,7 @@ def export_c(
         (a custom activation needs ``c_expression(ctype)``), numbers that are
         not finite in ``dtype``, or a layer wider than 32767.
     """
-    name = check_name(name)
-    if name.startswith("_"):
-        raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
+    name = check_c_name(name)
     if literals not in _LITERALS:
         raise ValueError(f"literals must be one of {_LITERALS}, got {literals!r}")
     ctype = _ctype(dtype)

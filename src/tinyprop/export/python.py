@@ -52,6 +52,18 @@ def _scale(gain, offset, v):
 '''
 
 
+def check_python_name(name: Any) -> str:
+    """Return ``name`` if :func:`export_python` accepts it as a module name, else raise ``TypeError``/``ValueError``.
+
+    :func:`~tinyprop.export._text.check_name`, and not the name of a
+    standard-library module (the generated module would shadow it).
+    """
+    name = check_name(name)
+    if name in sys.stdlib_module_names:
+        raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
+    return name
+
+
 def export_python(
     net: Network,
     path: Any,
@@ -82,9 +94,7 @@ def export_python(
         For a bad argument, or a layer or activation that cannot be written in
         Python (a custom activation needs ``python_expression()``).
     """
-    name = check_name(name)
-    if name in sys.stdlib_module_names:
-        raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
+    name = check_python_name(name)
     directory = output_directory(path)
     plan = make_plan(net, np.dtype(np.float64))
     meta = check_metadata(metadata, plan.n_in, plan.n_out)
