@@ -6,15 +6,10 @@ import numpy as np
 from hypothesis import strategies as st
 
 import tinyprop as tp
+from tinyprop.activations import BUILT_IN_ACTIVATIONS as BUILT_IN_CLASSES
 
-BUILT_IN_ACTIVATIONS = (
-    tp.Sigmoid(),
-    tp.Tanh(),
-    tp.ReLU(),
-    tp.LeakyReLU(0.1),
-    tp.Softplus(),
-    tp.Identity(),
-)
+# one instance of every built-in class (tinyprop.activations.BUILT_IN_ACTIVATIONS), LeakyReLU with a visible slope
+BUILT_IN_ACTIVATIONS = tuple(cls(0.1) if cls is tp.LeakyReLU else cls() for cls in BUILT_IN_CLASSES)
 DTYPES = (np.float64, np.float32)
 
 

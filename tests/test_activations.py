@@ -4,6 +4,7 @@ textbook identities, and numerical stability."""
 from __future__ import annotations
 
 import warnings
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -96,3 +97,40 @@ def test_leaky_relu_rejects_bad_slope():
         tp.LeakyReLU(float("nan"))
     with pytest.raises(ValueError, match="slope"):
         tp.LeakyReLU(-1.0)
+
+
+# ----------------------------------------------------------------------------- one list, every table
+def test_every_table_covers_every_built_in_activation():
+    """Adding a class to BUILT_IN_ACTIVATIONS without its entry in a table fails here."""
+    from tinyprop.activations import BUILT_IN_ACTIVATIONS as CLASSES
+    from tinyprop.export import _activations, bound
+    from tinyprop.export._fixed_program import _check_activations
+    from tinyprop.export._plan import ActivationStep
+    from tinyprop.recipes import ACTIVATIONS
+    from tinyprop.registry import activation_name
+    from tinyprop.uncertainty import _HOMOGENEOUS
+
+    assert set(CLASSES) == {type(a) for a in BUILT_IN_ACTIVATIONS}
+    assert set(tp.__all__) >= {cls.__name__ for cls in CLASSES}
+    assert set(ACTIVATIONS.values()) == set(CLASSES) - {tp.Identity}  # the command line offers all but Identity
+    fixed_point_unsupported = {tp.Softplus}  # no integer form yet (DEVELOPERS.md, "Adding an activation")
+    for activation in BUILT_IN_ACTIVATIONS:
+        cls = type(activation)
+        assert activation_name(activation) == cls.__name__  # model files
+        if cls is tp.Identity:  # generated code: no code at all for Identity,
+            assert _activations.activation_kind(activation) is None
+        else:  # a built-in form for the others, never the custom protocol
+            for ctype in ("float", "double"):
+                _activations.c_body(activation, ctype, repr)
+            _activations.python_body(activation)
+        step = ActivationStep(0, activation, 3)
+        lipschitz, units = bound._activation_constants(step, 4.0)  # agreement_bound
+        assert lipschitz > 0 and units >= 0
+        plan = SimpleNamespace(steps=[step])  # the fixed-point export
+        if cls in fixed_point_unsupported:
+            with pytest.raises(TypeError, match=f"{cls.__name__}, which the fixed-point export does not support"):
+                _check_activations(plan)
+        else:
+            _check_activations(plan)
+        z = np.linspace(-3.0, 3.0, 13)  # the uncertainty hint lists the positively homogeneous ones
+        assert (cls in _HOMOGENEOUS) == np.allclose(activation.value(2.5 * z), 2.5 * activation.value(z))

@@ -7,7 +7,6 @@ command adds nothing hidden. Data here are synthetic (a smooth formula of our ow
 
 from __future__ import annotations
 
-import io
 import json
 import math
 import shutil
@@ -20,10 +19,7 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.cli import main
-from tinyprop.cli._common import EpochProgress
 from tinyprop.registry import register_activation
-from tinyprop.train import EpochInfo
-from fake_terminal import FakeTerminal
 
 INPUTS = ["x0", "x1", "x2"]
 TARGETS = ["y1", "y2"]
@@ -279,32 +275,3 @@ def test_every_public_name_is_in_the_api_reference():
     text = (Path(__file__).resolve().parents[1] / "docs" / "api.md").read_text(encoding="utf-8")
     missing = [name for name in tp.__all__ if f"`{name}`" not in text]
     assert not missing, f"docs/api.md does not describe {missing}"
-
-
-def _epoch(epoch: int, epochs: int) -> EpochInfo:
-    return EpochInfo(epoch=epoch, epochs=epochs, training_loss=0.5 / epoch, validation_loss=None, best_epoch=None,
-                     elapsed=0.01 * epoch, capture=lambda: None)
-
-
-def test_progress_rewrites_one_line_on_a_terminal_at_most_ten_times_a_second():
-    stream, now = FakeTerminal(), [0.0]
-    progress = EpochProgress(stream, clock=lambda: now[0])
-    for epoch in range(1, 101):
-        now[0] = epoch * 0.004  # 250 epochs a second
-        progress(_epoch(epoch, 100))
-    progress.finish()
-    text = stream.getvalue()
-    assert text.count("\r") == 5  # epochs 1, 26, 51, 76 (every 0.1 s) and the last one
-    assert text.endswith("remaining ~0.0 s\x1b[K\n")
-    assert "epoch 100/100  training loss 0.005  elapsed 1.0 s" in text
-
-
-def test_progress_prints_about_ten_plain_lines_elsewhere():
-    stream = io.StringIO()
-    progress = EpochProgress(stream)
-    for epoch in range(1, 101):
-        progress(_epoch(epoch, 100))
-    progress.finish()
-    lines = stream.getvalue().splitlines()
-    assert [line.split()[1] for line in lines] == ["1/100"] + [f"{e}/100" for e in range(10, 101, 10)]
-    assert "\r" not in stream.getvalue() and "\x1b" not in stream.getvalue()

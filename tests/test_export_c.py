@@ -25,7 +25,7 @@ from hypothesis import strategies as st
 
 import tinyprop as tp
 from tinyprop.export import agreement_bound, export_c
-from tinyprop.export._text import comment_text
+from tinyprop.export._source import comment_text
 from tinyprop.modelfile import fingerprint
 from tinyprop.registry import register_activation
 

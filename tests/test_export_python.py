@@ -29,7 +29,7 @@ from hypothesis import strategies as st
 
 import tinyprop as tp
 from tinyprop.export import agreement_bound, export_python
-from tinyprop.export._text import python_literal
+from tinyprop.export._source import python_literal
 from tinyprop.modelfile import fingerprint
 
 sys.path.insert(0, str(Path(__file__).parent))

@@ -402,7 +402,7 @@ def test_model_from_parts_accepts_big_endian_and_fortran_arrays():
         (lambda a, m: a["layer1.weight"].__setitem__((0, 0), 9.0), ModelFileError, "fingerprint mismatch"),
         (lambda a, m: a.pop("layer3.weight"), ModelFileError, r"do not match the layers"),
         (lambda a, m: a.update({"layer1.bias": [0.0, 0.0]}), ModelFileError, r"array 'layer1.bias' must be a numpy array, found list"),
-        (lambda a, m: a.update({"layer1.bias": np.array([0.0, np.nan])}), ModelFileError, r"layer1.bias holds a non-finite value"),
+        (lambda a, m: a.update({"layer1.bias": np.array([0.0, np.nan])}), ModelFileError, r"layer1.bias has a non-finite value"),
         (lambda a, m: m.update(arrays=[]), ModelFileError, r"missing \[\], unknown \['arrays'\]"),
         (lambda a, m: m.update(dtype="float16"), ModelFileError, r"manifest field 'dtype' is 'float16'"),
         (lambda a, m: m["layers"][0].update(width=(2,)), ModelFileError, r"the manifest\['layers'\]\[0\]\['width'\] has type tuple"),
@@ -476,9 +476,9 @@ def test_save_refuses_self_containing_metadata(tmp_path):
 def test_save_refuses_non_finite_weights(tmp_path):
     net = hand_set_network()
     net.layers[3].weight[0, 1] = np.inf
-    with pytest.raises(ModelFileError, match=r"array layer3.weight holds a non-finite value \(inf\) at index \(0, 1\)"):
+    with pytest.raises(ModelFileError, match=r"array layer3.weight has a non-finite value \(inf\) at row 0, column 1"):
         save(net, tmp_path / "m.npz")
-    with pytest.raises(ModelFileError, match=r"array layer3.weight holds a non-finite value \(inf\) at index \(0, 1\)"):
+    with pytest.raises(ModelFileError, match=r"array layer3.weight has a non-finite value \(inf\) at row 0, column 1"):
         model_parts(net)
 
 
@@ -663,7 +663,7 @@ def test_non_finite_weight_is_refused_even_with_consistent_hashes(saved):
     weight = net.layers[1].weight.copy()
     weight[1, 0] = np.nan
     replace_array(path, "layer1.weight", weight, update_record=True)
-    with pytest.raises(ModelFileError, match=r"array layer1\.weight holds a non-finite value \(nan\) at index \(1, 0\)"):
+    with pytest.raises(ModelFileError, match=r"array layer1\.weight has a non-finite value \(nan\) at row 1, column 0"):
         load(path)
 
 

@@ -108,6 +108,15 @@ def test_recipe_refuses_unknown_keys_and_bad_values():
         TabularRegression(seed=1.5)
 
 
+@pytest.mark.parametrize("seed, error", [(1.5, TypeError), (None, TypeError), (True, TypeError), (-1, ValueError)])
+def test_both_forms_of_the_default_recipe_check_the_seed_alike(seed, error):
+    """One seed check (a non-integer is a TypeError, a negative one a ValueError), in both forms."""
+    with pytest.raises(error, match=r"seed must be an integer >= 0, got"):
+        fit_tabular_regression(X, Y, seed=seed)
+    with pytest.raises(error, match=r"seed must be an integer >= 0, got"):
+        TabularRegression(seed=seed)
+
+
 # ----------------------------------------------------------------------------- the table
 def test_table_rows(sequential):
     records = sequential.records

@@ -8,6 +8,7 @@ solver) gives the optimum of the convex problems. All data here are synthetic
 
 from __future__ import annotations
 
+import io
 import json
 import sys
 
@@ -15,6 +16,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from tinyprop._progress import EpochProgress
 from tinyprop.optim import SGD, Adam, RMSProp, optimizer_from_state
 from tinyprop.schedules import CosineSchedule
 from tinyprop.checkpoint import TrainingState
@@ -252,7 +254,37 @@ def test_progress_rewrites_one_line_on_a_terminal(monkeypatch):
     X, y = _regression(n=20)
     train(_net(), X, y, loss=tp.MeanSquaredError(), optimizer=SGD(0.01), epochs=3, batch_size=8, progress=True)
     text = terminal.getvalue()
-    assert text.count("\r") == 3 and text.endswith("\n") and text.count("\n") == 1
+    assert text.startswith("\repoch 1/3") and "\repoch 3/3" in text  # the first, and the last always
+    assert text.endswith("\n") and text.count("\n") == 1
+
+
+def _show(progress: EpochProgress, epoch: int, epochs: int) -> None:
+    elapsed = 0.01 * epoch
+    progress.show(epoch, epochs, 0.5 / epoch, None, elapsed, elapsed / epoch * (epochs - epoch))
+
+
+def test_progress_rewrites_one_line_on_a_terminal_at_most_ten_times_a_second():
+    stream, now = FakeTerminal(), [0.0]
+    progress = EpochProgress(stream=stream, clock=lambda: now[0])
+    for epoch in range(1, 101):
+        now[0] = epoch * 0.004  # 250 epochs a second
+        _show(progress, epoch, 100)
+    progress.finish()
+    text = stream.getvalue()
+    assert text.count("\r") == 5  # epochs 1, 26, 51, 76 (every 0.1 s) and the last one
+    assert text.endswith("remaining ~0.0 s\x1b[K\n")
+    assert "epoch 100/100  training loss 0.005  elapsed 1.0 s" in text
+
+
+def test_progress_prints_about_ten_plain_lines_elsewhere():
+    stream = io.StringIO()
+    progress = EpochProgress(stream=stream)
+    for epoch in range(1, 101):
+        _show(progress, epoch, 100)
+    progress.finish()
+    lines = stream.getvalue().splitlines()
+    assert [line.split()[1] for line in lines] == ["1/100"] + [f"{e}/100" for e in range(10, 101, 10)]
+    assert "\r" not in stream.getvalue() and "\x1b" not in stream.getvalue()
 
 
 def test_float32_training_stays_float32():

@@ -123,14 +123,19 @@ def real_in_range(
     return number
 
 
-def seed_value(seed: Any, name: str = "seed") -> int | None:
-    """``None`` or a non-negative integer seed for ``numpy.random.default_rng``."""
-    if seed is None:
+def seed_value(seed: Any, name: str = "seed", *, required: bool = False) -> int | None:
+    """``None`` (unless ``required``) or a non-negative integer seed for ``numpy.random.default_rng``.
+
+    ``TypeError`` for anything but an integer (bools included) or ``None``,
+    ``ValueError`` for a negative integer.
+    """
+    expected = "an integer >= 0" if required else "None or an integer >= 0"
+    if seed is None and not required:
         return None
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-        raise TypeError(f"{name} must be None or an integer >= 0, got {seed!r}")
+    if seed is None or isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
+        raise TypeError(f"{name} must be {expected}, got {seed!r}")
     if seed < 0:
-        raise ValueError(f"{name} must be None or an integer >= 0, got {seed}")
+        raise ValueError(f"{name} must be {expected}, got {seed}")
     return int(seed)
 
 

@@ -24,9 +24,11 @@ Custom activations keep ``z`` and ``a`` in separate arrays and need neither.
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 
-from ._settings import Configured
+from ._settings_equality import Configured
 
 __all__ = [
     "Activation",
@@ -36,6 +38,8 @@ __all__ = [
     "LeakyReLU",
     "Softplus",
     "Identity",
+    "BUILT_IN_ACTIVATIONS",
+    "built_in_name",
 ]
 
 
@@ -231,9 +235,24 @@ class Identity(Activation):
         return a
 
 
-_IN_PLACE = (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity)
+BUILT_IN_ACTIVATIONS: tuple[type[Activation], ...] = (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity)
+"""The built-in activations, listed once. The model-file registry, the command line's
+choices and the names in generated code are derived from it; ``tests/test_activations.py``
+checks that every other table (generated code, the agreement bound, the fixed-point
+export, the uncertainty hint) covers every entry. Every built-in evaluates in place."""
+
+
+def built_in_name(cls: type[Activation]) -> str:
+    """The short snake-case name of a built-in class: ``"leaky_relu"`` for LeakyReLU.
+
+    >>> [built_in_name(cls) for cls in BUILT_IN_ACTIVATIONS]
+    ['sigmoid', 'tanh', 'relu', 'leaky_relu', 'softplus', 'identity']
+    """
+    if cls not in BUILT_IN_ACTIVATIONS:
+        raise ValueError(f"{cls!r} is not a built-in activation")
+    return re.sub(r"(?<=[a-z])(?=[A-Z][a-z])", "_", cls.__name__).lower()
 
 
 def works_in_place(activation: Activation) -> bool:
     """True for the built-in classes themselves (not subclasses, which may redefine ``value``)."""
-    return type(activation) in _IN_PLACE
+    return type(activation) in BUILT_IN_ACTIVATIONS

@@ -26,7 +26,6 @@ the state; :func:`tinyprop.train` then checks it against the run it resumes.
 from __future__ import annotations
 
 import hashlib
-import json
 import math
 import os
 import re
@@ -35,6 +34,7 @@ from typing import Any
 
 import numpy as np
 
+from ._json import canonical_json, sha256_hex
 from .archive import ArchiveError, array_bytes, read_archive, write_archive
 from .optim import OptimizerState
 
@@ -226,8 +226,18 @@ def network_digest(net: Any, weights: list[np.ndarray] | None = None) -> str:
         "params": [[list(np.shape(p)), np.asarray(p).dtype.name, hashlib.sha256(array_bytes(np.asarray(p))).hexdigest()]
                    for p in params],
     }
-    text = json.dumps(description, sort_keys=True, separators=(",", ":"), ensure_ascii=True, default=repr)
-    return hashlib.sha256(text.encode("ascii")).hexdigest()
+    return sha256_hex(canonical_json(_plain(description)))
+
+
+def _plain(value: Any) -> Any:
+    """``value`` with every leaf JSON cannot hold (a custom activation's own setting types) replaced by its ``repr``."""
+    if isinstance(value, dict):
+        return {str(key): _plain(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(item) for item in value]
+    if value is None or isinstance(value, (str, bool, int)) or (isinstance(value, float) and math.isfinite(value)):
+        return value
+    return repr(value)
 
 
 def _whole(value: Any, name: str) -> int:
@@ -263,7 +273,7 @@ def save_checkpoint(state: TrainingState, path: str | os.PathLike[str]) -> None:
     except ValueError as exc:
         raise CheckpointError(f"{os.fspath(path)}: not a usable training state: {exc}") from None
     scalars, arrays = state.to_parts()
-    if any(v is not None and not _finite(v) for v in _all_losses(scalars)):
+    if any(v is not None and not math.isfinite(v) for v in _all_losses(scalars)):
         raise CheckpointError(f"{os.fspath(path)}: the state holds a non-finite loss; a diverged run cannot be resumed")
     write_archive(path, arrays, {"kind": _KIND, **scalars})
 
@@ -287,6 +297,3 @@ def load_checkpoint(path: str | os.PathLike[str]) -> TrainingState:
 def _all_losses(scalars: dict[str, Any]) -> list[Any]:
     return [*scalars["training_loss"], *(scalars["validation_loss"] or []), scalars["best_loss"]]
 
-
-def _finite(value: Any) -> bool:
-    return isinstance(value, (int, float)) and value == value and abs(value) != float("inf")

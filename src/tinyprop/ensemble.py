@@ -25,8 +25,6 @@ responsibility.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -34,6 +32,7 @@ from typing import Any
 
 import numpy as np
 
+from ._json import canonical_json, json_copy, sha256_hex
 from ._validate import as_samples
 from .archive import ArchiveError, check_json, read_archive, write_archive
 from .export import agreement_bound
@@ -87,7 +86,7 @@ class Ensemble:
             check_json(dict(metadata or {}), "metadata")
         except ArchiveError as exc:
             raise ValueError(str(exc)) from None
-        self.metadata: dict[str, Any] = json.loads(json.dumps(dict(metadata or {})))  # a copy
+        self.metadata: dict[str, Any] = json_copy(dict(metadata or {}))
         self.members: tuple[Network, ...] = tuple(net.copy() for net in networks)
 
     @property
@@ -173,8 +172,7 @@ class Ensemble:
         """
         description = {"format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION,
                        "members": [fingerprint(net) for net in self.members]}
-        text = json.dumps(description, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
-        return hashlib.sha256(text.encode("ascii")).hexdigest()
+        return sha256_hex(canonical_json(description))
 
     def save(self, path: str | os.PathLike[str]) -> str:
         """Write the ensemble (members and metadata) to one file, atomically; return its fingerprint.

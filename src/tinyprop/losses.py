@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._settings import Configured
+from ._settings_equality import Configured
 
 from .activations import Sigmoid, Softplus
 

@@ -21,7 +21,6 @@ raised unchanged when a file cannot be opened or written at all.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -34,6 +33,8 @@ from typing import Any
 import numpy as np
 
 from .activations import Activation
+from ._json import canonical_json, json_copy, sha256_hex
+from ._validate import require_finite
 from ._version import __version__
 from .archive import ArchiveError, array_record, check_json, read_archive, write_archive
 from .layers import Affine, Standardize, Unstandardize
@@ -125,8 +126,7 @@ def _description(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str
 
 
 def _fingerprint_of(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str, Any]]) -> str:
-    text = _canonical_json(_description(dtype, layers, arrays))
-    return hashlib.sha256(text.encode("ascii")).hexdigest()
+    return sha256_hex(_canonical_json(_description(dtype, layers, arrays)))
 
 
 def _canonical_json(value: Any) -> str:
@@ -137,9 +137,7 @@ def _canonical_json(value: Any) -> str:
     involved. (Floats only occur in activation settings, whose values cannot
     be objects, so the substitution cannot be confused with a real setting.)
     """
-    return json.dumps(
-        _floats_as_bits(value), sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False
-    )
+    return canonical_json(_floats_as_bits(value))
 
 
 def _floats_as_bits(value: Any) -> Any:
@@ -309,7 +307,7 @@ def _json_copy(value: Any, where: str) -> Any:
         check_json(value, where)
     except ArchiveError as exc:
         raise ModelFileError(str(exc)) from None
-    return json.loads(json.dumps(value, allow_nan=False))
+    return json_copy(value)
 
 
 def _check_rebuilds(record: dict[str, Any], activation: Activation) -> None:
@@ -345,10 +343,11 @@ def _rebuild_activation(cls: type[Activation], name: str, settings: dict[str, An
 
 
 def _require_finite(name: str, array: np.ndarray) -> None:
-    bad = ~np.isfinite(array)
-    if bad.any():
-        index = tuple(int(i) for i in np.argwhere(bad)[0])
-        raise ModelFileError(f"array {name} holds a non-finite value ({array[index]}) at index {index}")
+    """:func:`~tinyprop._validate.require_finite` for a stored array, refusing with :class:`ModelFileError`."""
+    try:
+        require_finite(array, f"array {name}")
+    except ValueError as exc:
+        raise ModelFileError(str(exc)) from None
 
 
 # ---------------------------------------------------------------- loading

@@ -26,13 +26,13 @@ checkpoints).
 
 from __future__ import annotations
 
-import json
 import math
 from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 import numpy as np
 
+from ._json import canonical_json
 from ._validate import real_in_range
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 
@@ -171,7 +171,7 @@ class Optimizer:
             raise TypeError(f"state must be an OptimizerState, got {type(state).__name__}")
         if state.kind != type(self).__name__:
             raise ValueError(f"state is for a {state.kind} optimizer, this one is a {type(self).__name__}")
-        if _canonical(state.settings) != _canonical(self.settings()):
+        if canonical_json(state.settings) != canonical_json(self.settings()):
             raise ValueError(
                 f"state was saved with settings {state.settings}, this optimizer has {self.settings()}; "
                 "build the optimizer with the same settings to resume"
@@ -209,10 +209,6 @@ def _check_layout(arrays: list[np.ndarray], params: Sequence[np.ndarray]) -> Non
                 f"state array {i} has shape {a.shape} {a.dtype}, the parameter array it updates has "
                 f"{np.shape(p)} {np.asarray(p).dtype}"
             )
-
-
-def _canonical(settings: dict[str, Any]) -> str:
-    return json.dumps(settings, sort_keys=True)
 
 
 def _slots_from_arrays(

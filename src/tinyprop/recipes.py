@@ -42,15 +42,15 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
 import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
-from .activations import Activation, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .build import build_mlp
+from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
+from .mlp import build_mlp
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
 from .network import Layer, Network
@@ -58,7 +58,7 @@ from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
 from .solve import solve
 from .sweep import TrainingData
-from .train import EpochInfo, History, TrainingResult, train
+from .train import History, TrainingResult, train
 from .uncertainty import uncertainty_report
 
 __all__ = [
@@ -120,8 +120,7 @@ def fit_tabular_regression(
     the shuffling draw three independent streams (``numpy.random.SeedSequence``).
     """
     hidden_units = positive_int(hidden_units, "hidden_units")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be an integer >= 0, got {seed!r}")
+    seed = seed_value(seed, required=True)
     return _fit_tabular(
         X, y, hidden=(hidden_units,), lr=RECIPE_LR, decoupled_decay=0.0, l2=0.0, batch_size=RECIPE_BATCH_SIZE,
         max_epochs=max_epochs, patience=RECIPE_PATIENCE, seed=int(seed), progress=progress,
@@ -171,8 +170,7 @@ class TabularRegression:
         object.__setattr__(self, "l2", real_in_range(self.l2, "l2", low=0.0))
         for name in ("batch_size", "max_epochs", "patience"):
             object.__setattr__(self, name, positive_int(getattr(self, name), name))
-        if seed_value(self.seed) is None:
-            raise TypeError("seed must be an integer >= 0, got None")
+        seed_value(self.seed, required=True)
 
     def __call__(self, setting: Mapping[str, Any], data: TrainingData) -> tuple[Network, TrainingResult]:
         """Train the network of ``setting`` on ``data.X``, ``data.y``; return ``(network, result)``."""
@@ -244,12 +242,9 @@ def _fit_tabular(
 
 
 # ---------------------------------------------------------------- the command line's recipe
+# the hidden-layer activations on offer: every built-in but Identity (a linear hidden layer adds nothing)
 ACTIVATIONS: dict[str, type[Activation]] = {
-    "tanh": Tanh,
-    "sigmoid": Sigmoid,
-    "relu": ReLU,
-    "leaky-relu": LeakyReLU,
-    "softplus": Softplus,
+    built_in_name(cls).replace("_", "-"): cls for cls in BUILT_IN_ACTIVATIONS if cls is not Identity
 }
 OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default learning rate
     "adam": (Adam, 1e-3),
@@ -358,14 +353,9 @@ def fit(
     split: Split,
     settings: FitSettings,
     *,
-    callback: Callable[[EpochInfo], bool | None] | None = None,
     progress: bool = False,
 ) -> FitOutcome:
-    """Step 3 of the recipe: changes ``net``'s weights in place.
-
-    ``callback`` goes to :func:`~tinyprop.train.train` (mini-batch), ``progress``
-    to :func:`~tinyprop.solve.solve` (least squares).
-    """
+    """Step 3 of the recipe: changes ``net``'s weights in place; ``progress`` shows the progress line on stderr."""
     X_train, Y_train = data.X[split.training], data.Y[split.training]
     started = time.perf_counter()
     if settings.method == "mini-batch":
@@ -374,7 +364,7 @@ def fit(
         result = train(
             net, X_train, Y_train, loss=MeanSquaredError(), optimizer=optimizer, epochs=settings.epochs,
             batch_size=settings.batch_size, validation=validation, patience=settings.patience,
-            seed=settings.seed, callback=callback,
+            seed=settings.seed, progress=progress,
         )
         summary = {
             "stop_reason": result.stop_reason,

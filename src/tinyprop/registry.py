@@ -30,7 +30,7 @@ from __future__ import annotations
 import re
 import threading
 
-from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .activations import BUILT_IN_ACTIVATIONS, Activation
 
 __all__ = ["register_activation", "activation_name", "activation_class", "registered_activations"]
 
@@ -99,5 +99,5 @@ def _qualified(cls: type) -> str:
     return f"{cls.__module__}.{cls.__qualname__}"
 
 
-for _builtin in (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity):
+for _builtin in BUILT_IN_ACTIVATIONS:
     register_activation(_builtin)

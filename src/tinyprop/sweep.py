@@ -42,7 +42,6 @@ already in the table and loads its network. The file layout is in
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -57,6 +56,7 @@ from typing import Any
 
 import numpy as np
 
+from ._json import canonical_json, sha256_hex
 from ._validate import as_float_array, as_samples, as_targets
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
 from .modelfile import fingerprint, load_model_file, save
@@ -152,8 +152,7 @@ class _SweepData:
         for label, pair in (("validation", self.training.validation), ("test", self.test)):
             if pair is not None:
                 named += [(f"{label}/X", pair[0]), (f"{label}/y", pair[1])]
-        text = json.dumps([array_record(name, array) for name, array in named], sort_keys=True)
-        return hashlib.sha256(text.encode("ascii")).hexdigest()
+        return sha256_hex(canonical_json([array_record(name, array) for name, array in named]))
 
 
 # ---------------------------------------------------------------- settings
@@ -173,11 +172,11 @@ def setting_key(setting: Mapping[str, Any]) -> str:
         check_json(dict(setting), "the setting")
     except ArchiveError as exc:
         raise ValueError(str(exc)) from None
-    return json.dumps(dict(setting), sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    return canonical_json(dict(setting))
 
 
 def _file_stem(key: str) -> str:
-    return hashlib.sha256(key.encode("ascii")).hexdigest()[:16]
+    return sha256_hex(key)[:16]
 
 
 # ---------------------------------------------------------------- records

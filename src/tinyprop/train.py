@@ -46,9 +46,10 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ._progress import ProgressLine
+from ._json import json_copy
+from ._progress import EpochProgress
 from .checkpoint import TrainingState, network_digest, save_checkpoint
-from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite
+from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
 from .layers import Affine
 from .losses import Loss
 from .network import Network
@@ -185,9 +186,10 @@ def train(
     seed:
         Seed of the shuffling generator (``numpy.random.default_rng``).
     progress:
-        Print a progress line on stderr after each epoch (epoch, losses,
-        elapsed and estimated remaining time); it is rewritten in place when
-        stderr is a terminal and printed as plain lines otherwise.
+        Print a progress line on stderr (epoch, losses, elapsed and estimated
+        remaining time): on a terminal one line rewritten in place at most ten
+        times a second and at the last epoch; elsewhere plain lines for the
+        first epoch, every tenth of the run and the last epoch.
     l2:
         Weight of the L2 penalty ``l2/2 * sum ||W||**2`` on the weight
         matrices (not biases), added to the gradient.
@@ -257,10 +259,7 @@ class _Run:
             raise TypeError(f"loss must be a tinyprop Loss (e.g. MeanSquaredError()), got {type(loss).__name__}")
         if not isinstance(optimizer, Optimizer):
             raise TypeError(f"optimizer must be a tinyprop Optimizer (e.g. Adam()), got {type(optimizer).__name__}")
-        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer))):
-            raise TypeError(f"seed must be None or an integer >= 0, got {seed!r}")
-        if seed is not None and seed < 0:
-            raise ValueError(f"seed must be None or an integer >= 0, got {seed}")
+        seed = seed_value(seed)
         if not isinstance(progress, bool):
             raise TypeError(f"progress must be True or False, got {progress!r}")
         if callback is not None and not callable(callback):
@@ -277,7 +276,7 @@ class _Run:
         if self.patience is not None and self.validation is None:
             raise ValueError("patience (early stopping) needs validation data: pass validation=(X_val, y_val)")
         self.l2 = real_in_range(l2, "l2", low=0.0)
-        self.progress_line = ProgressLine() if progress else None
+        self.progress_line = EpochProgress() if progress else None
         self.rng = np.random.default_rng(seed)
         self.settings = {
             "batch_size": self.batch_size,
@@ -327,14 +326,14 @@ class _Run:
             epoch=self.epoch,
             weights=[p.copy() for p in self.params],
             optimizer=self.optimizer.get_state(),
-            rng=_copy_json(self.rng.bit_generator.state),
+            rng=json_copy(self.rng.bit_generator.state),
             training_loss=list(self.training_loss),
             validation_loss=None if self.validation_loss is None else list(self.validation_loss),
             best_epoch=self.best_epoch,
             best_loss=self.best_loss,
             best_weights=[w.copy() for w in self.best_weights] if has_best else None,  # type: ignore[union-attr]
             epochs_since_best=self.epochs_since_best,
-            settings=_copy_json(self.settings),
+            settings=json_copy(self.settings),
             network=network_digest(self.net),
         )
 
@@ -363,7 +362,7 @@ class _Run:
             )
         probe = type(self.rng.bit_generator)()
         try:
-            probe.state = _copy_json(state.rng)
+            probe.state = json_copy(state.rng)
         except (TypeError, ValueError, KeyError, OverflowError) as exc:
             raise ValueError(f"resume state has an unusable rng state: {exc}") from None
         self.optimizer.set_state(state.optimizer, params=[self.net.vector])  # checks before changing anything
@@ -531,10 +530,8 @@ class _Run:
         elapsed = time.perf_counter() - self.started
         done = self.epoch - self.first_epoch_of_call + 1
         remaining = elapsed / done * (self.epochs - self.epoch)
-        line = f"epoch {self.epoch}/{self.epochs}  training loss {self.training_loss[-1]:.6g}"
-        if self.validation_loss is not None:
-            line += f"  validation loss {self.validation_loss[-1]:.6g}"
-        self.progress_line.show(line + f"  elapsed {elapsed:.1f} s  remaining ~{remaining:.1f} s")
+        validation = None if self.validation_loss is None else self.validation_loss[-1]
+        self.progress_line.show(self.epoch, self.epochs, self.training_loss[-1], validation, elapsed, remaining)
 
     def _finish_progress(self) -> None:
         if self.progress_line is not None:
@@ -581,12 +578,3 @@ def _brief(value: Any) -> str:
     """``repr`` of a setting, a SHA-256 shortened to its first 12 digits."""
     text = repr(value)
     return text[:13] + "...'" if isinstance(value, str) and len(value) == 64 else text
-
-
-def _copy_json(value: Any) -> Any:
-    """A deep copy of nested dicts/lists of scalars."""
-    if isinstance(value, dict):
-        return {k: _copy_json(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_copy_json(v) for v in value]
-    return value

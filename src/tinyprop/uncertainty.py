@@ -69,6 +69,7 @@ from typing import Any
 
 import numpy as np
 
+from ._json import finite_or_none
 from ._validate import as_samples, as_targets, real_in_range, require_finite
 from .activations import Identity, LeakyReLU, ReLU
 from .layers import Affine
@@ -125,7 +126,7 @@ class RankDeficientError(ValueError):
         return {
             "rank_deficient": True,
             "message": str(self),
-            "condition_number": _json_float(self.condition_number),
+            "condition_number": finite_or_none(self.condition_number),
             "rank": self.rank,
             "n_params": self.n_params,
             "unidentifiable": [list(group) for group in self.unidentifiable],
@@ -506,7 +507,3 @@ def _max_off_diagonal(correlation: np.ndarray) -> float | None:
         return None
     off = np.abs(correlation[~np.eye(correlation.shape[0], dtype=bool)])
     return float(off.max())
-
-
-def _json_float(value: float) -> float | None:
-    return value if math.isfinite(value) else None

@@ -4,12 +4,9 @@ from __future__ import annotations
 
 import contextlib
 import json
-import math
 import os
-import sys
-import time
 from pathlib import Path
-from typing import Any, Callable, Iterator, TextIO
+from typing import Any, Iterator
 
 import numpy as np
 
@@ -18,8 +15,6 @@ from ..csvdata import CsvError, CsvTable, read_csv
 from ..modelfile import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
 from ..registry import activation_class
-from .._progress import is_terminal
-from ..train import EpochInfo
 
 USAGE = 2  # exit status: the command line is wrong
 FAILURE = 1  # exit status: a file, the data or the computation failed
@@ -177,10 +172,6 @@ def files_together(folder: Path) -> Iterator[None]:
         os.close(descriptor)  # releases the lock
 
 
-def finite_or_none(value: float | None) -> float | None:
-    """JSON has no NaN or infinity: such values are written as ``null``."""
-    return value if value is not None and math.isfinite(value) else None
-
 
 def write_plots(
     folder: Path,
@@ -212,50 +203,3 @@ def write_plots(
     except ValueError as exc:
         return written, f"plots skipped: {exc}"
     return written, None
-
-
-class EpochProgress:
-    """The per-epoch callback of :func:`tinyprop.train.train` that prints progress on a stream.
-
-    On a terminal one line is rewritten in place (at most 10 times a second and
-    at the last epoch); elsewhere (a log file, a pipe) plain lines are printed
-    for the first epoch, every tenth of the run and the last epoch, with no
-    control characters.
-    """
-
-    def __init__(self, stream: TextIO = sys.stderr, clock: Callable[[], float] = time.monotonic) -> None:
-        self.stream = stream
-        self.clock = clock
-        self.terminal = is_terminal(stream)
-        self.last_shown = -math.inf
-        self.open_line = False
-
-    def __call__(self, info: EpochInfo) -> None:
-        step = max(1, info.epochs // 10)
-        if self.terminal:
-            now = self.clock()
-            if now - self.last_shown < 0.1 and info.epoch < info.epochs:
-                return None
-            self.last_shown = now
-            self.stream.write("\r" + self.line(info) + "\033[K")
-            self.open_line = True
-        elif info.epoch == 1 or info.epoch % step == 0 or info.epoch == info.epochs:
-            self.stream.write(self.line(info) + "\n")
-        self.stream.flush()
-        return None
-
-    @staticmethod
-    def line(info: EpochInfo) -> str:
-        """``epoch 40/200  training loss 1.2e-05  validation loss 1.3e-05  elapsed 0.3 s  remaining ~1.2 s``."""
-        remaining = info.elapsed / info.epoch * (info.epochs - info.epoch)
-        text = f"epoch {info.epoch}/{info.epochs}  training loss {info.training_loss:.4g}"
-        if info.validation_loss is not None:
-            text += f"  validation loss {info.validation_loss:.4g}"
-        return text + f"  elapsed {info.elapsed:.1f} s  remaining ~{remaining:.1f} s"
-
-    def finish(self) -> None:
-        """End the rewritten line on a terminal."""
-        if self.open_line:
-            self.stream.write("\n")
-            self.stream.flush()
-            self.open_line = False

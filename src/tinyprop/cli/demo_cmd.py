@@ -25,9 +25,9 @@ from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed
 from ..modelfile import save
 from ..losses import MeanSquaredError
 from ..network import Network
-from ._common import SAFETY, CommandError, EpochProgress, output_folder, write_json, write_plots
-from ..recipes import Dataset, FitSettings, build_network, evaluate_all, split_rows
-from ._fit import architecture, fit_with_progress, model_metadata, report
+from ._common import SAFETY, CommandError, output_folder, write_json, write_plots
+from ..recipes import Dataset, FitSettings, build_network, evaluate_all, fit, split_rows
+from ._fit_report import architecture, model_metadata, report
 
 HELP = "the whole job on a synthetic battery state-of-charge scenario: check, train, test, save, export"
 
@@ -78,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
     timings["check"] = time.perf_counter() - clock
 
     _step(4, "training", DEMO_SETTINGS.describe_method() + ("" if args.quiet else " (progress on stderr)"), flush=True)
-    outcome = fit_with_progress(net, data, split, DEMO_SETTINGS, None if args.quiet else EpochProgress(sys.stderr))
+    outcome = fit(net, data, split, DEMO_SETTINGS, progress=not args.quiet)
     metrics = evaluate_all(net, data, split)
     test = metrics["test"]["targets"][BATTERY_TARGET]
     print(f"             {outcome.summary['message']} in {outcome.seconds:.1f} s")

@@ -17,8 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..export import export_c, export_c_fixed_point, export_python
-from ..export.c99 import check_c_name
-from ..export.python import check_python_name
+from ..export._identifiers import check_c_name, check_module_name
 from ..modelfile import ModelFile
 from . import _args
 from ._common import (
@@ -39,7 +38,7 @@ HELP = "write C99 and/or plain-Python inference code for a model file"
 LANGUAGES = ("c", "python", "c-fixed")
 _NAME_CHECKS = {  # what each language's export requires of --name
     "c": check_c_name,
-    "python": check_python_name,
+    "python": check_module_name,
     "c-fixed": lambda name: check_c_name(f"{name}_q"),
 }
 DEFAULT_LANGUAGES = ("c", "python")

@@ -18,7 +18,6 @@ from . import _args
 from ._common import (
     USAGE,
     CommandError,
-    EpochProgress,
     describe_os_error,
     files_together,
     numeric_columns,
@@ -37,9 +36,10 @@ from ..recipes import (
     FitSettings,
     build_network,
     evaluate_all,
+    fit,
     least_squares_uncertainty,
 )
-from ._fit import architecture, fit_with_progress, model_metadata, report, split_for_command
+from ._fit_report import architecture, model_metadata, report, split_for_command
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 
@@ -123,7 +123,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
-        outcome = fit_with_progress(net, data, split, settings, None if args.quiet else EpochProgress(sys.stderr))
+        outcome = fit(net, data, split, settings, progress=not args.quiet)
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")

@@ -7,7 +7,8 @@
   calibration rows) and returns a :class:`FixedPointReport` of the measured
   error against ``Network.predict``;
 - :func:`agreement_bound` gives the tolerance for comparing the generated
-  code's results with ``Network.predict``.
+  code's results with ``Network.predict``;
+- :func:`check_name` checks a ``name`` for generated code before exporting.
 
 Custom activations take part through the methods ``c_expression(ctype)`` and
 ``python_expression()`` (see :mod:`tinyprop.export._activations` and
@@ -18,9 +19,12 @@ against the applicable functional-safety standards, local codes and qualified
 review is the user's responsibility.
 """
 
+from ._identifiers import check_name
 from .bound import agreement_bound
 from .c99 import export_c
 from .fixed_point import FixedPointReport, StepFormat, export_c_fixed_point
 from .python import export_python
 
-__all__ = ["agreement_bound", "export_c", "export_c_fixed_point", "export_python", "FixedPointReport", "StepFormat"]
+__all__ = [
+    "agreement_bound", "check_name", "export_c", "export_c_fixed_point", "export_python", "FixedPointReport", "StepFormat",
+]

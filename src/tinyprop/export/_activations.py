@@ -64,7 +64,7 @@ import math
 import re
 from typing import Callable
 
-from ..activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh, built_in_name
 
 __all__ = [
     "C_METHOD",
@@ -81,7 +81,7 @@ __all__ = [
 C_METHOD = "c_expression"
 PYTHON_METHOD = "python_expression"
 
-_KINDS = {Sigmoid: "sigmoid", Tanh: "tanh", ReLU: "relu", LeakyReLU: "leaky_relu", Softplus: "softplus"}
+_KINDS = {cls: built_in_name(cls) for cls in BUILT_IN_ACTIVATIONS}
 
 # Tanh in float C (see the module docstring): the clamp and the coefficients of
 # D(w) = D0 + D1 w + D2 w^2 and Q(w) = 1 + Q1 w + Q2 w^2 + Q3 w^3; each is a float32 value.
@@ -180,7 +180,7 @@ def _custom_expression(act: Activation, method: str, language: str, *args: str) 
     if not callable(supply):
         raise TypeError(
             f"cannot write the activation {type(act).__name__} in {language}: it is not one of the "
-            f"built-in classes (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity) and has no "
+            f"built-in classes ({', '.join(cls.__name__ for cls in BUILT_IN_ACTIVATIONS)}) and has no "
             f"{method}() method returning an expression in z (see docs/export.md, "
             "'Custom activations')"
         )

@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from ._fixed_program import IntegerProgram, QAffine, QLeaky, QRelu, QScaling, QStep, QTable, SLOPE_BITS
 from ._fixed_tables import c_function
+from ._plan import route_work_arrays, work_array_widths
+from ._source import c_header
 
 __all__ = ["source_file", "header_file", "buffer_widths"]
 
@@ -35,38 +37,23 @@ static int16_t {name}_narrow(int64_t acc, int shift)
 
 
 def _routing(program: IntegerProgram) -> list[tuple[str, str, int]]:
-    """``(source, target, width)`` per step: an Affine writes the other work array, the rest work in place."""
-    routes, current = [], "x_q"
-    for step in program.steps:
-        if isinstance(step, QAffine):
-            target = "b" if current == "a" else "a"
-        else:
-            target = "a" if current == "x_q" else current
-        routes.append((current, target, len(step.out_bits)))
-        current = target
-    return routes
+    """``(source, target, width)`` per step, from the input ``x_q`` (see ``route_work_arrays``)."""
+    return route_work_arrays([(isinstance(step, QAffine), len(step.out_bits)) for step in program.steps], "x_q")
 
 
 def buffer_widths(program: IntegerProgram) -> dict[str, int]:
-    widths: dict[str, int] = {}
-    for _, target, width in _routing(program):
-        widths[target] = max(widths.get(target, 0), width)
-    return widths
+    return work_array_widths(_routing(program))
 
 
 def header_file(name: str, comment: list[str], program: IntegerProgram, fingerprint: str) -> str:
     macro = name.upper()
-    guard = f"{macro}_H"
-    lines = comment + ["", f"#ifndef {guard}", f"#define {guard}", "", "#include <stdint.h>", "",
-                       f"#define {macro}_N_INPUTS {len(program.in_bits)}",
-                       f"#define {macro}_N_OUTPUTS {len(program.out_bits)}",
-                       f'#define {macro}_FINGERPRINT "{fingerprint}"',
-                       "", "/* Fractional bits f of each input and output: value = integer / 2^f. */"]
-    lines += [f"#define {macro}_INPUT_FRAC_BITS_{j} {_int(b)}" for j, b in enumerate(program.in_bits)]
-    lines += [f"#define {macro}_OUTPUT_FRAC_BITS_{k} {_int(b)}" for k, b in enumerate(program.out_bits)]
-    lines += ["", "#ifdef __cplusplus", 'extern "C" {', "#endif", "", f"{signature(name)};", "",
-              "#ifdef __cplusplus", "}", "#endif", "", f"#endif /* {guard} */"]
-    return "\n".join(lines) + "\n"
+    defines = [f"#define {macro}_N_INPUTS {len(program.in_bits)}",
+               f"#define {macro}_N_OUTPUTS {len(program.out_bits)}",
+               f'#define {macro}_FINGERPRINT "{fingerprint}"',
+               "", "/* Fractional bits f of each input and output: value = integer / 2^f. */"]
+    defines += [f"#define {macro}_INPUT_FRAC_BITS_{j} {_int(b)}" for j, b in enumerate(program.in_bits)]
+    defines += [f"#define {macro}_OUTPUT_FRAC_BITS_{k} {_int(b)}" for k, b in enumerate(program.out_bits)]
+    return c_header(macro, comment, defines, signature(name), includes=["#include <stdint.h>"])
 
 
 def signature(name: str) -> str:

@@ -1,7 +1,7 @@
 """The explanatory header both generators put at the top of their files.
 
 The lines returned here are already safe for a comment (see
-:func:`~tinyprop.export._text.comment_text`); the generators only add their
+:func:`~tinyprop.export._source.comment_text`); the generators only add their
 comment markers.
 """
 
@@ -15,7 +15,8 @@ from ..modelfile import fingerprint
 from ..network import Network
 from ._activations import activation_kind
 from ._plan import ActivationStep, Plan, ScalingStep
-from ._text import Metadata, Port, comment_text
+from ._metadata import Metadata, Port
+from ._source import comment_text
 
 __all__ = ["CAUTION", "Provenance", "provenance", "header_lines"]
 

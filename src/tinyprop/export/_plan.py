@@ -22,6 +22,7 @@ rounds exactly as ``Network.predict`` does.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Union
 
@@ -32,7 +33,9 @@ from ..activations import Activation
 from ..layers import Affine, ColumnScaling
 from ..network import Network
 
-__all__ = ["AffineStep", "ScalingStep", "ActivationStep", "Step", "Plan", "make_plan"]
+__all__ = [
+    "AffineStep", "ScalingStep", "ActivationStep", "Step", "Plan", "make_plan", "route_work_arrays", "work_array_widths",
+]
 
 
 @dataclass(frozen=True)
@@ -144,3 +147,31 @@ def _convert(array: np.ndarray, name: str, dtype: np.dtype) -> np.ndarray:
     require_finite(converted, name, converted_from=np.asarray(array).dtype)
     converted.setflags(write=False)
     return converted
+
+
+def route_work_arrays(steps: Sequence[tuple[bool, int]], first: str) -> list[tuple[str, str, int]]:
+    """``(source, target, width)`` per step ``(is_affine, width)`` of generated C code.
+
+    The input array is ``first``; the work arrays are ``a`` and ``b``. An
+    affine step writes the other array than it reads (it cannot work in
+    place); an elementwise step works in place, out of the input into ``a``
+    when it comes first.
+    """
+    routes = []
+    current = first
+    for is_affine, width in steps:
+        if is_affine:
+            target = "b" if current == "a" else "a"
+        else:
+            target = "a" if current == first else current
+        routes.append((current, target, width))
+        current = target
+    return routes
+
+
+def work_array_widths(routes: Sequence[tuple[str, str, int]]) -> dict[str, int]:
+    """The width of each work array :func:`route_work_arrays` uses, ``{"a": ..., "b": ...}``."""
+    widths: dict[str, int] = {}
+    for _, target, width in routes:
+        widths[target] = max(widths.get(target, 0), width)
+    return widths

@@ -16,7 +16,6 @@ responsibility.
 from __future__ import annotations
 
 import os
-import sys
 import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -28,7 +27,8 @@ from .._version import __version__
 from ..modelfile import fingerprint
 from ..network import Network
 from ._header import CAUTION
-from ._text import check_name, output_directory, write_source
+from ._identifiers import check_c_name, check_module_name, check_name
+from ._source import c_block_comment, c_header, output_directory, write_source
 from .c99 import export_c
 from .python import export_python
 
@@ -56,9 +56,7 @@ def export_ensemble_python(
     ``N_INPUTS``, ``N_OUTPUTS``, ``N_MEMBERS``. Standard library only;
     ``from <name> import predict`` with ``<path>`` on ``sys.path``.
     """
-    name = check_name(name)
-    if name in sys.stdlib_module_names:
-        raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
+    name = check_module_name(name)
     package = output_directory(path) / name
     package.mkdir(exist_ok=True)
     for index, net in enumerate(members):
@@ -119,9 +117,7 @@ def export_ensemble_c(
     ``<name>.c`` with the member sources. Returns the wrapper's header and
     source, then each member's header and source.
     """
-    name = check_name(name)
-    if name.startswith("_"):
-        raise ValueError(f"name must not start with an underscore in C (reserved, C99 7.1.3), got {name!r}")
+    name = check_c_name(name)
     check_name(f"{name}_member{len(members) - 1}")  # the longest member name must be a valid identifier too
     try:
         kind = np.dtype(dtype).name
@@ -148,15 +144,10 @@ def export_ensemble_c(
          f"Arithmetic: {ctype} throughout: y[k] = (0 + y_0[k] + ... + y_M-1[k]) / M, members in order.",
          f"Build: compile {name}.c together with the member sources listed above."],
     )
-    block = ["/*"] + [f" * {line}".rstrip() for line in comment] + [" */"]
+    block = c_block_comment(comment)
     signature = f"void {name}_predict(const {ctype} *x, {ctype} *y)"
-    header = block + [
-        "", f"#ifndef {macro}_H", f"#define {macro}_H", "",
-        f"#define {macro}_N_INPUTS {n_in}", f"#define {macro}_N_OUTPUTS {n_out}",
-        f"#define {macro}_N_MEMBERS {m}", f'#define {macro}_FINGERPRINT "{ensemble_fingerprint}"', "",
-        "#ifdef __cplusplus", 'extern "C" {', "#endif", "", f"{signature};", "",
-        "#ifdef __cplusplus", "}", "#endif", "", f"#endif /* {macro}_H */",
-    ]
+    defines = [f"#define {macro}_N_INPUTS {n_in}", f"#define {macro}_N_OUTPUTS {n_out}",
+               f"#define {macro}_N_MEMBERS {m}", f'#define {macro}_FINGERPRINT "{ensemble_fingerprint}"']
     suffix = "f" if ctype == "float" else ""
     body = [f"    {ctype} out[{n_out}];", f"    {ctype} total[{n_out}];", "    int k;", "",
             f"    for (k = 0; k < {n_out}; ++k) {{", f"        total[k] = 0.0{suffix};", "    }"]
@@ -167,7 +158,7 @@ def export_ensemble_c(
              f"    for (k = 0; k < {n_out}; ++k) {{", f"        y[k] = total[k] / {m}.0{suffix};", "    }"]
     source = block + ["", f'#include "{name}.h"', *[f'#include "{member}.h"' for member in member_names], "",
                       signature, "{", *body, "}"]
-    paths = (write_source(directory, f"{name}.h", "\n".join(header) + "\n"),
+    paths = (write_source(directory, f"{name}.h", c_header(macro, block, defines, signature)),
              write_source(directory, f"{name}.c", "\n".join(source) + "\n"))
     return paths + tuple(written)
 

@@ -17,7 +17,6 @@ with its float32 numbers, computed in binary64, i.e. like
 
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -27,7 +26,9 @@ from ..network import Network
 from ._activations import activation_kind, function_names, python_body
 from ._header import header_lines, provenance
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan
-from ._text import Metadata, check_metadata, check_name, comment_text, output_directory, python_literal, write_source
+from ._identifiers import check_module_name
+from ._metadata import Metadata, check_metadata
+from ._source import comment_text, output_directory, python_literal, write_source
 
 __all__ = ["export_python"]
 
@@ -52,18 +53,6 @@ def _scale(gain, offset, v):
 '''
 
 
-def check_python_name(name: Any) -> str:
-    """Return ``name`` if :func:`export_python` accepts it as a module name, else raise ``TypeError``/``ValueError``.
-
-    :func:`~tinyprop.export._text.check_name`, and not the name of a
-    standard-library module (the generated module would shadow it).
-    """
-    name = check_name(name)
-    if name in sys.stdlib_module_names:
-        raise ValueError(f"name must not be a standard-library module name (it would shadow it), got {name!r}")
-    return name
-
-
 def export_python(
     net: Network,
     path: Any,
@@ -85,7 +74,7 @@ def export_python(
         file would shadow).
     metadata:
         Optional names and units of inputs and outputs and a description (see
-        :func:`tinyprop.export._text.check_metadata`); written into the
+        :func:`tinyprop.export._metadata.check_metadata`); written into the
         header comment and into the module's constants, escaped.
 
     Raises
@@ -94,7 +83,7 @@ def export_python(
         For a bad argument, or a layer or activation that cannot be written in
         Python (a custom activation needs ``python_expression()``).
     """
-    name = check_python_name(name)
+    name = check_module_name(name)
     directory = output_directory(path)
     plan = make_plan(net, np.dtype(np.float64))
     meta = check_metadata(metadata, plan.n_in, plan.n_out)

@@ -1,9 +1,8 @@
-"""What ``tinyprop train`` and ``tinyprop demo`` add to the library's recipe: progress, metadata, the report.
+"""What ``tinyprop train`` and ``tinyprop demo`` add to the library's recipe: usage errors, metadata, the report.
 
 The recipe itself (split, network, fit, evaluation) is :mod:`tinyprop.recipes`;
-this module runs it with the command line's progress lines and usage errors
-and writes what the commands keep: the model file's metadata and the JSON
-training report.
+this module turns its refusals into usage errors and writes what the commands
+keep: the model file's metadata and the JSON training report.
 """
 
 from __future__ import annotations
@@ -16,8 +15,9 @@ from .._version import __version__
 from ..modelfile import fingerprint
 from ..layers import Affine, ColumnScaling
 from ..network import Network
-from ..recipes import Dataset, FitOutcome, FitSettings, Split, fit, split_rows
-from ._common import SAFETY, USAGE, CommandError, EpochProgress, finite_or_none
+from ..recipes import Dataset, FitOutcome, FitSettings, Split, split_rows
+from .._json import finite_or_none
+from ._common import SAFETY, USAGE, CommandError
 
 
 def split_for_command(n: int, settings: FitSettings) -> Split:
@@ -27,17 +27,6 @@ def split_for_command(n: int, settings: FitSettings) -> Split:
     except ValueError as exc:
         raise CommandError(str(exc).replace("test_fraction / validation_fraction",
                                             "--test-fraction / --validation-fraction"), USAGE) from None
-
-
-def fit_with_progress(
-    net: Network, data: Dataset, split: Split, settings: FitSettings, progress: EpochProgress | None
-) -> FitOutcome:
-    """:func:`tinyprop.recipes.fit` with the epoch progress lines (or the solver's) on stderr unless ``None``."""
-    try:
-        return fit(net, data, split, settings, callback=progress, progress=progress is not None)
-    finally:
-        if progress is not None:
-            progress.finish()
 
 
 def architecture(net: Network) -> str:
