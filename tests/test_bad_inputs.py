@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from tinyprop.csvdata import CsvError, read_csv
 from tinyprop.modelfile import ModelFileError, fingerprint, load, save
 from tinyprop.optim import SGD, Adam
 from tinyprop.registry import register_activation
@@ -97,6 +98,7 @@ def make_inputs(folder: Path) -> Inputs:
         "metadata_tuple": {"hidden": (4, 4)},
         "metadata_array": {"mean": np.zeros(3)},
         "metadata_surrogate": {"note": "\ud800"},
+        "X_huge": X / np.abs(X).max() * 1e308,
         "layers_mismatch": [tp.Affine(3, 4), tp.Tanh(), tp.Affine(5, 1)],
     }
     return Inputs(net, Adam(lr=0.01), path, user)
@@ -210,6 +212,12 @@ def _manifest_edited(inputs: Inputs, old: bytes, new: bytes, name: str) -> Any:
         for member, data in members.items():
             archive.writestr(member, data)
     return load(other)
+
+
+def _csv(inputs: Inputs, text: str) -> Any:
+    path = inputs.path.with_name("data.csv")
+    path.write_text(text, encoding="utf-8")
+    return read_csv(path).numeric(["x", "y"])
 
 
 def _write_text(inputs: Inputs) -> Any:
@@ -340,6 +348,14 @@ ROWS = [
         ModelFileError, r"big\.npz: manifest\.json is not valid UTF-8 JSON: 1e999 is not a finite number"),
     Row("save-lone-surrogate-in-metadata", lambda i: save(i.net, i.path, metadata=i.metadata_surrogate), ModelFileError,
         r"metadata\['note'\] holds the character '\\ud800' at position 0, which UTF-8 cannot encode"),
+    Row("csv-python-only-number", lambda i: _csv(i, "x,y\n1_0,2\n"), CsvError,
+        r"data\.csv, line 2, column 'x': '1_0' is not a number$"),
+    Row("csv-several-bad-cells", lambda i: _csv(i, "x,y\n1,\n2,n/a\ninf,3\n"), CsvError,
+        r"data\.csv: 3 cells are not usable numbers .*\n  line 2, column 'y': the cell is empty.*\n"
+        r"  line 3, column 'y': 'n/a' is not a number\n  line 4, column 'x': 'inf' is not a finite number"),
+    Row("export-fixed-point-calibration-overflows",
+        lambda i: tp.export_c_fixed_point(i.net, i.path.parent, i.X_huge), ValueError,
+        r"a calibrated magnitude of 1e\+308 times headroom 2 overflows float64; no fixed-point format can hold it"),
     Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError, r"expected a tinyprop Network, got str"),
     Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError,
         r"seed must be None or an integer >= 0, got -1"),

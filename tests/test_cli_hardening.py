@@ -12,6 +12,7 @@ import json
 import re
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -136,6 +137,21 @@ def test_running_out_of_memory_is_one_line(folder, capsys, monkeypatch):
                    "network or a smaller data file\n")
 
 
+def test_a_numerical_warning_inside_a_command_is_one_line_not_a_warning(folder, capsys, monkeypatch):
+    import tinyprop.cli.inspect_cmd as inspect_cmd
+
+    def overflowing(args):
+        np.float64(1e308) * np.float64(10.0)  # numpy warns: overflow encountered in scalar multiply
+        return 0
+
+    monkeypatch.setattr(inspect_cmd, "run", overflowing)
+    with np.errstate(over="warn"):
+        status, _, err = _run(folder, ["inspect", "{f}/model.npz"], capsys)
+    assert status == 1
+    assert re.fullmatch(r"tinyprop inspect: error: numerical problem: overflow encountered in .*; the data or the "
+                        r"model hold values outside the range they can be computed in\n", err), err
+
+
 # ------------------------------------------------------------------ item 2: the report, atomic and matching
 def test_a_failing_report_write_keeps_the_previous_report(folder, capsys, monkeypatch):
     out, report = folder / "pair.npz", folder / "pair.report.json"
@@ -154,6 +170,38 @@ def test_a_failing_report_write_keeps_the_previous_report(folder, capsys, monkey
     assert _run(folder, arguments + ["--seed", "3"], capsys)[0] == 1
     assert report.read_bytes() == before
     assert not [p for p in folder.iterdir() if p.name.endswith(".tmp")]
+
+
+def test_a_run_cannot_slip_between_another_runs_model_and_report(folder, monkeypatch, capsys):
+    # run A saves its model and pauses; run B (same --out) runs meanwhile; the report must describe the model
+    import tinyprop.cli.train_cmd as train_cmd
+
+    real_save = train_cmd.save
+    a_saved, b_done = threading.Event(), threading.Event()
+
+    def pausing_save(net, path, **options):
+        digest = real_save(net, path, **options)
+        if threading.current_thread().name == "A":
+            a_saved.set()
+            b_done.wait(timeout=2)  # B finishes in this gap unless the folder lock holds it back
+        return digest
+
+    monkeypatch.setattr(train_cmd, "save", pausing_save)
+    out = folder / "interleaved.npz"
+
+    def run(seed):
+        return main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "3", "--epochs", "2",
+                     "--quiet", "--seed", str(seed), "--out", str(out)])
+
+    first = threading.Thread(target=run, args=(1,), name="A")
+    first.start()
+    assert a_saved.wait(timeout=60)
+    second = threading.Thread(target=lambda: (run(2), b_done.set()), name="B")
+    second.start()
+    first.join(timeout=120)
+    second.join(timeout=120)
+    document = json.loads((folder / "interleaved.report.json").read_text())
+    assert document["network"]["fingerprint"] == tp.load_model_file(out).fingerprint
 
 
 @pytest.mark.slow
