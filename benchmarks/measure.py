@@ -160,7 +160,8 @@ def scaling(sample_counts: list[int], *, batch: int = 256) -> dict[str, Any]:
         def run(epochs: int) -> float:
             net = tp.build_mlp([8, 32, 32, 1], seed=0)
             start = time.perf_counter()
-            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch, seed=0)
+            tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(1e-3), epochs=epochs, batch_size=batch,
+                     seed=0)
             return time.perf_counter() - start
 
         one = min(run(1) for _ in range(2))
@@ -190,7 +191,8 @@ def second_order(names: tuple[str, ...] = ("Rat42",)) -> list[dict[str, Any]]:
         result = tp.solve(net, problem.x, problem.y, method="levenberg-marquardt")
         wall = time.perf_counter() - start
         lre = -math.log10(abs(result.rss - problem.certified_rss) / problem.certified_rss)
-        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations, "rss_lre": lre})
+        rows.append({"problem": name, "seconds": wall, "jacobian_evaluations": result.jacobian_evaluations,
+                     "rss_lre": lre})
     return rows
 
 
@@ -254,7 +256,8 @@ def _c_latency(net: tp.Network, folder: Path, calls: int) -> float | None:
     (folder / "driver.c").write_text(_C_DRIVER)
     binary = folder / "driver"
     subprocess.run(
-        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"), str(folder / "bench_model.c"), "-lm"],
+        [compiler, "-std=c99", "-O2", f"-DCALLS={int(calls)}L", "-o", str(binary), str(folder / "driver.c"),
+         str(folder / "bench_model.c"), "-lm"],
         check=True,
         capture_output=True,
     )

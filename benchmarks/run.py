@@ -39,7 +39,11 @@ def run(quick: bool = False, progress: bool = False) -> dict[str, Any]:
 
     def starting(part: str) -> None:
         if progress:
-            print(f"[{parts.index(part) + 1}/{len(parts)}] measuring {part.replace('_', '-')} ...", file=sys.stderr, flush=True)
+            print(
+                f"[{parts.index(part) + 1}/{len(parts)}] measuring {part.replace('_', '-')} "
+                "...",
+                file=sys.stderr, flush=True,
+            )
 
     results: dict[str, Any] = {"machine": measure.machine(), "quick": quick}
     starting("floor")
@@ -80,27 +84,51 @@ def table(results: dict[str, Any]) -> str:
         lines.append(f"{name:<46} {measured:>12} {shown:>8} {bar:>10}")
 
     for r in results["floor"]:
-        row(f"floor ratio, batch {r['batch']} {r['dtype']}", f"{r['step_s'] * 1e3:.3f} ms", r["ratio"], f"<= {BARS['floor']}")
+        row(
+            f"floor ratio, batch {r['batch']} "
+            f"{r['dtype']}",
+            f"{r['step_s'] * 1e3:.3f} ms", r["ratio"], f"<= {BARS['floor']}",
+        )
     for r in results["floor"]:
-        row(f"  step / (floor + Adam update), {r['batch']} {r['dtype']}", f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], "")
+        row(
+            f"  step / (floor + Adam update), {r['batch']} "
+            f"{r['dtype']}",
+            f"{r['floor_update_s'] * 1e3:.3f} ms", r["ratio_floor_update"], "",
+        )
     for r in results["tax"]:
-        row(f"abstraction tax, {r['network']} batch {r['batch']}", f"{r['step_s'] * 1e6:.1f} us", r["ratio"], f"<= {BARS['tax']}")
+        row(
+            f"abstraction tax, {r['network']} batch "
+            f"{r['batch']}",
+            f"{r['step_s'] * 1e6:.1f} us", r["ratio"], f"<= {BARS['tax']}",
+        )
     for r in results["memory"]:
-        row(f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], f"<= {BARS['memory']}")
+        row(
+            f"memory ratio, batch {r['batch']} "
+            f"{r['dtype']}",
+            f"{r['peak_bytes'] / 2**20:.1f} MiB", r["ratio"], f"<= {BARS['memory']}",
+        )
     s = results["scaling"]
     for n, sec in zip(s["samples"], s["seconds_per_epoch"]):
         row(f"epoch time, n = {n:.0e}", f"{sec * 1e3:.2f} ms", None, "")
     low, high = BARS["exponent"]
     row("scaling exponent (time ~ n^k)", "", s["exponent"], f"{low}..{high}")
     for r in results["second_order"]:
-        row(f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} Jacobians)", f"{r['seconds'] * 1e3:.1f} ms", None, f"LRE {r['rss_lre']:.1f}")
+        row(
+            f"Levenberg-Marquardt {r['problem']} ({r['jacobian_evaluations']} "
+            "Jacobians)",
+            f"{r['seconds'] * 1e3:.1f} ms", None, f"LRE {r['rss_lre']:.1f}",
+        )
     i = results["inference"]
     row("inference: net.predict, one sample", f"{i['predict_s'] * 1e6:.1f} us", 1.0, "")
     row("inference: exported Python / predict", f"{i['python_s'] * 1e6:.1f} us", i["python_ratio"], "")
     if i["c_s"] is None:
         row("inference: exported C", "no compiler", None, "")
     else:
-        row("inference: predict / exported C (speed-up)", f"{i['c_s'] * 1e9:.0f} ns", i["c_speedup"], f">= {BARS['c_speedup']:.0f}")
+        row(
+            "inference: predict / exported C "
+            "(speed-up)",
+            f"{i['c_s'] * 1e9:.0f} ns", i["c_speedup"], f">= {BARS['c_speedup']:.0f}",
+        )
     return "\n".join(lines)
 
 
@@ -110,7 +138,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", metavar="PATH", help="also write the results as JSON to PATH")
     parser.add_argument(
         "--threads", type=int, metavar="N",
-        help="BLAS threads (set before numpy starts, so the benchmark runs in a fresh process); default: BLAS's own choice",
+        help="BLAS threads (set before numpy starts, so the benchmark runs in a fresh process); "
+             "default: BLAS's own choice",
     )
     args = parser.parse_args(argv)
     if args.threads is not None and os.environ.get(_THREADS_SET) != str(args.threads):

@@ -13,7 +13,6 @@ import textwrap
 import threading
 import zipfile
 
-import numpy as np
 import pytest
 
 import tinyprop as tp
@@ -136,7 +135,8 @@ def test_a_200_mb_non_model_file_is_refused_with_little_memory(tmp_path, start):
         handle.truncate(200 * 2**20)
     done = subprocess.run([sys.executable, "-c", _MEASURE, str(path)], capture_output=True, text=True, check=True)
     extra_kib, seconds, outcome = done.stdout.strip().split("\n", 2)
-    print(f"refused 200 MB file starting {start!r} in {float(seconds):.3f} s, peak memory +{int(extra_kib) / 1024:.1f} MiB")
+    print(f"refused 200 MB file starting {start!r} in {float(seconds):.3f} s, "
+          f"peak memory +{int(extra_kib) / 1024:.1f} MiB")
     assert outcome.startswith("ModelFileError")
     assert int(extra_kib) < 50 * 1024
 

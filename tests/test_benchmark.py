@@ -20,7 +20,8 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
         assert row["floor_update_s"] > 0 and row["ratio_floor_update"] > 0
     assert results["second_order"][0]["rss_lre"] >= 8  # NIST Rat42 certified RSS reached
     assert progress.splitlines()[0] == "[1/6] measuring floor ..." and "[6/6] measuring inference" in progress
-    assert "floor ratio" in printed and "floor + Adam update" in printed and "abstraction tax" in printed and "scaling exponent" in printed
+    for heading in ("floor ratio", "floor + Adam update", "abstraction tax", "scaling exponent"):
+        assert heading in printed
 
 
 def test_table_marks_a_missing_compiler():

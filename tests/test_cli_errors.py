@@ -114,7 +114,8 @@ def folder(tmp_path_factory) -> Path:
         (folder / name).write_text(text, encoding="utf-8")
     (folder / "latin1.csv").write_bytes("x1,x2,y\n1,2,3\n4,5,6 \xb0C\n".encode("latin-1"))
     net = tp.Network([tp.Affine(2, 3), tp.Tanh(), tp.Affine(3, 1)], seed=0)
-    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}], "outputs": [{"name": "v"}]})
+    tp.save(net, folder / "model.npz", metadata={"inputs": [{"name": "u1"}, {"name": "u2"}],
+                                                 "outputs": [{"name": "v"}]})
     _tampered(folder / "model.npz", folder / "tampered.npz")
     return folder
 

@@ -46,7 +46,8 @@ def folder(tmp_path_factory) -> Path:
     blank[-1] = ",".join(blank[-1].split(",")[:-1] + [""])  # the last row's target cell is blank
     (folder / "blank_last_cell.csv").write_text("\n".join(blank) + "\n")
     header = lines[header_at]
-    (folder / "extreme.csv").write_text(header + "\n1e308,-1e308,1e308,1e308\n-1e308,1e308,-1e308,-1e308\n" + lines[-1] + "\n")
+    extreme = "1e308,-1e308,1e308,1e308\n-1e308,1e308,-1e308,-1e308\n"
+    (folder / "extreme.csv").write_text(header + "\n" + extreme + lines[-1] + "\n")
     _dirty_with_text_column(folder / "dirty.csv")
     return folder
 
@@ -87,8 +88,8 @@ CASES = [
      r"got 'math' \(for --language python\)\n"),
     ("export-fixed-point-overflowing-calibration", ["export", "{f}/model.npz", "--language", "c-fixed",
                                                     "--calibration", "{f}/extreme.csv", "--out", "{f}/q"], 1,
-     r"tinyprop export: error: cannot export: the calibration rows overflow float64 at layer \d+ .*|"
-     r"tinyprop export: error: cannot export: a calibrated magnitude of 1e\+308 times headroom 2 overflows float64.*\n"),
+     r"tinyprop export: error: cannot export: a calibrated magnitude of 1e\+308 times headroom 2 overflows "
+     r"float64.*\n"),
     ("export-fixed-point-headroom-far-too-large", ["export", "{f}/model.npz", "--language", "c-fixed",
                                                    "--calibration", "{f}/battery.csv", "--headroom", "1e300",
                                                    "--out", "{f}/q2"], 1,

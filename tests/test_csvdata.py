@@ -43,7 +43,8 @@ def test_every_bad_cell_is_reported_at_once(tmp_path):
     with pytest.raises(CsvError) as caught:
         read_csv(path).numeric(["a", "b", "y"])
     message = str(caught.value)
-    assert message.splitlines()[0].endswith("3 cells are not usable numbers (every used cell must hold a finite number):")
+    summary = "3 cells are not usable numbers (every used cell must hold a finite number):"
+    assert message.splitlines()[0].endswith(summary)
     assert "line 103, column 'b': the cell is empty" in message
     assert "line 151, column 'b': 'n/a' is not a number" in message
     assert "line 181, column 'a': 'inf' is not a finite number" in message
@@ -67,7 +68,8 @@ def test_a_column_full_of_text_is_summarised_in_one_line(tmp_path):
     path = _write(tmp_path, "\n".join(lines) + "\n")
     with pytest.raises(CsvError) as caught:
         read_csv(path).numeric(["t", "y"])
-    assert str(caught.value).splitlines()[1:] == ["  column 't': 100 cells, the first on line 2: '2024-01-01' is not a number"]
+    expected = "  column 't': 100 cells, the first on line 2: '2024-01-01' is not a number"
+    assert str(caught.value).splitlines()[1:] == [expected]
 
 
 def test_a_single_bad_cell_keeps_the_one_line_message(tmp_path):

@@ -224,7 +224,8 @@ def test_python_export_is_the_mean_of_the_member_exports(tmp_path):
     assert np.all(difference <= ensemble.agreement_bound(INPUTS))
 
 
-def compile_and_run(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int, sources: list[str]) -> np.ndarray:
+def compile_and_run(directory: Path, name: str, ctype: str, X: np.ndarray, n_out: int,
+                    sources: list[str]) -> np.ndarray:
     """Compile the exported files with the export tests' driver, run ``<name>_predict`` normally and in place."""
     y, y_in_place = run_predict_driver(directory, name, ctype, X, n_out, sources)
     assert np.array_equal(y, y_in_place)  # x and y may be the same array

@@ -26,14 +26,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import tinyprop as tp
+from net_strategies import networks as base_networks
+from test_export_c import HOSTILE, HOSTILE_METADATA
 from tinyprop.datasets import battery_pack
 from tinyprop.export._fixed_program import narrow
 from tinyprop.export._fixed_tables import TABLES, lookup
 from tinyprop.export.fixed_point import FixedPointReport, export_c_fixed_point
 from tinyprop.modelfile import fingerprint
-
-from net_strategies import networks as base_networks
-from test_export_c import HOSTILE, HOSTILE_METADATA
 
 CC = shutil.which("gcc") or shutil.which("cc")
 needs_cc = pytest.mark.skipif(CC is None, reason="no C compiler: neither gcc nor cc is on PATH")

@@ -193,7 +193,8 @@ def test_workspace_trace_serves_one_backward_and_is_invalidated_by_the_next_forw
         tp.build_mlp([3, 5, 1]).forward(X, workspace=work)
 
 
-@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.Sigmoid(), tp.ReLU(), tp.LeakyReLU(0.1), tp.Softplus(), tp.Identity()], ids=repr)
+@pytest.mark.parametrize("hidden", [tp.Tanh(), tp.Sigmoid(), tp.ReLU(), tp.LeakyReLU(0.1), tp.Softplus(),
+                                    tp.Identity()], ids=repr)
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_workspace_row_blocks_cover_large_batches(hidden, dtype):
     """A batch spanning many ~256 KiB row blocks gives the plain path's gradients."""
@@ -274,6 +275,7 @@ def test_a_sampled_check_equals_the_full_check_at_the_sampled_parameters(case, s
     starts = np.cumsum([0] + [p.size for p in net.params])
     assert all(np.any((part.indices >= lo) & (part.indices < hi)) for lo, hi in zip(starts[:-1], starts[1:]))
     np.testing.assert_array_equal(part.analytic, full.analytic[part.indices])
-    np.testing.assert_allclose(part.numerical, full.numerical[part.indices], rtol=1e-9, atol=1e-12 * np.abs(full.numerical).max())
+    np.testing.assert_allclose(part.numerical, full.numerical[part.indices], rtol=1e-9,
+                               atol=1e-12 * np.abs(full.numerical).max())
     again = tp.check_gradient(net, X, y, loss, parameters=k, seed=seed)
     np.testing.assert_array_equal(again.indices, part.indices)

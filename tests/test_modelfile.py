@@ -54,7 +54,8 @@ def independent_fingerprint(net: tp.Network) -> str:
     for i, layer in enumerate(net.layers):
         if isinstance(layer, tp.Affine):
             layers.append({"kind": "affine", "n_in": layer.n_in, "n_out": layer.n_out, "bias": layer.bias is not None})
-            arrays += [(f"layer{i}.weight", layer.weight)] + ([(f"layer{i}.bias", layer.bias)] if layer.bias is not None else [])
+            arrays += [(f"layer{i}.weight", layer.weight)] + ([(f"layer{i}.bias",
+                                                                layer.bias)] if layer.bias is not None else [])
         elif isinstance(layer, tp.LeakyReLU):
             bits = struct.pack(">d", layer.slope).hex()
             layers.append({"kind": "activation", "name": "LeakyReLU", "settings": {"slope": {"binary64": bits}}})
@@ -401,11 +402,14 @@ def test_model_from_parts_accepts_big_endian_and_fortran_arrays():
     [
         (lambda a, m: a["layer1.weight"].__setitem__((0, 0), 9.0), ModelFileError, "fingerprint mismatch"),
         (lambda a, m: a.pop("layer3.weight"), ModelFileError, r"do not match the layers"),
-        (lambda a, m: a.update({"layer1.bias": [0.0, 0.0]}), ModelFileError, r"array 'layer1.bias' must be a numpy array, found list"),
-        (lambda a, m: a.update({"layer1.bias": np.array([0.0, np.nan])}), ModelFileError, r"layer1.bias has a non-finite value"),
+        (lambda a, m: a.update({"layer1.bias": [0.0, 0.0]}), ModelFileError,
+         r"array 'layer1.bias' must be a numpy array, found list"),
+        (lambda a, m: a.update({"layer1.bias": np.array([0.0, np.nan])}), ModelFileError,
+         r"layer1.bias has a non-finite value"),
         (lambda a, m: m.update(arrays=[]), ModelFileError, r"missing \[\], unknown \['arrays'\]"),
         (lambda a, m: m.update(dtype="float16"), ModelFileError, r"manifest field 'dtype' is 'float16'"),
-        (lambda a, m: m["layers"][0].update(width=(2,)), ModelFileError, r"the manifest\['layers'\]\[0\]\['width'\] has type tuple"),
+        (lambda a, m: m["layers"][0].update(width=(2,)), ModelFileError,
+         r"the manifest\['layers'\]\[0\]\['width'\] has type tuple"),
     ],
     ids=["changed-weight", "missing-array", "list-not-array", "nan", "arrays-field", "dtype", "tuple-in-manifest"],
 )
@@ -489,7 +493,8 @@ def test_flipped_byte_in_an_array_is_refused(saved):
     at = data.index(net.layers[1].weight.tobytes())  # layer1.weight as stored (little-endian machine)
     data[at + 3] ^= 0x01
     path.write_bytes(bytes(data))
-    with pytest.raises(ModelFileError, match=r"model\.npz: the archive is damaged or truncated .*CRC-32 for file 'layer1\.weight\.npy'"):
+    with pytest.raises(ModelFileError, match=r"model\.npz: the archive is damaged or truncated "
+                                             r".*CRC-32 for file 'layer1\.weight\.npy'"):
         load(path)
 
 
@@ -498,7 +503,8 @@ def test_changed_array_with_recomputed_zip_checksum_is_refused_by_sha256(saved):
     changed = net.layers[1].weight.copy()
     changed[0, 0] = np.nextafter(changed[0, 0], 1.0)  # one unit in the last place
     replace_array(path, "layer1.weight", changed, update_record=False)
-    with pytest.raises(ModelFileError, match=r"array 'layer1\.weight': SHA-256 of the stored data is [0-9a-f]{64}, the manifest lists"):
+    with pytest.raises(ModelFileError,
+                       match=r"array 'layer1\.weight': SHA-256 of the stored data is [0-9a-f]{64}, the manifest lists"):
         load(path)
 
 
@@ -509,14 +515,16 @@ def test_edited_shape_in_the_manifest_is_refused(saved):
         manifest["arrays"][2]["shape"] = [1, 4]
 
     edit_manifest(path, edit)
-    with pytest.raises(ModelFileError, match=r"array 'layer1\.weight': the manifest lists shape \[1, 4\] but the member holds shape \[2, 2\]"):
+    with pytest.raises(ModelFileError, match=r"array 'layer1\.weight': the manifest lists shape \[1, 4\] "
+                                             r"but the member holds shape \[2, 2\]"):
         load(path)
 
 
 def test_edited_layer_width_in_the_manifest_is_refused(saved):
     path, _ = saved
     edit_manifest(path, lambda m: m["layers"][1].update(n_out=3))
-    with pytest.raises(ModelFileError, match=r"array layer1\.weight is float64 of shape \(2, 2\); its layer needs float64 of shape \(3, 2\)"):
+    with pytest.raises(ModelFileError, match=r"array layer1\.weight is float64 of shape \(2, 2\); "
+                                             r"its layer needs float64 of shape \(3, 2\)"):
         load(path)
 
 
@@ -525,21 +533,24 @@ def test_truncated_file_is_refused(saved, keep):
     path, _ = saved
     data = path.read_bytes()
     path.write_bytes(data[:keep] if keep >= 0 else data[:keep])
-    with pytest.raises(ModelFileError, match=r"model\.npz: (not a tinyprop archive|the archive is damaged or truncated)"):
+    with pytest.raises(ModelFileError,
+                       match=r"model\.npz: (not a tinyprop archive|the archive is damaged or truncated)"):
         load(path)
 
 
 def test_array_of_another_dtype_is_refused(saved):
     path, net = saved
     replace_array(path, "layer1.weight", net.layers[1].weight.astype(np.float32), update_record=False)
-    with pytest.raises(ModelFileError, match=r"manifest lists dtype float64 \(<f8\) but the member holds dtype float32 \(<f4\)"):
+    with pytest.raises(ModelFileError,
+                       match=r"manifest lists dtype float64 \(<f8\) but the member holds dtype float32 \(<f4\)"):
         load(path)
 
 
 def test_array_of_another_dtype_with_a_matching_record_is_refused(saved):
     path, net = saved
     replace_array(path, "layer1.weight", net.layers[1].weight.astype(np.float32), update_record=True)
-    with pytest.raises(ModelFileError, match=r"array layer1\.weight is float32 of shape \(2, 2\); its layer needs float64"):
+    with pytest.raises(ModelFileError,
+                       match=r"array layer1\.weight is float32 of shape \(2, 2\); its layer needs float64"):
         load(path)
 
 
@@ -564,7 +575,8 @@ def test_missing_member_is_refused(saved):
     members = read_members(path)
     del members["layer3.weight.npy"]
     write_members(path, members)
-    with pytest.raises(ModelFileError, match=r"member\(s\) \['layer3\.weight\.npy'\] listed in the manifest are missing"):
+    with pytest.raises(ModelFileError,
+                       match=r"member\(s\) \['layer3\.weight\.npy'\] listed in the manifest are missing"):
         load(path)
 
 
@@ -592,8 +604,10 @@ def test_compressed_member_is_refused(saved):
         (lambda m: m["layers"][3].update(bias=0), r"layer 3: bias must be true or false, found 0"),
         (lambda m: m["layers"][0].update(width=-2), r"layer 0: width must be an integer from 1 .* found -2"),
         (lambda m: m["layers"][2].update(kind="convolution"), r"layer 2: kind must be one of .* found 'convolution'"),
-        (lambda m: m["layers"][2].update(extra=1), r"layer 2 \(activation\) must have exactly the fields \['kind', 'name', 'settings'\]"),
-        (lambda m: m["layers"][2].update(settings=[0.25]), r"settings of activation 'LeakyReLU' must be a dict, found list"),
+        (lambda m: m["layers"][2].update(extra=1),
+         r"layer 2 \(activation\) must have exactly the fields \['kind', 'name', 'settings'\]"),
+        (lambda m: m["layers"][2].update(settings=[0.25]),
+         r"settings of activation 'LeakyReLU' must be a dict, found list"),
         (lambda m: m["layers"][2].update(name=7), r"layer 2: the activation name must be a string, found 7"),
         (lambda m: m.update(layers={"0": {}}), r"'layers' must be a list of 1 to 10000 layers, found dict"),
         (lambda m: m.update(layers=[]), r"'layers' must be a list of 1 to 10000 layers, found 0 entries"),
@@ -609,12 +623,16 @@ def test_compressed_member_is_refused(saved):
         (lambda m: m.update(extra=1), r"manifest fields: missing \[\], unknown \['extra'\]"),
         (lambda m: m.pop("dtype"), r"manifest fields: missing \['dtype'\], unknown \[\]"),
         (lambda m: m.update(arrays={}), r"manifest field 'arrays' must be a list, found dict"),
-        (lambda m: m["arrays"][0].update(sha256="0" * 63), r"array 'layer0\.mean': sha256 must be 64 lowercase hex digits"),
+        (lambda m: m["arrays"][0].update(sha256="0" * 63),
+         r"array 'layer0\.mean': sha256 must be 64 lowercase hex digits"),
         (lambda m: m["arrays"][0].update(dtype="object"), r"array 'layer0\.mean': dtype 'object' is not allowed"),
-        (lambda m: m["arrays"][0].update(shape=[-2]), r"array 'layer0\.mean': shape must be a list of at most 32 non-negative integers"),
+        (lambda m: m["arrays"][0].update(shape=[-2]),
+         r"array 'layer0\.mean': shape must be a list of at most 32 non-negative integers"),
         (lambda m: m["arrays"][0].update(name="../evil"), r"'name' must be a new array name .* found '\.\./evil'"),
-        (lambda m: m["arrays"][0].pop("sha256"), r"'arrays'\[0\] must be an object with keys \['dtype', 'name', 'sha256', 'shape'\]"),
-        (lambda m: m["arrays"].reverse(), r"the arrays \['layer4\.scale', .*\] do not match the layers, which need \['layer0\.mean'"),
+        (lambda m: m["arrays"][0].pop("sha256"),
+         r"'arrays'\[0\] must be an object with keys \['dtype', 'name', 'sha256', 'shape'\]"),
+        (lambda m: m["arrays"].reverse(),
+         r"the arrays \['layer4\.scale', .*\] do not match the layers, which need \['layer0\.mean'"),
     ],
 )
 def test_manifest_with_wrong_fields_is_refused(saved, edit, message):
@@ -627,7 +645,8 @@ def test_manifest_with_wrong_fields_is_refused(saved, edit, message):
 def test_changed_activation_setting_is_refused_by_the_fingerprint(saved):
     path, _ = saved
     edit_manifest(path, lambda m: m["layers"][2]["settings"].update(slope=0.5))
-    with pytest.raises(ModelFileError, match=r"fingerprint mismatch: the manifest lists [0-9a-f]{64}, the file's contents give"):
+    with pytest.raises(ModelFileError,
+                       match=r"fingerprint mismatch: the manifest lists [0-9a-f]{64}, the file's contents give"):
         load(path)
 
 
@@ -636,7 +655,8 @@ def test_unknown_activation_name_is_refused_with_how_to_register(saved):
     edit_manifest(path, lambda m: m["layers"][2].update(name="SwishOfMine", settings={}))
     with pytest.raises(
         ModelFileError,
-        match=r"names the activation 'SwishOfMine', which is not registered in this program; .*register_activation\(<class>, name='SwishOfMine'\)",
+        match=r"names the activation 'SwishOfMine', which is not registered in this program; "
+        r".*register_activation\(<class>, name='SwishOfMine'\)",
     ):
         load(path)
 
@@ -644,7 +664,9 @@ def test_unknown_activation_name_is_refused_with_how_to_register(saved):
 def test_activation_constructor_failure_is_reported_as_a_file_problem(saved):
     path, _ = saved
     edit_manifest(path, lambda m: m["layers"][2].update(settings={"slope": -1.0}))
-    with pytest.raises(ModelFileError, match=r"'LeakyReLU' could not be rebuilt as LeakyReLU\(\*\*\{'slope': -1\.0\}\): ValueError: LeakyReLU slope must be"):
+    with pytest.raises(ModelFileError, match=r"'LeakyReLU' could not be rebuilt as LeakyReLU\(\*\*"
+                                             r"\{'slope': -1\.0\}\): "
+                                             r"ValueError: LeakyReLU slope must be"):
         load(path)
     edit_manifest(path, lambda m: m["layers"][2].update(settings={"steepness": 1.0}))
     with pytest.raises(ModelFileError, match=r"could not be rebuilt .*TypeError: .*'steepness'"):
@@ -718,7 +740,9 @@ def test_pickled_object_array_is_refused_and_never_run(saved, tmp_path, claim_ob
         manifest["arrays"][2]["dtype"] = "object"
         members["manifest.json"] = json.dumps(manifest).encode()
     write_members(path, members)
-    expected = r"dtype 'object' is not allowed" if claim_object_dtype else r"array 'layer1\.weight': the manifest lists dtype float64 \(<f8\) but the member holds dtype object \(\|O\)"
+    expected = r"dtype 'object' is not allowed" if claim_object_dtype else (
+        r"array 'layer1\.weight': the manifest lists dtype float64 \(<f8\) but the member holds dtype object \(\|O\)"
+    )
     with pytest.raises(ModelFileError, match=expected):
         load(path)
     assert not marker.exists()

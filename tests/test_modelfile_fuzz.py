@@ -61,7 +61,8 @@ def load_or_refuse(data: bytes) -> tp.Network | None:
     return net
 
 
-REASONS = ("ZIP signature", "damaged or truncated", "SHA-256", "fingerprint mismatch", "manifest field", "member", "layer")
+REASONS = ("ZIP signature", "damaged or truncated", "SHA-256", "fingerprint mismatch", "manifest field", "member",
+           "layer")
 
 
 # ---------------------------------------------------------------- file bytes
@@ -132,14 +133,18 @@ plausible = st.sampled_from(
     [0, 1, 2, -1, 2**31, 2**53 + 1, 1.5, True, None, "", "affine", "activation", "standardize", "Tanh",
      "LeakyReLU", "float32", "float64", "object", "layer1.weight", "layer0.mean", "0" * 64, [], {}, [2, 2], [2]]
 )
-plausible_keys = st.sampled_from(["kind", "name", "settings", "slope", "bias", "n_in", "n_out", "width", "arrays", "shape"])
+plausible_keys = st.sampled_from(["kind", "name", "settings", "slope", "bias", "n_in", "n_out", "width", "arrays",
+                                  "shape"])
 json_values = st.recursive(
-    st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=8) | plausible,
-    lambda children: st.lists(children, max_size=4) | st.dictionaries(st.text(max_size=6) | plausible_keys, children, max_size=4),
+    st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False,
+                                                          allow_infinity=False) | st.text(max_size=8) | plausible,
+    lambda children: st.lists(children, max_size=4) | st.dictionaries(st.text(max_size=6) | plausible_keys, children,
+                                                                      max_size=4),
     max_leaves=12,
 )
 manifest_edits = st.lists(
-    st.tuples(st.sampled_from(["replace", "delete", "add"]), st.sampled_from(MANIFEST_PATHS), json_values, st.text(max_size=6) | plausible_keys),
+    st.tuples(st.sampled_from(["replace", "delete", "add"]), st.sampled_from(MANIFEST_PATHS), json_values,
+              st.text(max_size=6) | plausible_keys),
     min_size=1,
     max_size=3,
 )
@@ -261,14 +266,16 @@ def test_any_architecture_round_trips(net, metadata_value):
 # ---------------------------------------------------------------- the reusable archive
 @st.composite
 def named_arrays(draw) -> dict[str, np.ndarray]:
-    names = draw(st.lists(st.from_regex(r"[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}(/[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}){0,2}", fullmatch=True), max_size=4, unique=True))
+    names = draw(st.lists(st.from_regex(r"[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}(/[A-Za-z0-9_][A-Za-z0-9_.\-]{0,8}){0,2}",
+                                        fullmatch=True), max_size=4, unique=True))
     arrays = {}
     for name in names:
         dtype = np.dtype(draw(st.sampled_from(sorted(ARRAY_DTYPES))))
         shape = tuple(draw(st.lists(st.integers(0, 3), max_size=3)))
-        raw = draw(st.binary(min_size=dtype.itemsize * int(np.prod(shape)), max_size=dtype.itemsize * int(np.prod(shape))))
+        raw = draw(st.binary(min_size=dtype.itemsize * int(np.prod(shape)),
+                             max_size=dtype.itemsize * int(np.prod(shape))))
         array = np.frombuffer(raw, dtype=np.uint8).view(dtype).reshape(shape) if raw else np.zeros(shape, dtype)
-        arrays[name] = array.astype(bool) if dtype == bool else array
+        arrays[name] = array.astype(bool) if dtype == np.dtype(bool) else array
     return arrays
 
 

@@ -73,7 +73,8 @@ def _constant(t):
 
 CASES = [
     ("sgd", lambda s: SGD(0.1, schedule=s), lambda th, gs, eta: _reference_sgd(th, gs, 0.1, 0.0, False, eta)),
-    ("momentum", lambda s: SGD(0.1, momentum=0.8, schedule=s), lambda th, gs, eta: _reference_sgd(th, gs, 0.1, 0.8, False, eta)),
+    ("momentum", lambda s: SGD(0.1, momentum=0.8, schedule=s), lambda th, gs, eta: _reference_sgd(th, gs, 0.1, 0.8,
+                                                                                                  False, eta)),
     (
         "nesterov",
         lambda s: SGD(0.1, momentum=0.8, nesterov=True, schedule=s),
@@ -189,7 +190,8 @@ def test_no_allocation_after_the_first_update(make, dtype):
 
 
 @pytest.mark.parametrize("make", [lambda: SGD(0.1, momentum=0.5), lambda: RMSProp(0.01),
-                                  lambda: Adam(0.01, schedule=LinearWarmUp(4, then=ExponentialSchedule(0.5, 3)), clip_norm=2.0)],
+                                  lambda: Adam(0.01, schedule=LinearWarmUp(4, then=ExponentialSchedule(0.5, 3)),
+                                               clip_norm=2.0)],
                          ids=["momentum", "rmsprop", "adam"])
 def test_state_export_and_import_continue_bit_identically(make):
     params, grads = _params_and_grads(5, 10)
@@ -231,7 +233,8 @@ def test_set_state_refuses_mismatches():
         RMSProp(0.01).set_state(state)
     with pytest.raises(ValueError, match="settings"):
         Adam(0.02).set_state(state)
-    broken = OptimizerState(state.kind, state.settings, state.steps, {k: v for k, v in state.arrays.items() if k != "second_moment/1"})
+    broken = OptimizerState(state.kind, state.settings, state.steps,
+                            {k: v for k, v in state.arrays.items() if k != "second_moment/1"})
     with pytest.raises(ValueError, match="'<slot>/<i>'"):
         Adam(0.01).set_state(broken)
     wrong_shape = dict(state.arrays)

@@ -28,9 +28,9 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from fake_terminal import FakeTerminal
 from tinyprop.datasets import load_nist
 from tinyprop.solve import solve
-from fake_terminal import FakeTerminal
 
 PROBLEMS = ("Rat42", "Misra1a", "Misra1b", "Misra1d", "Lanczos3")
 LRE_CAP = 11.0

@@ -21,9 +21,8 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.recipes import TabularRegression
+from tinyprop.recipes import TabularRegression, fit_tabular_regression
 from tinyprop.sweep import SweepRecord, TrainingData, setting_key, sweep
-from tinyprop.recipes import fit_tabular_regression
 
 QUICK = TabularRegression(max_epochs=25, patience=10)
 
@@ -88,7 +87,8 @@ def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
     # patience: the run stops early, so a different patience would change it
     defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
     recipe = TabularRegression()
-    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"], defaults["seed"])
+    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"],
+                                                               defaults["seed"])
     run, reference = recipe({}, TrainingData(X, Y)), fit_tabular_regression(X, Y)
     assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.max_epochs
     assert_same_run(run, reference)
@@ -164,7 +164,8 @@ def test_raising_recipe_is_recorded():
     result = sweep(raising_recipe, [{"seed": s} for s in range(4)], X, Y)
     assert [r.status for r in result.records] == ["ok", "failed", "failed", "failed"]
     assert result.records[1].error == "RuntimeError: no network for seed 1"
-    assert result.records[2].error == "TypeError: the recipe must return a Network or (Network, TrainingResult), got str"
+    expected = "TypeError: the recipe must return a Network or (Network, TrainingResult), got str"
+    assert result.records[2].error == expected
     unknown = sweep(QUICK, [{"seed": 0, "widths": [3]}], X, Y).records[0]
     assert unknown.status == "failed" and "unknown setting key(s) ['widths']" in unknown.error
 
@@ -294,7 +295,8 @@ def test_interrupted_sweep_resumes_and_skips_finished_settings(tmp_path, sequent
     assert calls[3:] == [setting_key(s) for s in SETTINGS[3:]]
     assert resumed.trained == tuple(calls[3:])
     assert [r.model_file is not None for r in resumed.records] == [r.ok for r in resumed.records]
-    stripped = dataclasses.replace(resumed, records=tuple(dataclasses.replace(r, model_file=None) for r in resumed.records))
+    stripped = dataclasses.replace(resumed,
+                                   records=tuple(dataclasses.replace(r, model_file=None) for r in resumed.records))
     assert_same_sweep(stripped, sequential)
 
     again = sweep(CountingRecipe(str(log)), SETTINGS, X, Y, validation=VALIDATION, test=TEST, results_path=folder)

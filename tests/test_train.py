@@ -16,12 +16,12 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from fake_terminal import FakeTerminal
 from tinyprop._progress import EpochProgress
+from tinyprop.checkpoint import TrainingState
 from tinyprop.optim import SGD, Adam, RMSProp, optimizer_from_state
 from tinyprop.schedules import CosineSchedule
-from tinyprop.checkpoint import TrainingState
 from tinyprop.train import EpochInfo, TrainingDiverged, train
-from fake_terminal import FakeTerminal
 
 OPTIMIZERS = {
     "sgd": lambda: SGD(0.05),
@@ -122,7 +122,8 @@ def test_history_records_whole_data_losses():
     result = train(net, X[20:], y[20:], loss=tp.MeanSquaredError(), optimizer=Adam(0.01), epochs=4, batch_size=16,
                    seed=0, validation=(X[:20], y[:20]), callback=remember)
     probe = _net()
-    for (weights, training, validation), h_train, h_val in zip(snapshots, result.history.training, result.history.validation):
+    for (weights, training, validation), h_train, h_val in zip(snapshots, result.history.training,
+                                                               result.history.validation):
         for p, w in zip(probe.params, weights):
             p[...] = w
         assert h_train == training == tp.MeanSquaredError().value(probe.predict(X[20:]), y[20:])

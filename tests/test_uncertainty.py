@@ -38,9 +38,9 @@ import json
 import numpy as np
 import pytest
 from scipy import differentiate, stats
-from test_solve_nist import PROBLEMS, build, fit, lre, parameters
 
 import tinyprop as tp
+from test_solve_nist import PROBLEMS, build, fit, lre, parameters
 from tinyprop.datasets import load_nist
 from tinyprop.solve import solve
 from tinyprop.uncertainty import (
@@ -324,4 +324,5 @@ def test_uncertainty_from_the_solve_result_equals_the_one_from_the_data():
     net = build("Rat42", problem.start1)
     result = tp.solve(net, problem.x, problem.y)
     direct = tp.parameter_uncertainty(net, problem.x, problem.y)
-    np.testing.assert_allclose(tp.parameter_uncertainty(net, result=result).standard_errors, direct.standard_errors, rtol=1e-10)
+    np.testing.assert_allclose(tp.parameter_uncertainty(net, result=result).standard_errors, direct.standard_errors,
+                               rtol=1e-10)

@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
-from net_strategies import networks
 from scipy import differentiate
 
 import tinyprop as tp
+from net_strategies import networks
 from tinyprop.solve import solve
 from tinyprop.uncertainty import (
     RankDeficientError,

@@ -6,13 +6,11 @@ codes and qualified review is the user's responsibility.
 """
 
 from ._version import __version__
-
 from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
-from .mlp import build_mlp
-from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
+from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
+from .ensemble import Ensemble
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .layers import Affine, ColumnScaling, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,
@@ -22,28 +20,29 @@ from .losses import (
     MeanSquaredError,
     SquaredError,
 )
+from .mlp import build_mlp
+from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
 from .network import Network, Trace
 from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp, optimizer_from_state
-from .registry import register_activation
-from .ensemble import Ensemble
-from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
-from .solve import SolveResult, solve
-from .sensitivity import SensitivityTable, input_sensitivity
-from .sweep import SweepRecord, SweepResult, TrainingData, sweep
 from .recipes import TabularRegression, fit_tabular_regression
-from .uncertainty import (
-    ParameterUncertainty,
-    PredictionIntervals,
-    RankDeficientError,
-    parameter_uncertainty,
-    uncertainty_report,
-)
+from .registry import register_activation
+from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
+from .sensitivity import SensitivityTable, input_sensitivity
+from .solve import SolveResult, solve
+from .sweep import SweepRecord, SweepResult, TrainingData, sweep
 from .train import (
     EpochInfo,
     History,
     TrainingDiverged,
     TrainingResult,
     train,
+)
+from .uncertainty import (
+    ParameterUncertainty,
+    PredictionIntervals,
+    RankDeficientError,
+    parameter_uncertainty,
+    uncertainty_report,
 )
 from .workspace import Workspace
 

@@ -59,7 +59,8 @@ ARRAY_DTYPES = {
     for name in ("bool", "int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64", "float32", "float64")
 }
 ARRAY_NAME = re.compile(r"(?=.{1,200}\Z)[A-Za-z0-9_][A-Za-z0-9_.\-]*(/[A-Za-z0-9_][A-Za-z0-9_.\-]*)*")
-"""Array names: ``/``-separated parts, each starting with a letter, digit or ``_`` (so never ``..``); 1-200 characters."""
+"""Array names: ``/``-separated parts, each starting with a letter, digit or ``_`` (so never ``..``);
+1-200 characters."""
 MAX_JSON_DEPTH = 64
 MAX_MANIFEST_BYTES = 64 * 2**20
 _MAX_NPY_HEADER = 10_000  # numpy's own default limit for reading .npy headers
@@ -151,7 +152,10 @@ def write_bytes_atomically(path: str | os.PathLike[str], data: bytes) -> None:
 
 
 def _sync_folder(folder: str) -> None:
-    """Make a rename in ``folder`` durable; skipped where folders cannot be opened or synced (Windows, some file systems)."""
+    """Make a rename in ``folder`` durable.
+
+    Skipped where folders cannot be opened or synced (Windows, some file systems).
+    """
     if os.name != "posix":
         return
     try:
@@ -231,7 +235,11 @@ def check_json(value: Any, where: str, depth: int = 0) -> None:
         for index, item in enumerate(value):
             check_json(item, f"{where}[{index}]", depth + 1)
         return
-    hint = " (use a list)" if isinstance(value, tuple) else " (convert it with int(), float() or .tolist())" if isinstance(value, (np.generic, np.ndarray)) else ""
+    hint = ""
+    if isinstance(value, tuple):
+        hint = " (use a list)"
+    elif isinstance(value, (np.generic, np.ndarray)):
+        hint = " (convert it with int(), float() or .tolist())"
     raise ArchiveError(
         f"{where} has type {type(value).__name__}, which JSON cannot hold{hint}; allowed: dict with str keys, "
         "list, str, int, bool, finite float, None"
@@ -269,7 +277,7 @@ def read_archive(path: str | os.PathLike[str]) -> tuple[dict[str, np.ndarray], d
 
 
 def _read_file(path: str | os.PathLike[str]) -> bytes:
-    """The bytes of a regular file that starts with a ZIP local-header signature and is at most :data:`MAX_ARCHIVE_BYTES`.
+    """The bytes of a regular file that starts with a ZIP signature and holds at most :data:`MAX_ARCHIVE_BYTES`.
 
     The type, the signature and the size are checked before the file is read,
     so a FIFO or device is refused without blocking or reading, and a large
@@ -333,7 +341,7 @@ def _check_layout(data: bytes, archive: zipfile.ZipFile) -> None:
 
 
 def _check_end_record(tail: bytes, size: int) -> int:
-    """Check the file's last bytes are an end-of-central-directory record for this file; return the directory's offset."""
+    """Check that the file ends with its end-of-central-directory record; return the directory's offset."""
     if len(tail) < _END_RECORD.size or tail[:4] != _END_SIGNATURE:
         raise ArchiveError(
             "the archive is damaged or truncated (the file does not end with the end of the central directory: "
@@ -426,7 +434,10 @@ def _array_records(records: Any) -> list[dict[str, Any]]:
             raise ArchiveError(f"{where} must be an object with keys {sorted(_RECORD_KEYS)}, found {found}")
         name, dtype, shape, digest = record["name"], record["dtype"], record["shape"], record["sha256"]
         if not isinstance(name, str) or not ARRAY_NAME.fullmatch(name) or name in seen:
-            raise ArchiveError(f"{where}: 'name' must be a new array name ('/'-separated letters, digits, '_ . -'), found {name!r}")
+            raise ArchiveError(
+                f"{where}: 'name' must be a new array name ('/'-separated letters, digits, '_ . -'), found "
+                f"{name!r}"
+            )
         seen.add(name)
         if not isinstance(dtype, str) or dtype not in ARRAY_DTYPES:
             raise ArchiveError(f"array {name!r}: dtype {dtype!r} is not allowed; allowed: {', '.join(ARRAY_DTYPES)}")
@@ -435,7 +446,10 @@ def _array_records(records: Any) -> list[dict[str, Any]]:
             or len(shape) > 32
             or not all(isinstance(n, int) and not isinstance(n, bool) and 0 <= n < 2**62 for n in shape)
         ):
-            raise ArchiveError(f"array {name!r}: shape must be a list of at most 32 non-negative integers, found {shape!r}")
+            raise ArchiveError(
+                f"array {name!r}: shape must be a list of at most 32 non-negative integers, found "
+                f"{shape!r}"
+            )
         if not isinstance(digest, str) or not _SHA256.fullmatch(digest):
             raise ArchiveError(f"array {name!r}: sha256 must be 64 lowercase hex digits, found {digest!r}")
     return records

@@ -90,7 +90,9 @@ class TrainingState:
         if len(self.training_loss) != self.epoch:
             raise ValueError(f"training state has {len(self.training_loss)} training losses for {self.epoch} epochs")
         if not isinstance(self.network, str) or not _SHA256.fullmatch(self.network):
-            raise ValueError(f"training state network must be a SHA-256 (64 lowercase hex digits), got {self.network!r}")
+            raise ValueError(
+                f"training state network must be a SHA-256 (64 lowercase hex digits), got {self.network!r}"
+            )
         has_validation = self.settings.get("n_validation") is not None
         if (self.validation_loss is not None) != has_validation:
             raise ValueError(
@@ -119,7 +121,9 @@ class TrainingState:
             )
         if self.best_weights is not None:
             if len(self.best_weights) != len(self.weights):
-                raise ValueError(f"training state has {len(self.best_weights)} best_weights for {len(self.weights)} weights")
+                raise ValueError(
+                    f"training state has {len(self.best_weights)} best_weights for {len(self.weights)} weights"
+                )
             for i, (b, w) in enumerate(zip(self.best_weights, self.weights)):
                 if np.shape(b) != np.shape(w) or np.asarray(b).dtype != np.asarray(w).dtype:
                     raise ValueError(f"training state best_weights {i} is not shaped like weights {i}")
@@ -135,7 +139,11 @@ class TrainingState:
             "version": 2,
             "epoch": self.epoch,
             "n_weights": len(self.weights),
-            "optimizer": {"kind": self.optimizer.kind, "settings": self.optimizer.settings, "steps": self.optimizer.steps},
+            "optimizer": {
+                "kind": self.optimizer.kind,
+                "settings": self.optimizer.settings,
+                "steps": self.optimizer.steps,
+            },
             "rng": self.rng,
             "training_loss": list(self.training_loss),
             "validation_loss": None if self.validation_loss is None else list(self.validation_loss),
@@ -160,7 +168,10 @@ class TrainingState:
         settings against the run) is checked when :func:`train` resumes.
         """
         if not isinstance(scalars, dict) or not isinstance(arrays, dict):
-            raise TypeError(f"scalars and arrays must be dicts, got {type(scalars).__name__} and {type(arrays).__name__}")
+            raise TypeError(
+                f"scalars and arrays must be dicts, got {type(scalars).__name__} and "
+                f"{type(arrays).__name__}"
+            )
         try:
             if scalars["format"] != "tinyprop training state" or scalars["version"] != 2:
                 raise ValueError(
@@ -179,7 +190,8 @@ class TrainingState:
                 steps=_whole(optimizer_scalars["steps"], "optimizer steps"),
                 arrays={k[len(prefix):]: np.asarray(v) for k, v in arrays.items() if k.startswith(prefix)},
             )
-            expected = {f"weights/{i}" for i in range(n)} | ({f"best_weights/{i}" for i in range(n)} if has_best else set())
+            expected = {f"weights/{i}" for i in range(n)}
+            expected |= {f"best_weights/{i}" for i in range(n)} if has_best else set()
             extra = {k for k in arrays if not k.startswith(prefix)} - expected
             if extra:
                 raise ValueError(f"unexpected arrays {sorted(extra)}")

@@ -273,7 +273,8 @@ def _parse(name: str, data: bytes, delimiter: str) -> CsvTable:
         raise CsvError(f"{name}: no header row (the file is empty or holds only comments)")
     if not starts:
         raise CsvError(f"{name}: a header (line {header_line}) but no data rows")
-    return CsvTable(name, data, header, np.frombuffer(starts, dtype=np.int64), delimiter, hashlib.sha256(data).hexdigest())
+    offsets = np.frombuffer(starts, dtype=np.int64)
+    return CsvTable(name, data, header, offsets, delimiter, hashlib.sha256(data).hexdigest())
 
 
 def _picker(indices: list[int]) -> Callable[[list[str]], tuple[str, ...]]:
@@ -311,7 +312,7 @@ def _plain_numbers(cells: tuple[str, ...]) -> list[float] | None:
 
 
 def _number(cell: str) -> tuple[float, str | None]:
-    """``(value, None)`` for a finite decimal number, else ``(nan, kind)`` with kind ``"empty"``, ``"text"`` or ``"not finite"``."""
+    """``(value, None)`` for a finite decimal number, else ``(nan, kind)`` (``"empty"``, ``"text"``, ...)."""
     text = cell.strip()
     if not text:
         return math.nan, "empty"

@@ -146,7 +146,8 @@ class Ensemble:
 
         (``|y_k| + b_k`` bounds member ``k``'s output in either evaluation; the
         ``u`` term is the rounding of the division), plus one smallest
-        subnormal per rounding, times 1.01 for second-order terms. This is the tolerance for comparing exported code with
+        subnormal per rounding, times 1.01 for second-order terms. This is the
+        tolerance for comparing exported code with
         :meth:`predict` of ``Ensemble([m.copy(dtype) for m in members])``.
         """
         dtype = np.dtype(self.dtype if dtype is None else dtype)

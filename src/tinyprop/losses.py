@@ -16,7 +16,6 @@ from __future__ import annotations
 import numpy as np
 
 from ._settings_equality import Configured
-
 from .activations import Sigmoid, Softplus
 
 __all__ = [

@@ -32,10 +32,10 @@ from typing import Any
 
 import numpy as np
 
-from .activations import Activation
 from ._json import canonical_json, json_copy, sha256_hex
 from ._validate import require_finite
 from ._version import __version__
+from .activations import Activation
 from .archive import ArchiveError, array_record, check_json, read_archive, write_archive
 from .layers import Affine, Standardize, Unstandardize
 from .network import Network
@@ -58,7 +58,9 @@ MODEL_FORMAT_VERSION = 1
 FINGERPRINT_FORMAT = "tinyprop-fingerprint"
 FINGERPRINT_VERSION = 1
 
-_MANIFEST_KEYS = ("format", "format_version", "tinyprop_version", "dtype", "n_params", "fingerprint", "layers", "metadata")
+_MANIFEST_KEYS = (
+    "format", "format_version", "tinyprop_version", "dtype", "n_params", "fingerprint", "layers", "metadata"
+)
 _LAYER_KEYS = {
     "affine": {"kind", "n_in", "n_out", "bias"},
     "activation": {"kind", "name", "settings"},
@@ -122,7 +124,9 @@ def fingerprint(net: Network) -> str:
 
 
 def _description(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str, Any]]) -> dict[str, Any]:
-    return {"format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION, "dtype": dtype, "layers": layers, "arrays": arrays}
+    return {
+        "format": FINGERPRINT_FORMAT, "version": FINGERPRINT_VERSION, "dtype": dtype, "layers": layers, "arrays": arrays
+    }
 
 
 def _fingerprint_of(dtype: str, layers: list[dict[str, Any]], arrays: list[dict[str, Any]]) -> str:
@@ -427,7 +431,10 @@ def _check_manifest_fields(manifest: dict[str, Any]) -> None:
     missing = [key for key in _MANIFEST_KEYS if key not in manifest]
     unknown = sorted(key for key in manifest if key not in _MANIFEST_KEYS)
     if missing or unknown:
-        raise ModelFileError(f"manifest fields: missing {missing}, unknown {unknown}; expected exactly {list(_MANIFEST_KEYS)}")
+        raise ModelFileError(
+            f"manifest fields: missing {missing}, unknown {unknown}; expected exactly "
+            f"{list(_MANIFEST_KEYS)}"
+        )
     if manifest["format"] != MODEL_FORMAT:
         raise ModelFileError(f"manifest field 'format' is {manifest['format']!r}, expected {MODEL_FORMAT!r}")
     version = manifest["format_version"]
@@ -437,10 +444,14 @@ def _check_manifest_fields(manifest: dict[str, Any]) -> None:
         )
     if not isinstance(manifest["tinyprop_version"], str) or not 0 < len(manifest["tinyprop_version"]) <= 64:
         raise ModelFileError(
-            f"manifest field 'tinyprop_version' must be a string of 1 to 64 characters, found {manifest['tinyprop_version']!r}"
+            "manifest field 'tinyprop_version' must be a string of 1 to 64 characters, "
+            f"found {manifest['tinyprop_version']!r}"
         )
     if manifest["dtype"] not in _NETWORK_DTYPES:
-        raise ModelFileError(f"manifest field 'dtype' is {manifest['dtype']!r}, expected one of {list(_NETWORK_DTYPES)}")
+        raise ModelFileError(
+            f"manifest field 'dtype' is {manifest['dtype']!r}, expected one of "
+            f"{list(_NETWORK_DTYPES)}"
+        )
     if not _is_int(manifest["n_params"]) or manifest["n_params"] < 1:
         raise ModelFileError(f"manifest field 'n_params' must be a positive integer, found {manifest['n_params']!r}")
     if not isinstance(manifest["fingerprint"], str) or not _HEX64.fullmatch(manifest["fingerprint"]):
@@ -448,7 +459,10 @@ def _check_manifest_fields(manifest: dict[str, Any]) -> None:
             f"manifest field 'fingerprint' must be 64 lowercase hex digits, found {manifest['fingerprint']!r}"
         )
     if not isinstance(manifest["metadata"], dict):
-        raise ModelFileError(f"manifest field 'metadata' must be an object, found {type(manifest['metadata']).__name__}")
+        raise ModelFileError(
+            "manifest field 'metadata' must be an object, found "
+            f"{type(manifest['metadata']).__name__}"
+        )
     layers = manifest["layers"]
     if not isinstance(layers, list) or not 0 < len(layers) <= _MAX_LAYERS:
         found = f"{len(layers)} entries" if isinstance(layers, list) else type(layers).__name__
@@ -464,11 +478,17 @@ def _check_layer_record(index: int, layer: Any) -> None:
         raise ModelFileError(f"{where}: kind must be one of {sorted(_LAYER_KEYS)}, found {kind!r}")
     keys = _LAYER_KEYS[layer["kind"]]
     if set(layer) != keys:
-        raise ModelFileError(f"{where} ({layer['kind']}) must have exactly the fields {sorted(keys)}, found {sorted(layer)}")
+        raise ModelFileError(
+            f"{where} ({layer['kind']}) must have exactly the fields {sorted(keys)}, found "
+            f"{sorted(layer)}"
+        )
     if layer["kind"] == "affine":
         for field in ("n_in", "n_out"):
             if not _is_int(layer[field]) or not 1 <= layer[field] <= _MAX_WIDTH:
-                raise ModelFileError(f"{where}: {field} must be an integer from 1 to {_MAX_WIDTH}, found {layer[field]!r}")
+                raise ModelFileError(
+                    f"{where}: {field} must be an integer from 1 to {_MAX_WIDTH}, found "
+                    f"{layer[field]!r}"
+                )
         if not isinstance(layer["bias"], bool):
             raise ModelFileError(f"{where}: bias must be true or false, found {layer['bias']!r}")
     elif layer["kind"] == "activation":
@@ -558,14 +578,16 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     lines.extend(f"  {index:>3}  {_layer_line(layer)}" for index, layer in enumerate(net.layers))
     if metadata:
         lines.append("metadata:")
-        lines.extend("  " + line for line in json.dumps(metadata, indent=2, ensure_ascii=False, default=repr).splitlines())
+        text = json.dumps(metadata, indent=2, ensure_ascii=False, default=repr)
+        lines.extend("  " + line for line in text.splitlines())
     return "\n".join(lines)
 
 
 def _layer_line(layer: Any) -> str:
     if isinstance(layer, Affine):
         shapes = ", ".join(f"{name} {p.shape}" for name, p in zip(("weight", "bias"), layer.params))
-        return f"affine          {layer.n_in} -> {layer.n_out}, {shapes}, {sum(p.size for p in layer.params)} parameters"
+        count = sum(p.size for p in layer.params)
+        return f"affine          {layer.n_in} -> {layer.n_out}, {shapes}, {count} parameters"
     if isinstance(layer, Activation):
         name = activation_name(layer) or f"{type(layer).__qualname__} (not registered)"
         settings = ", ".join(f"{key}={value!r}" for key, value in layer.settings().items())

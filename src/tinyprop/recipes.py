@@ -50,9 +50,9 @@ import numpy as np
 
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
-from .mlp import build_mlp
 from .layers import Affine, Standardize, Unstandardize
 from .losses import MeanSquaredError
+from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
@@ -289,7 +289,8 @@ class FitSettings:
     def describe_method(self) -> str:
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
-        text = f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, {self.epochs} epochs"
+        text = (f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, "
+                f"{self.epochs} epochs")
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
 
@@ -313,7 +314,7 @@ class Split:
     test: np.ndarray
 
     def sizes(self) -> dict[str, int]:
-        return {"training": int(self.training.size), "validation": int(self.validation.size), "test": int(self.test.size)}
+        return {part: int(getattr(self, part).size) for part in ("training", "validation", "test")}
 
 
 @dataclass(frozen=True)

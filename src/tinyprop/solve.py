@@ -10,7 +10,8 @@ the residual vector ``r`` ordered like the rows of ``net.jacobian``:
 
 - ``method="levenberg-marquardt"``: ``scipy.optimize.least_squares`` with
   ``method="lm"`` (MINPACK's ``lmder``; Moré (1978), "The Levenberg-Marquardt
-  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer, pp. 105-116, pages from memory),
+  algorithm: implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer,
+  pp. 105-116, pages from memory),
   given the residuals and the exact Jacobian ``dr/dtheta = net.jacobian(X)``
   from backpropagation. Each iteration solves
   ``(J^T J + mu D^T D) delta = -J^T r`` with a trust-region choice of ``mu``

@@ -59,8 +59,8 @@ import numpy as np
 from ._json import canonical_json, sha256_hex
 from ._validate import as_float_array, as_samples, as_targets
 from .archive import ArchiveError, array_record, check_json, write_bytes_atomically
-from .modelfile import fingerprint, load_model_file, save
 from .losses import Loss, MeanSquaredError
+from .modelfile import fingerprint, load_model_file, save
 from .network import Network
 from .train import TrainingDiverged, TrainingResult
 
@@ -86,7 +86,7 @@ def _read_only_copy(value: Any, name: str) -> np.ndarray:
 
 
 def _checked_pair(pair: Any, name: str, n_columns: int, n_targets: int) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, y)`` with ``X`` ``(n, n_columns)`` and ``y`` ``(n, n_targets)`` (or ``(n,)`` for one target), read-only copies."""
+    """``(X, y)``: ``X`` ``(n, n_columns)``, ``y`` ``(n, n_targets)`` (or ``(n,)`` for one target); read-only copies."""
     if not isinstance(pair, (tuple, list)) or len(pair) != 2:
         raise TypeError(f"{name} must be a pair (X, y) or None, got {type(pair).__name__}")
     X = _read_only_copy(pair[0], f"{name} X")
@@ -132,7 +132,8 @@ class TrainingData:
         object.__setattr__(self, "X", X)
         object.__setattr__(self, "y", y)
         if self.validation is not None:
-            object.__setattr__(self, "validation", _checked_pair(self.validation, "validation", X.shape[1], _targets(y)))
+            pair = _checked_pair(self.validation, "validation", X.shape[1], _targets(y))
+            object.__setattr__(self, "validation", pair)
 
     def __reduce__(self) -> tuple[Any, ...]:
         # rebuilt through __init__, so the copy a worker unpickles is read-only too
@@ -249,7 +250,9 @@ class SweepResult:
 
     def best(self) -> tuple[SweepRecord, Network]:
         """The ok row with the lowest validation loss (the first of equals) and its network."""
-        candidates = [(r.validation_loss, i) for i, r in enumerate(self.records) if r.ok and r.validation_loss is not None]
+        candidates = [
+            (r.validation_loss, i) for i, r in enumerate(self.records) if r.ok and r.validation_loss is not None
+        ]
         if not candidates:
             raise ValueError("no row has a validation loss: pass validation=(X_val, y_val), or every setting failed")
         index = min(candidates)[1]
@@ -257,7 +260,8 @@ class SweepResult:
 
     def summary(self) -> str:
         """The table as aligned plain text, one line per setting (the error in place of the numbers)."""
-        lines = [f"{'#':>3}  {'status':<6}  {'val. loss':>11}  {'test RMSE':>11}  {'epochs':>6}  {'seconds':>8}  setting"]
+        columns = f"{'#':>3}  {'status':<6}  {'val. loss':>11}  {'test RMSE':>11}  {'epochs':>6}  {'seconds':>8}"
+        lines = [f"{columns}  setting"]
         for index, r in enumerate(self.records):
             if r.ok:
                 numbers = "  ".join((_cell(r.validation_loss, 11), _cell(r.test_rmse, 11), _cell(r.epochs_run, 6)))
@@ -431,7 +435,9 @@ class _ResultsFolder:
             raise ValueError(f"{self.table} is not a version-{TABLE_VERSION} sweep table (line 1 is {lines[:1]})")
         differing = [k for k in self.header if stored.get(k) != self.header[k]]
         if differing:
-            detail = "; ".join(f"{k}: the folder has {stored.get(k)!r}, this call {self.header[k]!r}" for k in differing)
+            detail = "; ".join(
+                f"{k}: the folder has {stored.get(k)!r}, this call {self.header[k]!r}" for k in differing
+            )
             raise ValueError(
                 f"{self.folder} holds a sweep with another {', '.join(differing)} ({detail}); "
                 "resume only the same recipe, loss and data, or use a new folder"
@@ -573,7 +579,11 @@ def sweep(
         for done, (index, outcome) in enumerate(results, 1):
             records[index], networks[index] = _finish(outcome, folder)
             if progress:
-                print(f"sweep: {done}/{len(pending)} trained  {_progress_line(records[index])}", file=sys.stderr, flush=True)
+                print(
+                    f"sweep: {done}/{len(pending)} trained  "
+                    f"{_progress_line(records[index])}",
+                    file=sys.stderr, flush=True,
+                )
     finally:
         results.close()
     order = range(len(keys))

@@ -48,8 +48,8 @@ import numpy as np
 
 from ._json import json_copy
 from ._progress import EpochProgress
-from .checkpoint import TrainingState, network_digest, save_checkpoint
 from ._validate import as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
+from .checkpoint import TrainingState, network_digest, save_checkpoint
 from .layers import Affine
 from .losses import Loss
 from .network import Network
@@ -291,7 +291,9 @@ class _Run:
             "data_sha256": _data_digest(self.X, self.y, self.validation),
         }
         self.params = net.params
-        self.is_weight = [is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]]
+        self.is_weight = [
+            is_w for layer in net.layers if isinstance(layer, Affine) for is_w in (True, False)[: len(layer.params)]
+        ]
         self.backup = np.empty_like(net.vector)
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
         self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
@@ -339,12 +341,18 @@ class _Run:
 
     def restore(self, state: TrainingState) -> None:
         if not isinstance(state, TrainingState):
-            raise TypeError(f"resume must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
+            raise TypeError(
+                "resume must be a TrainingState (result.state or info.capture()), got "
+                f"{type(state).__name__}"
+            )
         # check everything first: a refused state leaves the network and the optimizer as they were
-        differing = sorted(k for k in set(self.settings) | set(state.settings) if self.settings.get(k) != state.settings.get(k))
+        keys = set(self.settings) | set(state.settings)
+        differing = sorted(k for k in keys if self.settings.get(k) != state.settings.get(k))
         if differing:
-            detail = ", ".join(f"{k}: state has {_brief(state.settings.get(k))}, this call {_brief(self.settings.get(k))}"
-                               for k in differing)
+            detail = ", ".join(
+                f"{k}: state has {_brief(state.settings.get(k))}, this call {_brief(self.settings.get(k))}"
+                for k in differing
+            )
             raise ValueError(f"resume state does not match this training run ({detail})")
         try:
             state.check()
@@ -489,7 +497,8 @@ class _Run:
         }
         message = messages[reason]
         if reason == STOP_DIVERGED and self._targets_overflow() is not None:
-            message = f"training diverged {problem}; the network holds the last finite weights. {self._targets_overflow()}"
+            message = (f"training diverged {problem}; the network holds the last finite weights. "
+                       f"{self._targets_overflow()}")
         if reason == STOP_CALLBACK and self.patience is not None and self.best_epoch is not None:
             message += f"; restored the weights of epoch {self.best_epoch}"
         if reason == STOP_EPOCHS and self.patience is not None and self.best_epoch is not None:
@@ -555,7 +564,10 @@ def _check_like(targets: list[np.ndarray], sources: list[np.ndarray], what: str)
     for i, (t, s) in enumerate(zip(targets, sources)):
         s = np.asarray(s)
         if s.shape != t.shape or s.dtype != t.dtype:
-            raise ValueError(f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} {s.dtype}")
+            raise ValueError(
+                f"{what}: array {i} must have shape {t.shape} and dtype {t.dtype}, got {s.shape} "
+                f"{s.dtype}"
+            )
         require_finite(s, f"{what} array {i}")
 
 

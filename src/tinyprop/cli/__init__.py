@@ -98,7 +98,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser, subparsers = build_parser()
     args, unknown = parser.parse_known_args(arguments)
     if args.command is None:
-        parser.error(f"unrecognized arguments: {' '.join(unknown)}" if unknown else "give a command, e.g. 'tinyprop demo'")
+        parser.error(
+            f"unrecognized arguments: {' '.join(unknown)}" if unknown else "give a command, e.g. 'tinyprop demo'"
+        )
     if unknown:
         subparsers[args.command].error(f"unrecognized arguments: {' '.join(unknown)}")
     prefix = f"tinyprop {args.command}: error:"

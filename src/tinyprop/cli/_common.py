@@ -71,7 +71,7 @@ def _unregistered_activations(path: str) -> list[str]:
 
 
 def read_table(path: str, delimiter: str) -> CsvTable:
-    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`), turning every problem into a one-line :class:`CommandError`."""
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`); every problem becomes a one-line :class:`CommandError`."""
     try:
         return read_csv(path, delimiter=delimiter)
     except OSError as exc:
@@ -122,7 +122,8 @@ def _text_column_hint(exc: CsvError, default_inputs: list[str], n_rows: int) -> 
 def stored_names(metadata: dict, key: str) -> list[str] | None:
     """The column names a model's metadata lists under ``key`` (``"inputs"`` or ``"outputs"``), if well formed."""
     entries = metadata.get(key)
-    if not isinstance(entries, list) or not all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries):
+    named = isinstance(entries, list) and all(isinstance(e, dict) and isinstance(e.get("name"), str) for e in entries)
+    if not named:
         return None
     return [e["name"] for e in entries]
 

@@ -10,13 +10,12 @@ from __future__ import annotations
 import time
 from typing import Any
 
-
+from .._json import finite_or_none
 from .._version import __version__
-from ..modelfile import fingerprint
 from ..layers import Affine, ColumnScaling
+from ..modelfile import fingerprint
 from ..network import Network
 from ..recipes import Dataset, FitOutcome, FitSettings, Split, split_rows
-from .._json import finite_or_none
 from ._common import SAFETY, USAGE, CommandError
 
 

@@ -49,7 +49,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="target columns of DATA.csv (default: the output names stored in the model)")
     parser.add_argument("--delimiter", default=",", help="field separator of DATA.csv (default ',')")
     parser.add_argument("--rows", type=_args.positive_int, default=16, help="rows to check on (default 16)")
-    parser.add_argument("--seed", type=_args.seed, default=0, help="seed for choosing or generating rows and the --parameters sample (default 0)")
+    parser.add_argument("--seed", type=_args.seed, default=0,
+                        help="seed for choosing or generating rows and the --parameters sample (default 0)")
     parser.add_argument("--parameters", type=_args.positive_int, metavar="N",
                         help="check a random sample of N parameters (drawn with --seed; one from every weight and "
                              "bias array) instead of all: the check costs a few dozen forward passes per parameter")

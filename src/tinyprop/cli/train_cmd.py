@@ -14,6 +14,18 @@ import numpy as np
 
 from ..csvdata import CsvTable
 from ..modelfile import save
+from ..recipes import (
+    ACTIVATIONS,
+    METHODS,
+    OPTIMIZERS,
+    SCHEDULES,
+    Dataset,
+    FitSettings,
+    build_network,
+    evaluate_all,
+    fit,
+    least_squares_uncertainty,
+)
 from . import _args
 from ._common import (
     USAGE,
@@ -26,18 +38,6 @@ from ._common import (
     require_columns,
     write_json,
     write_plots,
-)
-from ..recipes import (
-    ACTIVATIONS,
-    METHODS,
-    OPTIMIZERS,
-    SCHEDULES,
-    Dataset,
-    FitSettings,
-    build_network,
-    evaluate_all,
-    fit,
-    least_squares_uncertainty,
 )
 from ._fit_report import architecture, model_metadata, report, split_for_command
 
@@ -61,8 +61,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     data.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                       help="input columns, comma-separated (default: every column that is not a target)")
     data.add_argument("--delimiter", default=",", help="field separator (default ',')")
-    data.add_argument("--validation-fraction", type=_args.fraction, default=defaults.validation_fraction,
-                      metavar="F", help=f"share of rows held out for validation (default {defaults.validation_fraction})")
+    data.add_argument(
+        "--validation-fraction",
+        type=_args.fraction,
+        default=defaults.validation_fraction,
+        metavar="F",
+        help=f"share of rows held out for validation (default {defaults.validation_fraction})",
+    )
     data.add_argument("--test-fraction", type=_args.fraction, default=defaults.test_fraction,
                       metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
     network = parser.add_argument_group("network")
@@ -78,9 +83,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                               "Levenberg-Marquardt or L-BFGS (small networks)")
     fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
-    fitting.add_argument("--learning-rate", type=_args.positive_float, metavar="LR",
-                         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items())
-                              + ")")
+    fitting.add_argument(
+        "--learning-rate",
+        type=_args.positive_float,
+        metavar="LR",
+        help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
+    )
     fitting.add_argument("--schedule", choices=SCHEDULES,
                          help=f"learning rate over the run: cosine (falls to 0 at the last epoch) or constant "
                               f"(default {defaults.schedule})")
@@ -97,7 +105,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fitting.add_argument("--seed", type=_args.seed, default=defaults.seed,
                          help=f"seed of the split, the initial weights and the shuffling (default {defaults.seed})")
     output = parser.add_argument_group("output")
-    output.add_argument("--out", default="model.npz", metavar="MODEL.npz", help="model file to write (default model.npz)")
+    output.add_argument("--out", default="model.npz", metavar="MODEL.npz",
+                        help="model file to write (default model.npz)")
     output.add_argument("--report", metavar="REPORT.json",
                         help="JSON training report to write (default: next to the model, <model>.report.json)")
     output.add_argument("--plots", metavar="DIR", help="also write learning_curves.png and parity.png into DIR "

@@ -26,5 +26,11 @@ from .fixed_point import FixedPointReport, StepFormat, export_c_fixed_point
 from .python import export_python
 
 __all__ = [
-    "agreement_bound", "check_name", "export_c", "export_c_fixed_point", "export_python", "FixedPointReport", "StepFormat",
+    "agreement_bound",
+    "check_name",
+    "export_c",
+    "export_c_fixed_point",
+    "export_python",
+    "FixedPointReport",
+    "StepFormat",
 ]

@@ -64,7 +64,17 @@ import math
 import re
 from typing import Callable
 
-from ..activations import BUILT_IN_ACTIVATIONS, Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh, built_in_name
+from ..activations import (
+    BUILT_IN_ACTIVATIONS,
+    Activation,
+    Identity,
+    LeakyReLU,
+    ReLU,
+    Sigmoid,
+    Softplus,
+    Tanh,
+    built_in_name,
+)
 
 __all__ = [
     "C_METHOD",

@@ -11,7 +11,7 @@ multiplications.
 
 from __future__ import annotations
 
-from ._fixed_program import IntegerProgram, QAffine, QLeaky, QRelu, QScaling, QStep, QTable, SLOPE_BITS
+from ._fixed_program import SLOPE_BITS, IntegerProgram, QAffine, QLeaky, QRelu, QScaling, QStep, QTable
 from ._fixed_tables import c_function
 from ._plan import route_work_arrays, work_array_widths
 from ._source import c_header

@@ -14,8 +14,8 @@ from .._version import __version__
 from ..modelfile import fingerprint
 from ..network import Network
 from ._activations import activation_kind
-from ._plan import ActivationStep, Plan, ScalingStep
 from ._metadata import Metadata, Port
+from ._plan import ActivationStep, Plan, ScalingStep
 from ._source import comment_text
 
 __all__ = ["CAUTION", "Provenance", "provenance", "header_lines"]

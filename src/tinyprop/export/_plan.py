@@ -34,7 +34,14 @@ from ..layers import Affine, ColumnScaling
 from ..network import Network
 
 __all__ = [
-    "AffineStep", "ScalingStep", "ActivationStep", "Step", "Plan", "make_plan", "route_work_arrays", "work_array_widths",
+    "AffineStep",
+    "ScalingStep",
+    "ActivationStep",
+    "Step",
+    "Plan",
+    "make_plan",
+    "route_work_arrays",
+    "work_array_widths",
 ]
 
 

@@ -205,7 +205,7 @@ class _Writer:
         ]
         for step in self.plan.steps:
             lines += self._constants(step)
-        for (kind, body), function in self.functions.items():
+        for (_, body), function in self.functions.items():
             lines += ["", f"static inline {self.ctype} {function}({self.ctype} z)", "{"]
             lines += [f"    {statement}" for statement in body.split("\n")] + ["}"]
         lines += ["", self.signature, "{"] + self._function_body() + ["}"]

@@ -58,9 +58,9 @@ from ._fixed_program import (
     build_program,
 )
 from ._header import header_lines, provenance
-from ._plan import make_plan
 from ._identifiers import check_c_name
 from ._metadata import check_metadata
+from ._plan import make_plan
 from ._source import c_block_comment, comment_text, output_directory, write_source
 
 __all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]

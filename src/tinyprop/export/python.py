@@ -25,9 +25,9 @@ import numpy as np
 from ..network import Network
 from ._activations import activation_kind, function_names, python_body
 from ._header import header_lines, provenance
-from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan
 from ._identifiers import check_module_name
 from ._metadata import Metadata, check_metadata
+from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan
 from ._source import comment_text, output_directory, python_literal, write_source
 
 __all__ = ["export_python"]
@@ -107,7 +107,7 @@ def export_python(
     lines += _metadata_constants(meta)
     for step in plan.steps:
         lines += _constants(step)
-    for (kind, body), function in functions.items():
+    for (_, body), function in functions.items():
         lines += ["", "", f"def {function}(z):"] + [f"    {statement}" for statement in body.split("\n")]
     helpers = [_AFFINE] + ([_SCALE] if plan.scalings else [])
     for helper in helpers:
