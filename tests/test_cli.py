@@ -19,6 +19,7 @@ import pytest
 
 import tinyprop as tp
 from tinyprop.cli import main
+from tinyprop.layers import ColumnScaling
 from tinyprop.registry import register_activation
 
 INPUTS = ["x0", "x1", "x2"]
@@ -80,7 +81,7 @@ def assert_same_network(a: tp.Network, b: tp.Network) -> None:
     for p, q in zip(a.params, b.params):
         assert p.dtype == q.dtype and np.array_equal(p, q)
     for la, lb in zip(a.layers, b.layers):
-        if isinstance(la, tp.ColumnScaling):
+        if isinstance(la, ColumnScaling):
             assert np.array_equal(la.mean, lb.mean) and np.array_equal(la.scale, lb.scale)
 
 

@@ -3,6 +3,12 @@
 Not certified for safety functions: validating a network and any code
 generated from it against the applicable functional-safety standards, local
 codes and qualified review is the user's responsibility.
+
+The names below are the public API, grouped by job (``docs/api.md`` follows the
+same groups). Internals that advanced users may still need stay in their
+modules: ``tinyprop.network.Trace``, ``tinyprop.workspace.Workspace``,
+``tinyprop.layers.ColumnScaling``, ``tinyprop.optim.OptimizerState`` and
+``tinyprop.optim.optimizer_from_state``.
 """
 
 from ._version import __version__
@@ -11,7 +17,7 @@ from .check import ActivationReport, GradientReport, check_activation, check_gra
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .ensemble import Ensemble
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
-from .layers import Affine, ColumnScaling, Standardize, Unstandardize
+from .layers import Affine, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,
     CrossEntropyOnSoftmax,
@@ -21,105 +27,62 @@ from .losses import (
     SquaredError,
 )
 from .mlp import build_mlp
-from .modelfile import ModelFile, ModelFileError, describe, fingerprint, load, load_model_file, save
-from .network import Network, Trace
-from .optim import SGD, Adam, Optimizer, OptimizerState, RMSProp, optimizer_from_state
+from .modelfile import (
+    ModelFile,
+    ModelFileError,
+    describe,
+    fingerprint,
+    load,
+    load_model_file,
+    model_from_parts,
+    model_parts,
+    save,
+)
+from .network import Network
+from .optim import SGD, Adam, Optimizer, RMSProp
 from .recipes import TabularRegression, fit_tabular_regression
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
 from .solve import SolveResult, solve
-from .sweep import SweepRecord, SweepResult, TrainingData, sweep
-from .train import (
-    EpochInfo,
-    History,
-    TrainingDiverged,
-    TrainingResult,
-    train,
-)
+from .sweep import SweepRecord, SweepResult, TrainingData, setting_key, sweep
+from .train import EpochInfo, History, TrainingDiverged, TrainingResult, train
 from .uncertainty import (
     ParameterUncertainty,
     PredictionIntervals,
     RankDeficientError,
+    parameter_labels,
     parameter_uncertainty,
     uncertainty_report,
 )
-from .workspace import Workspace
 
 __all__ = [
-    "Activation",
-    "ActivationReport",
-    "Adam",
-    "Affine",
-    "CheckpointError",
-    "ColumnScaling",
-    "CosineSchedule",
-    "CrossEntropyOnSigmoid",
-    "CrossEntropyOnSoftmax",
-    "Ensemble",
-    "EpochInfo",
-    "ExponentialSchedule",
-    "FixedPointReport",
-    "GradientReport",
-    "History",
-    "HuberError",
-    "Identity",
-    "LeakyReLU",
-    "LinearWarmUp",
-    "Loss",
-    "MeanSquaredError",
-    "ModelFile",
-    "ModelFileError",
-    "Network",
-    "Optimizer",
-    "OptimizerState",
-    "ParameterUncertainty",
-    "PredictionIntervals",
-    "RMSProp",
-    "RankDeficientError",
-    "ReLU",
-    "SGD",
-    "Schedule",
-    "SensitivityTable",
-    "Sigmoid",
-    "Softplus",
-    "SolveResult",
-    "SquaredError",
-    "Standardize",
-    "StepSchedule",
-    "SweepRecord",
-    "SweepResult",
-    "TabularRegression",
-    "Tanh",
-    "Trace",
-    "TrainingData",
-    "TrainingDiverged",
-    "TrainingResult",
-    "TrainingState",
-    "Unstandardize",
-    "Workspace",
-    "agreement_bound",
-    "build_mlp",
-    "check_activation",
-    "check_gradient",
-    "describe",
-    "export_c",
-    "export_c_fixed_point",
-    "export_python",
-    "fingerprint",
-    "fit_tabular_regression",
-    "input_sensitivity",
-    "load",
-    "load_checkpoint",
-    "load_model_file",
-    "optimizer_from_state",
-    "parameter_uncertainty",
-    "register_activation",
-    "save",
-    "save_checkpoint",
-    "solve",
-    "sweep",
-    "train",
-    "uncertainty_report",
+    # building a network
+    "Network", "build_mlp", "Affine", "Standardize", "Unstandardize",
+    # activations
+    "Activation", "Sigmoid", "Tanh", "ReLU", "LeakyReLU", "Softplus", "Identity", "register_activation",
+    # losses
+    "Loss", "SquaredError", "MeanSquaredError", "HuberError", "CrossEntropyOnSigmoid", "CrossEntropyOnSoftmax",
+    # training: the loop, optimizers, schedules, checkpoints
+    "train", "TrainingResult", "History", "EpochInfo", "TrainingDiverged",
+    "Optimizer", "SGD", "RMSProp", "Adam",
+    "Schedule", "StepSchedule", "ExponentialSchedule", "CosineSchedule", "LinearWarmUp",
+    "TrainingState", "save_checkpoint", "load_checkpoint", "CheckpointError",
+    # least-squares fitting
+    "solve", "SolveResult",
+    # recipes
+    "fit_tabular_regression", "TabularRegression",
+    # verification
+    "check_gradient", "GradientReport", "check_activation", "ActivationReport",
+    # model files
+    "save", "load", "load_model_file", "ModelFile", "ModelFileError", "fingerprint", "describe",
+    "model_parts", "model_from_parts",
+    # inference code
+    "export_c", "export_python", "export_c_fixed_point", "FixedPointReport", "agreement_bound",
+    # how far to trust a fit
+    "parameter_uncertainty", "ParameterUncertainty", "PredictionIntervals", "RankDeficientError", "parameter_labels",
+    "input_sensitivity", "SensitivityTable", "uncertainty_report",
+    # many networks
+    "sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "Ensemble",
     "__version__",
 ]

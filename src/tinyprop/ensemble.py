@@ -60,7 +60,7 @@ class Ensemble:
     >>> import numpy as np, tinyprop as tp
     >>> members = [tp.Network([tp.Affine(1, 1)], init=None) for _ in range(2)]
     >>> members[0].set_vector([1.0, 0.0]); members[1].set_vector([3.0, 0.0])
-    >>> mean, spread = Ensemble(members).predict_with_spread([[2.0]])
+    >>> mean, spread = tp.Ensemble(members).predict_with_spread([[2.0]])
     >>> float(mean[0, 0]), float(spread[0, 0])  # outputs 2 and 6
     (4.0, 2.0)
     """

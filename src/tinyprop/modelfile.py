@@ -114,9 +114,8 @@ def fingerprint(net: Network) -> str:
     same settings and bit-identical parameters and scalings.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.modelfile import fingerprint
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
-    >>> len(fingerprint(net)), fingerprint(net) == fingerprint(net.copy())
+    >>> len(tp.fingerprint(net)), tp.fingerprint(net) == tp.fingerprint(net.copy())
     (64, True)
     """
     layers, arrays = _layer_records(net)
@@ -273,12 +272,11 @@ def model_parts(net: Network, metadata: dict[str, Any] | None = None) -> tuple[d
     :class:`ModelFileError`; neither ``net`` nor ``metadata`` is modified.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.modelfile import model_from_parts, model_parts
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
-    >>> arrays, manifest = model_parts(net, {"units": "V"})
+    >>> arrays, manifest = tp.model_parts(net, {"units": "V"})
     >>> list(arrays), manifest["fingerprint"] == tp.fingerprint(net)
     (['layer0.weight', 'layer0.bias'], True)
-    >>> model_from_parts(arrays, manifest).metadata
+    >>> tp.model_from_parts(arrays, manifest).metadata
     {'units': 'V'}
     """
     layers, arrays = _layer_records(net)
@@ -561,8 +559,7 @@ def describe(net: Network, metadata: dict[str, Any] | None = None) -> str:
     activation, say) is shown with ``fingerprint: none (<reason>)``.
 
     >>> import tinyprop as tp
-    >>> from tinyprop.modelfile import describe
-    >>> print(describe(tp.Network([tp.Affine(2, 1)], seed=0)).splitlines()[0])
+    >>> print(tp.describe(tp.Network([tp.Affine(2, 1)], seed=0)).splitlines()[0])
     network: 2 inputs -> 1 output, 3 parameters, float64
     """
     if not isinstance(net, Network):

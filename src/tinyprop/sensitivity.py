@@ -84,7 +84,7 @@ def input_sensitivity(
     >>> import numpy as np, tinyprop as tp
     >>> net = tp.Network([tp.Affine(2, 1)], init=None)
     >>> net.layers[0].weight[:] = [[2.0, -0.5]]
-    >>> table = input_sensitivity(net, np.zeros((3, 2)), input_names=["voltage_V", "current_A"])
+    >>> table = tp.input_sensitivity(net, np.zeros((3, 2)), input_names=["voltage_V", "current_A"])
     >>> table.mean_abs.tolist(), table.mean.tolist()
     ([[2.0, 0.5]], [[2.0, -0.5]])
     """

@@ -117,9 +117,8 @@ def solve(
         ``rss``, cosine between ``r`` and the columns of ``J``). L-BFGS-B:
         ``gtol`` (largest gradient component); its relative-reduction test
         ``ftol`` is set to 0, because on badly scaled problems one short step
-        can trigger it long before the minimum (NIST Misra1d from start 2
-        stopped after 4 iterations with ``ftol=1e-15``), so L-BFGS stops when an
-        iteration no longer reduces ``E`` at all, usually with scipy's message
+        can trigger it long before the minimum (an example: ``docs/training.md``,
+        "Tolerance"), so L-BFGS stops when an iteration no longer reduces ``E`` at all, usually with scipy's message
         ``ABNORMAL_TERMINATION_IN_LNSRCH`` and ``success=False`` once float64
         precision is exhausted. The default 1e-15 asks for convergence to the
         limits of float64; MINPACK needs it above machine epsilon (2.2e-16).
@@ -132,11 +131,10 @@ def solve(
         elapsed time (one line rewritten in place on a terminal).
 
     >>> import numpy as np, tinyprop as tp
-    >>> from tinyprop.solve import solve
     >>> x = np.linspace(-2, 2, 20).reshape(-1, 1)
     >>> y = 3.0 / (1.0 + np.exp(0.5 - 1.5 * x[:, 0]))  # synthetic: 3 * sigmoid(1.5 x - 0.5)
     >>> net = tp.Network([tp.Affine(1, 1), tp.Sigmoid(), tp.Affine(1, 1, bias=False)], seed=0)
-    >>> result = solve(net, x, y)
+    >>> result = tp.solve(net, x, y)
     >>> result.success, np.round(result.theta, 6).tolist()
     (True, [1.5, -0.5, 3.0])
     """

@@ -164,7 +164,8 @@ def setting_key(setting: Mapping[str, Any]) -> str:
     differ; ``0.001`` and ``1e-3`` do not). ``ValueError`` for anything that
     JSON cannot hold exactly (tuples, numpy scalars, NaN, non-string keys).
 
-    >>> setting_key({"seed": 3, "hidden": [32], "lr": 1e-3})
+    >>> import tinyprop as tp
+    >>> tp.setting_key({"seed": 3, "hidden": [32], "lr": 1e-3})
     '{"hidden":[32],"lr":0.001,"seed":3}'
     """
     if not isinstance(setting, Mapping):

@@ -217,13 +217,11 @@ def train(
         the last finite weights).
 
     >>> import numpy as np, tinyprop as tp
-    >>> from tinyprop.optim import Adam
-    >>> from tinyprop.train import train
     >>> rng = np.random.default_rng(0)
     >>> X = rng.uniform(-1, 1, (64, 2)); y = X @ np.array([1.5, -2.0]) + 0.5  # synthetic
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0)
-    >>> result = train(net, X, y, loss=tp.MeanSquaredError(), optimizer=Adam(lr=0.05),
-    ...                epochs=200, batch_size=16, seed=1)
+    >>> result = tp.train(net, X, y, loss=tp.MeanSquaredError(), optimizer=tp.Adam(lr=0.05),
+    ...                   epochs=200, batch_size=16, seed=1)
     >>> result.stop_reason, result.history.training[-1] < 1e-8
     ('epochs', True)
     """

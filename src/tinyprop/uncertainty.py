@@ -264,7 +264,7 @@ def parameter_labels(net: Network) -> tuple[str, ...]:
     position of the :class:`~tinyprop.layers.Affine` layer in ``net.layers``.
 
     >>> import tinyprop as tp
-    >>> parameter_labels(tp.Network([tp.Affine(2, 1), tp.Tanh()], seed=0))
+    >>> tp.parameter_labels(tp.Network([tp.Affine(2, 1), tp.Tanh()], seed=0))
     ('layer 0 weight[0, 0]', 'layer 0 weight[0, 1]', 'layer 0 bias[0]')
     """
     labels: list[str] = []
@@ -298,7 +298,7 @@ def parameter_uncertainty(
     >>> y = np.array([0.1, 0.9, 2.1, 2.9])           # synthetic
     >>> net = tp.Network([tp.Affine(1, 1)], init=None)
     >>> net.layers[0].weight[:], net.layers[0].bias[:] = 0.96, 0.06  # least-squares line
-    >>> u = parameter_uncertainty(net, x, y)
+    >>> u = tp.parameter_uncertainty(net, x, y)
     >>> u.degrees_of_freedom, round(u.residual_sd, 6), np.round(u.standard_errors, 6).tolist()
     (2, 0.126491, [0.056569, 0.10583])
 

@@ -17,10 +17,9 @@ Identity    no code at all
 Only the exact built-in classes are recognised: a subclass may change
 ``value`` and must describe itself through the protocol below.
 
-**Tanh in float C.** A call of the C library's ``tanhf`` costs about as much
-as a whole 32-by-32 affine layer and keeps the compiler from vectorising the
-loop around it. The float export therefore evaluates tanh with arithmetic
-alone, in two passes over the layer (see :func:`c_input_limit`):
+**Tanh in float C.** The float export evaluates tanh with arithmetic alone
+instead of calling ``tanhf`` (why: ``docs/export.md``, "How the layout was
+found"), in two passes over the layer (see :func:`c_input_limit`):
 
 1. clamp ``z`` to ``[-9.5, 9.5]`` (``fabsf(z) > 9.5f ? copysignf(9.5f, z) : z``;
    for ``|z| >= 9.02`` the float nearest to ``tanh(z)`` is ``+-1``, and a NaN
@@ -30,12 +29,9 @@ alone, in two passes over the layer (see :func:`c_input_limit`):
    / (1 + tanh(z/2)^2) = h - h (h^2 / (4 + h^2))``, which damps the error of
    ``h`` where ``tanh`` is close to 1.
 
-``D`` (degree 2) and ``Q`` (degree 3, ``Q(0) = 1``) come from a minimax fit of
-the relative error of ``tanh(t) / t`` for ``|t| <= 4.75`` (type (3, 3) in
-``t^2``, Remez exchange, relative error 4e-8), rewritten for ``h`` and rounded
-to float; then ``D0``, ``D1`` and ``Q1`` were moved by one to five units in the
-last place, where that lowered the largest error on a sample of inputs (a greedy
-search over neighbouring floats). The accuracy claim does not rest on the fit:
+``D`` (degree 2) and ``Q`` (degree 3, ``Q(0) = 1``) are the float coefficients
+below (how they were found: ``docs/export.md``). The accuracy claim does not
+rest on how they were found:
 the tests evaluate the generated function at every float input and compare with
 the C library's double ``tanh``. Largest error: 2.06 ulp (two inputs above
 2 ulp), within the 4 ulp that :func:`~tinyprop.export.agreement_bound` assumes
@@ -138,9 +134,7 @@ def c_input_limit(act: Activation, ctype: str) -> float | None:
 
     ``None`` (no clamp) except for Tanh in ``float``, whose rational form holds
     for ``|z| <= 9.5`` only. The clamp is a loop of its own in the generated
-    code so that compilers vectorise both loops: with the clamp inside the
-    function, GCC folds the clamped branch to constants and can no longer
-    vectorise it without reordering floating-point operations.
+    code, so that compilers can vectorise both loops (``docs/export.md``).
     """
     return _TANH_FLOAT_LIMIT if type(act) is Tanh and ctype == "float" else None
 

@@ -84,10 +84,9 @@ def agreement_bound(net: Network, X: Any, *, dtype: Any = None, function_ulps: f
     An array ``(n, n_out)`` of non-negative bounds, one per output.
 
     >>> import numpy as np, tinyprop as tp
-    >>> from tinyprop.export import agreement_bound
     >>> net = tp.Network([tp.Affine(2, 1)], seed=0, init=None)
     >>> net.set_vector([1.0, 1.0, 0.0])
-    >>> float(agreement_bound(net, [[1.0, 1.0]])[0, 0]) < 4 * float(np.spacing(2.0))  # a few ulp of the output 2.0
+    >>> float(tp.agreement_bound(net, [[1.0, 1.0]])[0, 0]) < 4 * float(np.spacing(2.0))  # a few ulp of 2.0
     True
     """
     dtype = np.dtype(net.dtype if dtype is None else dtype)

@@ -18,13 +18,9 @@ The generated code:
   (``weight[j][k]`` connects input ``j`` to unit ``k``) and the loops over the
   units ``k`` are innermost, so unit ``k``'s sum still runs over ``j = 0, 1,
   ...`` in order while consecutive units sit side by side in memory; each
-  statement adds four terms (in order) to cut the round trips through memory;
-  loop bounds are constants; activation functions are ``static inline``. GCC 12
-  at ``-O2`` (x86-64) vectorises a loop over a layer's units when the width is a
-  multiple of the vector length (4 floats or 2 doubles) and the body calls no
-  library function and computes nothing conditionally (LeakyReLU's ``z *
-  slope`` is conditional); for example every 32-unit loop of an 8-32-32-1 tanh
-  network in float;
+  statement adds four terms (in order); loop bounds are constants; activation
+  functions are ``static inline`` (what compilers make of it, measured:
+  ``docs/export.md``, "How the layout was found");
 - writes every constant so that it converts back to exactly the stored value:
   ``repr`` (shortest round trip) for double and 9 significant digits for float
   (decimal, the default, exact with any correctly rounding compiler such as
