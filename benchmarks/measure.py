@@ -75,7 +75,7 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
     ``tanh`` per hidden layer, and the backward products ``delta^T x`` and
     ``delta W`` (not below the first layer).
     """
-    net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+    net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
     X, y = _synthetic(batch, 64, dtype)
     step = _training_step(net, Adam(1e-6), X, y)
     W1, W2, W3 = (layer.weight for layer in net.layers if isinstance(layer, tp.Affine))
@@ -111,7 +111,7 @@ def floor_ratio(batch: int, dtype: Any, *, calls: int, rounds: int) -> dict[str,
 
 def abstraction_tax(sizes: list[int], batch: int, *, calls: int, rounds: int) -> dict[str, Any]:
     """Plain-SGD step through tinyprop's public API over the hand-written numpy step (handwritten.py)."""
-    net = tp.build_mlp(sizes, hidden=tp.Tanh(), seed=0)
+    net = tp.build_mlp(sizes, activation=tp.Tanh(), seed=0)
     X, y = _synthetic(batch, sizes[0], np.float64)
     step = _training_step(net, SGD(1e-6), X, y)
     weights = [layer.weight.copy() for layer in net.layers if isinstance(layer, tp.Affine)]
@@ -135,7 +135,7 @@ def memory_ratio(batch: int, dtype: Any = np.float64) -> dict[str, Any]:
     X, y = _synthetic(batch, 64, dtype)
     tracemalloc.start()
     try:
-        net = tp.build_mlp([64, 256, 256, 1], hidden=tp.Tanh(), seed=0, dtype=dtype)
+        net = tp.build_mlp([64, 256, 256, 1], activation=tp.Tanh(), seed=0, dtype=dtype)
         step = _training_step(net, Adam(1e-6), X, y)
         step()
         step()

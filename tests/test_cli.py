@@ -72,7 +72,7 @@ def library_split(n: int, seed: int, validation: float, test: float) -> tuple[np
 
 def library_network(X: np.ndarray, Y: np.ndarray, hidden: list[int], activation: tp.Activation,
                     seed: int) -> tp.Network:
-    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], hidden=activation, seed=seed)
+    mlp = tp.build_mlp([X.shape[1], *hidden, Y.shape[1]], activation=activation, seed=seed)
     return tp.Network([tp.Standardize.from_data(X), *mlp.layers, tp.Unstandardize.from_data(Y)], init=None)
 
 

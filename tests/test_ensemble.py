@@ -50,7 +50,7 @@ def random_members(count: int, sizes: list[int], seed: int, dtype=np.float64) ->
     rng = np.random.default_rng(seed)
     members = []
     for _ in range(count):
-        net = tp.build_mlp(sizes, hidden=tp.Tanh(), dtype=dtype, seed=0)
+        net = tp.build_mlp(sizes, activation=tp.Tanh(), dtype=dtype, seed=0)
         net.set_vector(rng.normal(0.0, 1.0, net.n_params))
         members.append(net)
     return members

@@ -117,7 +117,7 @@ def test_wide_python_and_c_float64_exports_agree_bit_for_bit(case):
 
 
 def test_float32_network_is_computed_in_binary64(tmp_path):
-    net = tp.build_mlp([3, 4, 2], hidden=tp.Sigmoid(), seed=1, dtype=np.float32)
+    net = tp.build_mlp([3, 4, 2], activation=tp.Sigmoid(), seed=1, dtype=np.float32)
     X = np.random.default_rng(2).normal(size=(5, 3))
     export_python(net, tmp_path)
     y, _, _ = run_python(tmp_path, X)

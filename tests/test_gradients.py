@@ -198,7 +198,7 @@ def test_workspace_trace_serves_one_backward_and_is_invalidated_by_the_next_forw
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_workspace_row_blocks_cover_large_batches(hidden, dtype):
     """A batch spanning many ~256 KiB row blocks gives the plain path's gradients."""
-    net = tp.build_mlp([5, 96, 64, 2], hidden=hidden, seed=1, dtype=dtype)
+    net = tp.build_mlp([5, 96, 64, 2], activation=hidden, seed=1, dtype=dtype)
     X = np.random.default_rng(2).normal(size=(2500, 5))
     work = net.workspace(2500)
     assert len(work.row_blocks(2500, 96)) > 3
@@ -234,7 +234,7 @@ def test_params_are_views_of_the_flat_vector_and_relink_after_assignment():
 @pytest.mark.parametrize("with_workspace", [False, True])
 def test_a_pickled_network_backpropagates_like_the_original(hidden, with_workspace):
     """Process pools (tp.sweep) move networks by pickle; the copy must run the same passes."""
-    net = tp.build_mlp([3, 6, 5, 2], hidden=hidden, seed=3)
+    net = tp.build_mlp([3, 6, 5, 2], activation=hidden, seed=3)
     X = np.random.default_rng(4).normal(size=(7, 3))
     results = []
     for network in (net, pickle.loads(pickle.dumps(net))):

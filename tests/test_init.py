@@ -20,7 +20,7 @@ import tinyprop as tp
     ],
 )
 def test_limits_and_variance(hidden, limit):
-    net = tp.build_mlp([400, 300, 1], hidden=hidden, seed=0)
+    net = tp.build_mlp([400, 300, 1], activation=hidden, seed=0)
     w = net.layers[0].weight
     r = limit(400, 300)
     assert np.abs(w).max() <= r

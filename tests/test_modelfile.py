@@ -295,7 +295,7 @@ def saved(tmp_path):
     ids=repr,
 )
 def test_round_trip_gives_identical_weights_and_predictions(tmp_path, dtype, bias, hidden):
-    net = tp.build_mlp([3, 5, 4, 2], hidden=hidden, output=tp.Sigmoid(), bias=bias, seed=7, dtype=dtype)
+    net = tp.build_mlp([3, 5, 4, 2], activation=hidden, output_activation=tp.Sigmoid(), bias=bias, seed=7, dtype=dtype)
     path = tmp_path / "net.npz"
     digest = save(net, path)
     loaded = load(path)

@@ -24,7 +24,7 @@ import tinyprop as tp
 from tinyprop.recipes import TabularRegression, fit_tabular_regression
 from tinyprop.sweep import SweepRecord, TrainingData, setting_key, sweep
 
-QUICK = TabularRegression(max_epochs=25, patience=10)
+QUICK = TabularRegression(epochs=25, patience=10)
 
 
 def synthetic(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -78,8 +78,8 @@ def assert_same_run(run, reference) -> None:
 
 def test_recipe_defaults_reproduce_fit_tabular_regression():
     # the ready recipe is tinyprop's documented default recipe, not a second one
-    assert_same_run(TabularRegression(max_epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y)),
-                    fit_tabular_regression(X, Y, hidden_units=7, seed=3, max_epochs=40))
+    assert_same_run(TabularRegression(epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y)),
+                    fit_tabular_regression(X, Y, hidden=[7], seed=3, epochs=40))
 
 
 def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
@@ -87,10 +87,10 @@ def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
     # patience: the run stops early, so a different patience would change it
     defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
     recipe = TabularRegression()
-    assert (recipe.hidden, recipe.max_epochs, recipe.seed) == ((defaults["hidden_units"],), defaults["max_epochs"],
+    assert (recipe.hidden, recipe.epochs, recipe.seed) == (tuple(defaults["hidden"]), defaults["epochs"],
                                                                defaults["seed"])
     run, reference = recipe({}, TrainingData(X, Y)), fit_tabular_regression(X, Y)
-    assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.max_epochs
+    assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.epochs
     assert_same_run(run, reference)
     # the comparison can fail: another patience gives another run
     _, other = dataclasses.replace(recipe, patience=recipe.patience // 2)({}, TrainingData(X, Y))
@@ -220,7 +220,7 @@ class RecordingPool(ProcessPoolExecutor):
 def test_data_travels_once_per_worker_with_a_factory(as_factory):
     data_bytes = X.nbytes + Y.nbytes
     RecordingPool.sizes = []
-    settings = [{"hidden": [4], "max_epochs": 2, "seed": s} for s in range(4)]
+    settings = [{"hidden": [4], "epochs": 2, "seed": s} for s in range(4)]
     if as_factory:
         sweep(QUICK, settings, X, Y, executor=functools.partial(RecordingPool, max_workers=2))
         assert len(RecordingPool.sizes) == 4 and max(RecordingPool.sizes) < data_bytes / 10  # a token, not the data
@@ -250,7 +250,7 @@ def mutating_recipe(setting, data):
 
 
 def test_nothing_the_user_passes_is_modified():
-    settings = [{"seed": 0, "max_epochs": 2}]
+    settings = [{"seed": 0, "epochs": 2}]
     X_copy, settings_copy = X.copy(), json.loads(json.dumps(settings))
     result = sweep(mutating_recipe, settings, X, Y)
     assert np.array_equal(X, X_copy) and settings == settings_copy
@@ -321,7 +321,7 @@ def test_results_folder_refuses_another_sweep_and_tampered_models(tmp_path):
     with pytest.raises(ValueError, match="holds a sweep with another data_sha256"):
         sweep(QUICK, SETTINGS[:1], X, Y + 1.0, results_path=folder)
     with pytest.raises(ValueError, match="holds a sweep with another recipe"):
-        sweep(TabularRegression(max_epochs=3), SETTINGS[:1], X, Y, results_path=folder)
+        sweep(TabularRegression(epochs=3), SETTINGS[:1], X, Y, results_path=folder)
     # a model file replaced by another network is caught by its fingerprint
     other = sweep(QUICK, [{"seed": 9}], X, Y).networks[0]
     tp.save(other, folder / first.records[0].model_file)
@@ -334,7 +334,7 @@ def test_results_folder_refuses_another_sweep_and_tampered_models(tmp_path):
 
 # ----------------------------------------------------------------------------- progress and bad input
 def test_progress_lines(capsys):
-    sweep(QUICK, [{"seed": 0, "max_epochs": 2}, {"seed": 0, "lr": 1e300}], X, Y, validation=VALIDATION, progress=True)
+    sweep(QUICK, [{"seed": 0, "epochs": 2}, {"seed": 0, "lr": 1e300}], X, Y, validation=VALIDATION, progress=True)
     lines = capsys.readouterr().err.splitlines()
     assert lines[0].startswith("sweep: 1/2 trained  ok  ") and "validation loss" in lines[0]
     assert lines[1].startswith("sweep: 2/2 trained  failed  ") and "TrainingDiverged" in lines[1]

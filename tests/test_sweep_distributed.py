@@ -39,7 +39,7 @@ class RecordingExecutor(distributed.cfexecutor.ClientExecutor):
 def test_local_cluster_gives_the_sequential_result():
     X, y = synthetic(240, 0)
     validation, test = synthetic(80, 1), synthetic(80, 2)
-    recipe = TabularRegression(max_epochs=30, patience=10)
+    recipe = TabularRegression(epochs=30, patience=10)
     settings = [{"hidden": [h], "lr": lr, "seed": s} for h in (6, 12) for lr in (3e-3, 1e300) for s in (0, 1)]
     sequential = sweep(recipe, settings, X, y, validation=validation, test=test)
     with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, host="127.0.0.1",

@@ -17,39 +17,41 @@ __all__ = ["build_mlp"]
 def build_mlp(
     sizes: Sequence[int],
     *,
-    hidden: Activation | None = None,
-    output: Activation | None = None,
+    activation: Activation | None = None,
+    output_activation: Activation | None = None,
     bias: bool = True,
     seed: int | None = None,
     dtype: Any = np.float64,
-    init: str | None = None,
+    init: str = "auto",
 ) -> Network:
-    """``Affine, hidden, Affine, hidden, ..., Affine[, output]`` for widths ``sizes``.
+    """``Affine, activation, Affine, activation, ..., Affine[, output_activation]`` for widths ``sizes``.
 
-    ``sizes = [n_in, h_1, ..., n_out]``. ``hidden`` defaults to :class:`Tanh`
-    (one instance is shared by all hidden layers; activations hold no state).
-    ``output`` defaults to none (a linear output). ``init`` defaults to
-    ``"he"`` when ``hidden`` is a ReLU or LeakyReLU and ``"glorot"`` otherwise.
+    ``sizes = [n_in, h_1, ..., n_out]``. ``activation``, the hidden layers'
+    activation, defaults to :class:`Tanh` (one instance is shared by all hidden
+    layers; activations hold no state). ``output_activation`` defaults to none
+    (a linear output). ``init="auto"`` chooses ``"he"`` when ``activation`` is a
+    ReLU or LeakyReLU and ``"glorot"`` otherwise; any scheme of
+    :class:`~tinyprop.network.Network` may be named instead.
 
     >>> import tinyprop as tp
-    >>> net = tp.build_mlp([3, 16, 16, 1], hidden=tp.ReLU(), seed=0)
+    >>> net = tp.build_mlp([3, 16, 16, 1], activation=tp.ReLU(), seed=0)
     >>> [type(layer).__name__ for layer in net.layers]
     ['Affine', 'ReLU', 'Affine', 'ReLU', 'Affine']
     """
     sizes = [positive_int(s, "each entry of sizes") for s in sizes]
     if len(sizes) < 2:
         raise ValueError(f"sizes needs at least [n_in, n_out], got {sizes}")
-    hidden = Tanh() if hidden is None else hidden
-    for name, act in (("hidden", hidden), ("output", output)):
+    hidden = Tanh() if activation is None else activation
+    for name, act in (("activation", hidden), ("output_activation", output_activation)):
         if act is not None and not isinstance(act, Activation):
             raise TypeError(f"{name} must be a tp.Activation instance, got {kind_of(act)}")
-    if init is None:
+    if init == "auto":
         init = "he" if isinstance(hidden, (ReLU, LeakyReLU)) else "glorot"
     layers: list[Layer] = []
     for i, (n_in, n_out) in enumerate(zip(sizes[:-1], sizes[1:])):
         layers.append(Affine(n_in, n_out, bias=bias))
         if i < len(sizes) - 2:
             layers.append(hidden)
-    if output is not None:
-        layers.append(output)
+    if output_activation is not None:
+        layers.append(output_activation)
     return Network(layers, seed=seed, dtype=dtype, init=init)

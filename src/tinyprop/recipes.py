@@ -7,28 +7,26 @@ measured results are in ``docs/training.md``.
 
 **The command line's recipe** (:class:`FitSettings`; the steps :func:`split_rows`,
 :func:`build_network`, :func:`fit`, :func:`evaluate_all`) is what ``tinyprop train``
-and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``Y`` (targets),
-with seed ``s``:
-
-For data ``X`` (``n`` rows of inputs) and ``Y`` (targets), with seed ``s``:
+and ``tinyprop demo`` run. For data ``X`` (``n`` rows of inputs) and ``y`` (targets,
+``(n, n_out)``), with seed ``s``:
 
 1. **Split.** ``order = numpy.random.default_rng(s).permutation(n)``;
    ``n_test = round(test_fraction * n)``, ``n_val = round(validation_fraction * n)``;
    test rows ``order[:n_test]``, validation rows ``order[n_test:n_test + n_val]``,
    training rows the rest (in that permuted order).
-2. **Network.** ``build_mlp([n_in, *hidden, n_out], hidden=<activation>, seed=s, dtype=...)``
+2. **Network.** ``build_mlp([n_in, *hidden, n_out], activation=<activation>, seed=s, dtype=...)``
    with ``Standardize.from_data(X_train)`` in front and
-   ``Unstandardize.from_data(Y_train)`` behind, so the network takes and
+   ``Unstandardize.from_data(y_train)`` behind, so the network takes and
    returns values in the data's own units:
    ``Network([standardize, *mlp.layers, unstandardize], dtype=..., init=None)``.
 3. **Fit** on the training rows, in the data's units:
 
-   - ``mini-batch``: ``train(net, X_train, Y_train, loss=MeanSquaredError(),
+   - ``mini-batch``: ``train(net, X_train, y_train, loss=MeanSquaredError(),
      optimizer=<optimizer>(lr, schedule=...), epochs, batch_size,
-     validation=(X_val, Y_val) or None, patience, seed=s)``, where the schedule is
+     validation=(X_val, y_val) or None, patience, seed=s)``, where the schedule is
      ``None`` (``constant``) or ``CosineSchedule(epochs * ceil(n_train / batch_size))``
      (``cosine``: the learning rate falls along half a cosine to 0 at the last epoch);
-   - ``levenberg-marquardt`` / ``lbfgs``: ``solve(net, X_train, Y_train, method=...,
+   - ``levenberg-marquardt`` / ``lbfgs``: ``solve(net, X_train, y_train, method=...,
      max_evaluations=...)``.
 
 4. **Evaluate** on every split: per target the root mean square error, mean
@@ -42,7 +40,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
@@ -80,10 +78,10 @@ __all__ = [
 # ---------------------------------------------------------------- the default recipe
 # The default recipe's settings (chosen and measured in docs/training.md). They are
 # also the defaults of TabularRegression, which trains through _fit_tabular too.
-RECIPE_HIDDEN_UNITS = 50
+RECIPE_HIDDEN = (50,)
 RECIPE_LR = 3e-3
 RECIPE_BATCH_SIZE = 64
-RECIPE_MAX_EPOCHS = 2000
+RECIPE_EPOCHS = 2000
 RECIPE_PATIENCE = 60
 
 
@@ -91,22 +89,22 @@ def fit_tabular_regression(
     X: Any,
     y: Any,
     *,
-    hidden_units: int = RECIPE_HIDDEN_UNITS,
+    hidden: Sequence[int] = RECIPE_HIDDEN,
     seed: int = 0,
-    max_epochs: int = RECIPE_MAX_EPOCHS,
+    epochs: int = RECIPE_EPOCHS,
     progress: bool = False,
 ) -> tuple[Network, TrainingResult]:
     """tinyprop's default recipe for small tabular regression; returns ``(net, result)``.
 
     The recipe (documented with its measured results in ``docs/training.md``):
 
-    - network ``Standardize -> Affine(d, hidden_units) -> Tanh -> Affine(hidden_units, m)
-      -> Unstandardize``, scalings fitted on all rows given (the training rows),
-      Glorot initialisation from ``seed``;
+    - network ``Standardize -> [Affine -> Tanh] per width in hidden -> Affine
+      -> Unstandardize`` (one hidden layer of 50 by default), scalings fitted on
+      all rows given (the training rows), Glorot initialisation from ``seed``;
     - 10 % of the rows (at least one), drawn with ``seed``, held out for early
       stopping; the network trains on the rest;
     - :class:`~tinyprop.losses.MeanSquaredError` in the targets' units,
-      ``Adam(lr=3e-3)``, mini-batches of 64, at most ``max_epochs`` epochs,
+      ``Adam(lr=3e-3)``, mini-batches of 64, at most ``epochs`` epochs,
       early stopping with patience 60 restoring the best weights.
 
     The settings were chosen by the RMSE on development rows carved from the
@@ -119,12 +117,7 @@ def fit_tabular_regression(
     for a given ``seed``, from which the hold-out rows, the initial weights and
     the shuffling draw three independent streams (``numpy.random.SeedSequence``).
     """
-    hidden_units = positive_int(hidden_units, "hidden_units")
-    seed = seed_value(seed, required=True)
-    return _fit_tabular(
-        X, y, hidden=(hidden_units,), lr=RECIPE_LR, decoupled_decay=0.0, l2=0.0, batch_size=RECIPE_BATCH_SIZE,
-        max_epochs=max_epochs, patience=RECIPE_PATIENCE, seed=int(seed), progress=progress,
-    )
+    return TabularRegression(hidden=hidden, seed=seed, epochs=epochs).fit(X, y, progress=progress)
 
 
 @dataclass(frozen=True)
@@ -139,7 +132,7 @@ class TabularRegression:
     least one) are held out for early stopping with ``patience``, and
     :func:`~tinyprop.train.train` runs :class:`~tinyprop.losses.MeanSquaredError`
     with ``Adam(lr, decoupled_decay=decoupled_decay)``, ``l2`` (the L2
-    penalty of ``train``), ``batch_size`` and at most ``max_epochs`` epochs.
+    penalty of ``train``), ``batch_size`` and at most ``epochs`` epochs.
     ``seed`` gives the held-out rows, the initial weights and the shuffling
     three independent streams (``numpy.random.SeedSequence``). The
     validation rows of the sweep are not used for early stopping, so they
@@ -147,16 +140,16 @@ class TabularRegression:
 
     Both recipes train through one implementation, so with the defaults
     and one hidden layer it reproduces
-    ``fit_tabular_regression(X, y, hidden_units=..., seed=..., max_epochs=...)``
+    ``fit_tabular_regression(X, y, hidden=..., seed=..., epochs=...)``
     bit for bit (checked in ``tests/test_sweep.py``).
     """
 
-    hidden: tuple[int, ...] = (RECIPE_HIDDEN_UNITS,)
+    hidden: tuple[int, ...] = RECIPE_HIDDEN
     lr: float = RECIPE_LR
     decoupled_decay: float = 0.0
     l2: float = 0.0
     batch_size: int = RECIPE_BATCH_SIZE
-    max_epochs: int = RECIPE_MAX_EPOCHS
+    epochs: int = RECIPE_EPOCHS
     patience: int = RECIPE_PATIENCE
     seed: int = 0
 
@@ -168,7 +161,7 @@ class TabularRegression:
         object.__setattr__(self, "lr", real_in_range(self.lr, "lr", low=0.0, low_open=True))
         object.__setattr__(self, "decoupled_decay", real_in_range(self.decoupled_decay, "decoupled_decay", low=0.0))
         object.__setattr__(self, "l2", real_in_range(self.l2, "l2", low=0.0))
-        for name in ("batch_size", "max_epochs", "patience"):
+        for name in ("batch_size", "epochs", "patience"):
             object.__setattr__(self, name, positive_int(getattr(self, name), name))
         seed_value(self.seed, required=True)
 
@@ -182,12 +175,12 @@ class TabularRegression:
             raise ValueError(f"unknown setting key(s) {unknown}; TabularRegression takes {allowed}")
         return replace(self, **setting).fit(data.X, data.y)
 
-    def fit(self, X: Any, y: Any) -> tuple[Network, TrainingResult]:
+    def fit(self, X: Any, y: Any, *, progress: bool = False) -> tuple[Network, TrainingResult]:
         """Build and train one network on ``X`` ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``, ``n >= 2``."""
         return _fit_tabular(
             X, y, hidden=self.hidden, lr=self.lr, decoupled_decay=self.decoupled_decay, l2=self.l2,
-            batch_size=self.batch_size, max_epochs=self.max_epochs, patience=self.patience, seed=int(self.seed),
-            progress=False,
+            batch_size=self.batch_size, epochs=self.epochs, patience=self.patience, seed=int(self.seed),
+            progress=progress,
         )
 
 
@@ -200,7 +193,7 @@ def _fit_tabular(
     decoupled_decay: float,
     l2: float,
     batch_size: int,
-    max_epochs: int,
+    epochs: int,
     patience: int,
     seed: int,
     progress: bool,
@@ -235,7 +228,7 @@ def _fit_tabular(
     net = Network(layers, seed=init_seed)
     result = train(
         net, X[kept], targets[kept], loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
-        epochs=max_epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
+        epochs=epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
         seed=shuffle_seed, progress=progress, l2=l2,
     )
     return net, result
@@ -263,7 +256,7 @@ class FitSettings:
     activation: str = "tanh"
     method: str = "mini-batch"
     optimizer: str = "adam"
-    learning_rate: float | None = None  # None: the optimizer's default in OPTIMIZERS
+    lr: float | None = None  # the learning rate; None: the optimizer's default in OPTIMIZERS
     schedule: str = "cosine"
     momentum: float = 0.0
     epochs: int = 200
@@ -275,31 +268,31 @@ class FitSettings:
     dtype: str = "float64"
     max_evaluations: int = 1000
 
-    @property
-    def lr(self) -> float:
-        return OPTIMIZERS[self.optimizer][1] if self.learning_rate is None else self.learning_rate
+    def optimizer_lr(self) -> float:
+        """``lr``, or the optimizer's default learning rate when it is ``None``."""
+        return OPTIMIZERS[self.optimizer][1] if self.lr is None else self.lr
 
     def to_dict(self) -> dict[str, Any]:
         settings = asdict(self)
         settings["hidden"] = list(self.hidden)
-        settings["learning_rate"] = self.lr
+        settings["lr"] = self.optimizer_lr()
         settings["loss"] = "MeanSquaredError"
         return settings
 
     def describe_method(self) -> str:
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
-        text = (f"{self.optimizer}, learning rate {self.lr:g} ({self.schedule}), batch {self.batch_size}, "
+        text = (f"{self.optimizer}, learning rate {self.optimizer_lr():g} ({self.schedule}), batch {self.batch_size}, "
                 f"{self.epochs} epochs")
         return text + (f", early stopping after {self.patience} epochs without progress" if self.patience else "")
 
 
 @dataclass(frozen=True)
 class Dataset:
-    """Inputs ``X`` ``(n, n_in)`` and targets ``Y`` ``(n, n_out)`` with their column names and origin."""
+    """Inputs ``X`` ``(n, n_in)`` and targets ``y`` ``(n, n_out)`` with their column names and origin."""
 
     X: np.ndarray
-    Y: np.ndarray
+    y: np.ndarray
     input_names: tuple[str, ...]
     target_names: tuple[str, ...]
     source: dict[str, Any]  # for the report: where the data came from
@@ -341,10 +334,10 @@ def split_rows(n: int, settings: FitSettings) -> Split:
 
 def build_network(data: Dataset, split: Split, settings: FitSettings) -> Network:
     """Step 2 of the recipe."""
-    X_train, Y_train = data.X[split.training], data.Y[split.training]
-    sizes = [data.X.shape[1], *settings.hidden, data.Y.shape[1]]
-    mlp = build_mlp(sizes, hidden=ACTIVATIONS[settings.activation](), seed=settings.seed, dtype=settings.dtype)
-    layers = [Standardize.from_data(X_train), *mlp.layers, Unstandardize.from_data(Y_train)]
+    X_train, y_train = data.X[split.training], data.y[split.training]
+    sizes = [data.X.shape[1], *settings.hidden, data.y.shape[1]]
+    mlp = build_mlp(sizes, activation=ACTIVATIONS[settings.activation](), seed=settings.seed, dtype=settings.dtype)
+    layers = [Standardize.from_data(X_train), *mlp.layers, Unstandardize.from_data(y_train)]
     return Network(layers, dtype=settings.dtype, init=None)
 
 
@@ -357,13 +350,13 @@ def fit(
     progress: bool = False,
 ) -> FitOutcome:
     """Step 3 of the recipe: changes ``net``'s weights in place; ``progress`` shows the progress line on stderr."""
-    X_train, Y_train = data.X[split.training], data.Y[split.training]
+    X_train, y_train = data.X[split.training], data.y[split.training]
     started = time.perf_counter()
     if settings.method == "mini-batch":
         optimizer = _optimizer(settings, X_train.shape[0])
-        validation = (data.X[split.validation], data.Y[split.validation]) if split.validation.size else None
+        validation = (data.X[split.validation], data.y[split.validation]) if split.validation.size else None
         result = train(
-            net, X_train, Y_train, loss=MeanSquaredError(), optimizer=optimizer, epochs=settings.epochs,
+            net, X_train, y_train, loss=MeanSquaredError(), optimizer=optimizer, epochs=settings.epochs,
             batch_size=settings.batch_size, validation=validation, patience=settings.patience,
             seed=settings.seed, progress=progress,
         )
@@ -376,7 +369,7 @@ def fit(
             "best_validation_loss": result.best_validation_loss,  # finite: a non-finite loss raises
         }
         return FitOutcome(summary, result.history, time.perf_counter() - started)
-    solved = solve(net, X_train, Y_train, method=settings.method, max_evaluations=settings.max_evaluations,
+    solved = solve(net, X_train, y_train, method=settings.method, max_evaluations=settings.max_evaluations,
                    progress=progress)
     summary = {
         "success": solved.success,
@@ -395,19 +388,19 @@ def _optimizer(settings: FitSettings, n_train: int) -> Optimizer:
     if settings.schedule == "cosine":
         schedule = CosineSchedule(settings.epochs * math.ceil(n_train / settings.batch_size))
     if settings.optimizer == "sgd":
-        return SGD(settings.lr, momentum=settings.momentum, schedule=schedule)
+        return SGD(settings.optimizer_lr(), momentum=settings.momentum, schedule=schedule)
     optimizer_class, _ = OPTIMIZERS[settings.optimizer]
-    return optimizer_class(settings.lr, schedule=schedule)
+    return optimizer_class(settings.optimizer_lr(), schedule=schedule)
 
 
 def evaluate(net: Network, data: Dataset, rows: np.ndarray) -> dict[str, Any] | None:
     """Step 4 of the recipe on ``rows`` (``None`` when there are none)."""
     if rows.size == 0:
         return None
-    Y = data.Y[rows]
+    y = data.y[rows]
     prediction = net.predict(data.X[rows]).astype(np.float64)
-    error = prediction - Y
-    spread = ((Y - Y.mean(axis=0)) ** 2).sum(axis=0)
+    error = prediction - y
+    spread = ((y - y.mean(axis=0)) ** 2).sum(axis=0)
     per_target = {}
     for k, name in enumerate(data.target_names):
         ss_res = float((error[:, k] ** 2).sum())
@@ -417,7 +410,7 @@ def evaluate(net: Network, data: Dataset, rows: np.ndarray) -> dict[str, Any] | 
             "max_abs_error": float(np.abs(error[:, k]).max()),
             "r_squared": 1.0 - ss_res / float(spread[k]) if spread[k] > 0 else None,
         }
-    return {"rows": int(rows.size), "loss": MeanSquaredError().value(prediction, Y), "targets": per_target}
+    return {"rows": int(rows.size), "loss": MeanSquaredError().value(prediction, y), "targets": per_target}
 
 
 def evaluate_all(net: Network, data: Dataset, split: Split) -> dict[str, Any]:
@@ -429,7 +422,7 @@ def least_squares_uncertainty(net: Network, data: Dataset, split: Split) -> dict
     """Parameter standard errors, prediction intervals and input sensitivities on the training rows."""
     try:
         return uncertainty_report(
-            net, data.X[split.training], data.Y[split.training],
+            net, data.X[split.training], data.y[split.training],
             input_names=data.input_names, output_names=data.target_names,
         )
     except ValueError as exc:  # e.g. no degrees of freedom left

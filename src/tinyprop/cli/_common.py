@@ -93,7 +93,7 @@ def require_columns(table: CsvTable, names: list[str], what: str) -> None:
 def numeric_columns(
     table: CsvTable, inputs: list[str], targets: list[str], *, default_inputs: bool = False
 ) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, Y)``: the input and target columns as float64 arrays; bad cells fail the command.
+    """``(X, y)``: the input and target columns as float64 arrays; bad cells fail the command.
 
     Every bad cell of the used columns is reported at once (up to
     :data:`tinyprop.csvdata.MAX_PROBLEMS` described, the rest counted). With

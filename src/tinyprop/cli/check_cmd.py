@@ -8,7 +8,7 @@ fits). Rows come from a CSV file (``--data``; ``--rows`` of them, drawn with
 - inputs ``X = mean + scale * Z`` with ``Z`` standard normal, where ``mean`` and
   ``scale`` are those of the model's leading :class:`~tinyprop.layers.Standardize`
   layer (``0`` and ``1`` without one), so the rows look like the training data;
-- targets ``Y = predict(X) + s * W``, ``W`` standard normal, with ``s`` the scale
+- targets ``y = predict(X) + s * W``, ``W`` standard normal, with ``s`` the scale
   of a trailing :class:`~tinyprop.layers.Unstandardize` layer (else ``1``), so
   the residuals, and hence the gradient, are not near zero.
 
@@ -34,7 +34,7 @@ HELP = "check a saved model's gradient against numerical differentiation (exit 1
 EPILOG = """rows without --data, drawn with numpy.random.default_rng(SEED):
   inputs  X = mean + scale * Z, Z standard normal, with the mean and scale of the
           model's leading Standardize layer (0 and 1 without one)
-  targets Y = predict(X) + s * W, W standard normal, s the scale of a trailing
+  targets y = predict(X) + s * W, W standard normal, s the scale of a trailing
           Unstandardize layer (1 without one)
 the loss is the mean squared error; exit status 0 when every array passes, 1 otherwise"""
 
@@ -68,14 +68,14 @@ def run(args: argparse.Namespace) -> int:
                            f"and bias array), got {args.parameters}", USAGE)
     rng = np.random.default_rng(args.seed)
     if args.data:
-        X, Y = _rows_from_csv(args, model.metadata, net, rng)
+        X, y = _rows_from_csv(args, model.metadata, net, rng)
         source = f"{X.shape[0]} rows of {args.data}"
     else:
-        X, Y = _generated_rows(net, args.rows, rng)
+        X, y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"
-    _refuse_overflowing_rows(net, X, Y, source)
+    _refuse_overflowing_rows(net, X, y, source)
     try:
-        report = check_gradient(net, X, Y, MeanSquaredError(), tolerance=args.tolerance,
+        report = check_gradient(net, X, y, MeanSquaredError(), tolerance=args.tolerance,
                                 parameters=args.parameters, seed=args.seed)
     except ValueError as exc:  # a pre-activation exactly on a kink, rows that do not fit the model, ...
         raise CommandError(f"cannot check on these rows: {exc}") from None
@@ -90,10 +90,10 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _refuse_overflowing_rows(net: Network, X: np.ndarray, Y: np.ndarray, source: str) -> None:
+def _refuse_overflowing_rows(net: Network, X: np.ndarray, y: np.ndarray, source: str) -> None:
     """Refuse rows on which the loss itself overflows: no gradient, analytic or numerical, is meaningful there."""
     with np.errstate(all="ignore"):
-        residual = np.asarray(net.predict(X), dtype=np.float64) - Y
+        residual = np.asarray(net.predict(X), dtype=np.float64) - y
         per_row = np.sum(residual * residual, axis=1)
     bad = np.flatnonzero(~np.isfinite(per_row))
     if bad.size:
@@ -109,8 +109,8 @@ def _generated_rows(net: Network, rows: int, rng: np.random.Generator) -> tuple[
     Z = rng.standard_normal((rows, net.n_in))
     X = first.mean + first.scale * Z if isinstance(first, Standardize) else Z
     spread = last.scale if isinstance(last, Unstandardize) else 1.0
-    Y = net.predict(X).astype(np.float64) + spread * rng.standard_normal((rows, net.n_out))
-    return X, Y
+    y = net.predict(X).astype(np.float64) + spread * rng.standard_normal((rows, net.n_out))
+    return X, y
 
 
 def _rows_from_csv(
@@ -131,6 +131,6 @@ def _rows_from_csv(
     table = read_table(args.data, args.delimiter)
     for option, names in (("--inputs", inputs), ("--targets", targets)):
         require_columns(table, names, labels[option])
-    X, Y = numeric_columns(table, inputs, targets)  # the whole file is checked, not only the rows drawn
+    X, y = numeric_columns(table, inputs, targets)  # the whole file is checked, not only the rows drawn
     chosen = np.sort(rng.choice(len(table), size=min(args.rows, len(table)), replace=False))
-    return X[chosen], Y[chosen]
+    return X[chosen], y[chosen]

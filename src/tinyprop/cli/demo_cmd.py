@@ -39,7 +39,7 @@ DEMO_SETTINGS = FitSettings(
     hidden=(16, 16),
     activation="tanh",
     optimizer="adam",
-    learning_rate=0.01,
+    lr=0.01,
     schedule="cosine",
     epochs=150,
     batch_size=32,
@@ -78,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
     _step(2, "network", f"{architecture(net)}; {net.n_params} parameters")
 
     rows = split.training[:CHECK_ROWS]
-    gradient = check_gradient(net, X[rows], data.Y[rows], MeanSquaredError())
+    gradient = check_gradient(net, X[rows], data.y[rows], MeanSquaredError())
     _step(3, "gradient", f"backpropagation vs numerical differentiation on {rows.size} rows: "
                          f"{'PASSED' if gradient.passed else 'FAILED'} (max relative error "
                          f"{gradient.max_rel_error:.1e}, tolerance {gradient.tolerance:.0e})")
@@ -101,7 +101,7 @@ def run(args: argparse.Namespace) -> int:
     fixed = _export_fixed_point(out, net, data, split.training, split.test)
     files["integer C"] = [fixed.header, fixed.source]
     files["report"] = [out / "report.json"]
-    plots, plot_note = write_plots(out, outcome.history, data.Y[split.test], net.predict(data.X[split.test]),
+    plots, plot_note = write_plots(out, outcome.history, data.y[split.test], net.predict(data.X[split.test]),
                                    [BATTERY_TARGET], "SYNTHETIC battery demo")
     if plots:
         files["plots"] = plots

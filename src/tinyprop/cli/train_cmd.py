@@ -46,7 +46,7 @@ HELP = "fit a network to columns of a CSV file; write the model file and a JSON 
 # (option, the option it depends on, the values of that option it applies to), checked in this order
 _APPLIES_ONLY_TO = (
     *((option, "method", ("mini-batch",))
-      for option in ("optimizer", "learning_rate", "schedule", "momentum", "epochs", "batch_size", "patience")),
+      for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
     ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
     ("momentum", "optimizer", ("sgd",)),
 )
@@ -85,6 +85,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument(
         "--learning-rate",
+        dest="lr",
         type=_args.positive_float,
         metavar="LR",
         help="step size (default: " + ", ".join(f"{name} {lr:g}" for name, (_, lr) in OPTIMIZERS.items()) + ")",
@@ -122,7 +123,7 @@ def run(args: argparse.Namespace) -> int:
     data = _dataset(args)
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
-    _refuse_a_network_too_large(data.X.shape[1], settings.hidden, data.Y.shape[1], settings.dtype)
+    _refuse_a_network_too_large(data.X.shape[1], settings.hidden, data.y.shape[1], settings.dtype)
     net = build_network(data, split, settings)
     print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
           f"targets {', '.join(data.target_names)}")
@@ -164,7 +165,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {report_path}")
     if plots is not None:
         rows, label = (split.test, "test rows") if split.test.size else (split.training, "training rows")
-        written, note = write_plots(plots, outcome.history, data.Y[rows], net.predict(data.X[rows]),
+        written, note = write_plots(plots, outcome.history, data.y[rows], net.predict(data.X[rows]),
                                     list(data.target_names), Path(args.data).name, label)
         for path in written:
             print(f"wrote {path}")
@@ -214,16 +215,16 @@ def _applicability() -> str:
 
 
 def _flag(option: str) -> str:
-    """``batch_size`` -> ``--batch-size``."""
-    return "--" + option.replace("_", "-")
+    """``batch_size`` -> ``--batch-size``; ``lr`` (the library's name) -> ``--learning-rate``."""
+    return "--learning-rate" if option == "lr" else "--" + option.replace("_", "-")
 
 
 def _dataset(args: argparse.Namespace) -> Dataset:
     table = read_table(args.data, args.delimiter)
     targets, inputs = _columns(table, args.targets, args.inputs)
-    X, Y = numeric_columns(table, inputs, targets, default_inputs=args.inputs is None)
+    X, y = numeric_columns(table, inputs, targets, default_inputs=args.inputs is None)
     # the digest of the bytes parsed (read once: a pipe such as /dev/stdin gives the same digest)
-    return Dataset(X, Y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": table.sha256})
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": table.sha256})
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
@@ -301,8 +302,8 @@ def _refuse_a_fit_worse_than_the_mean(metrics: dict[str, Any], data: Dataset, sp
     """
     part = "validation" if metrics.get("validation") else "training"
     rows = getattr(split, part)
-    mean = data.Y[split.training].mean(axis=0)
-    baseline = np.sqrt(np.mean((data.Y[rows] - mean) ** 2, axis=0))
+    mean = data.y[split.training].mean(axis=0)
+    baseline = np.sqrt(np.mean((data.y[rows] - mean) ** 2, axis=0))
     for j, name in enumerate(data.target_names):
         rmse = metrics[part]["targets"][name]["rmse"]
         if baseline[j] > 0 and not rmse <= FAR_ABOVE_THE_MEAN * baseline[j]:
