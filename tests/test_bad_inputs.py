@@ -324,7 +324,8 @@ ROWS = [
     Row("sgd-negative-learning-rate", lambda i: SGD(lr=-0.1), ValueError, r"lr must be"),
     # ------------------------------------------------------------ solve
     Row("solve-unknown-method", lambda i: solve(i.net, i.X, i.y, method="gauss-newton"), ValueError,
-        r"method must be one of \('levenberg-marquardt', 'lbfgs'\), got 'gauss-newton'"),
+        r"method must be one of \('levenberg-marquardt', 'blocked-levenberg-marquardt', 'lbfgs'\) or None, "
+        r"got 'gauss-newton'"),
     Row("solve-too-few-residuals", lambda i: solve(i.net, i.X, i.y), ValueError,
         r"needs at least as many residuals as parameters: 16 residuals .* for 26 parameters; use method='lbfgs'"),
     Row("solve-zero-tolerance", lambda i: solve(i.net, i.X, i.y, method="lbfgs", tolerance=0.0), ValueError,

@@ -58,7 +58,7 @@ def demo_model(tmp_path_factory) -> Path:
     path = folder / "synthetic.csv"
     write_synthetic_csv(path)
     result = run_cli("train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--hidden", "6",
-                     "--epochs", "5", "--out", str(folder / "m.npz"), "--quiet")
+                     "--method", "mini-batch", "--epochs", "5", "--out", str(folder / "m.npz"), "--quiet")
     assert result.returncode == 0, result.stderr
     return folder / "m.npz"
 
@@ -101,7 +101,8 @@ def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimiz
     model = tmp_path / "cli.npz"
     result = run_cli(
         "train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--hidden", "7,5",
-        "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01", "--seed", str(seed),
+        "--method", "mini-batch", "--epochs", "30", "--batch-size", "16", "--learning-rate", "0.01",
+        "--seed", str(seed),
         "--validation-fraction", "0.2", "--test-fraction", "0.1", "--out", str(model), "--quiet", *options,
     )
     assert result.returncode == 0, result.stderr
@@ -127,6 +128,26 @@ def test_train_reproduces_the_library_calls(csv_file, tmp_path, options, optimiz
         assert key in report
 
 
+def test_train_defaults_are_the_library_recipe_bit_for_bit(csv_file, tmp_path):
+    # `tinyprop train` with every default = fit_tabular_regression on the training rows of the documented split
+    path, X, Y = csv_file
+    model = tmp_path / "auto.npz"
+    result = run_cli("train", str(path), "--inputs", "x0,x1,x2", "--targets", "y1,y2", "--out", str(model), "--quiet")
+    assert result.returncode == 0, result.stderr
+    tr, _, _ = library_split(len(X), 0, 0.15, 0.15)
+    net, recipe = tp.fit_tabular_regression(X[tr], Y[tr], seed=0)
+    assert recipe.method == "evidence-lm" and len(recipe.seeds) == 1
+    assert_same_network(tp.load(model), net)
+    report = json.loads((tmp_path / "auto.report.json").read_text(encoding="utf-8"))
+    assert report["fit"]["method"] == "auto" and report["fit"]["recipe_method"] == "evidence-lm"
+    assert report["fit"]["reason"] == recipe.reason and "affordable" in recipe.reason
+    assert report["uncertainty"]["parameters"]["posterior"] is True
+    assert len(report["uncertainty"]["parameters"]["noise_sd"]) == 2
+    stored = tp.load_model_file(model).metadata["training"]["fit"]
+    assert stored == {"recipe_method": "evidence-lm", "reason": recipe.reason}
+    assert "method chosen: evidence-lm" in result.stdout and "regularised fit: noise sd per target" in result.stdout
+
+
 def test_train_by_levenberg_marquardt_reproduces_solve_and_reports_uncertainty(csv_file, tmp_path):
     path, X, Y = csv_file
     model = tmp_path / "lm.npz"
@@ -146,7 +167,8 @@ def test_train_by_levenberg_marquardt_reproduces_solve_and_reports_uncertainty(c
 
 def test_train_progress_has_no_terminal_codes_when_stderr_is_a_pipe(csv_file, tmp_path):
     path, _, _ = csv_file
-    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--epochs", "20",
+    result = run_cli("train", str(path), "--targets", "y1", "--inputs", "x0,x1", "--method", "mini-batch",
+                     "--epochs", "20",
                      "--hidden", "3", "--out", str(tmp_path / "m.npz"))
     assert result.returncode == 0, result.stderr
     assert "epoch 1/20" in result.stderr and "epoch 20/20" in result.stderr

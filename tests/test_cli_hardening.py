@@ -24,6 +24,7 @@ from tinyprop.cli import main
 from tinyprop.datasets import write_battery_csv
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "reliability.md"
+MB = "--method=mini-batch"  # --epochs and --learning-rate apply to mini-batch training only
 
 
 def _dirty_with_text_column(path: Path) -> None:
@@ -38,7 +39,7 @@ def _dirty_with_text_column(path: Path) -> None:
 def folder(tmp_path_factory) -> Path:
     folder = tmp_path_factory.mktemp("hardening")
     write_battery_csv(folder / "battery.csv", n=120, seed=1)
-    assert main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "4", "--epochs", "3",
+    assert main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "4", MB, "--epochs", "3",
                  "--quiet", "--out", str(folder / "model.npz")]) == 0
     lines = (folder / "battery.csv").read_text().splitlines()
     header_at = next(i for i, line in enumerate(lines) if not line.startswith("#"))
@@ -69,7 +70,7 @@ CASES = [
      r"  'when' holds text; without --inputs every column that is not a target is an input: name the input "
      r"columns with --inputs to leave it out\n"),
     ("train-learning-rate-far-too-high", ["train", "{f}/battery.csv", "--targets", "soc", "--learning-rate", "1e6",
-                                         "--epochs", "20", "--quiet", "--out", "{f}/lr.npz"], 1,
+                                         MB, "--epochs", "20", "--quiet", "--out", "{f}/lr.npz"], 1,
      r"tinyprop train: error: fitting failed: the validation RMSE of 'soc' is .*, .* times the RMSE of predicting "
      r"the training mean .*lower --learning-rate \(nothing was written\)\n"),
     ("train-hidden-too-large", ["train", "{f}/battery.csv", "--targets", "soc", "--hidden", "3000000000",
@@ -156,7 +157,7 @@ def test_a_numerical_warning_inside_a_command_is_one_line_not_a_warning(folder, 
 # ------------------------------------------------------------------ item 2: the report, atomic and matching
 def test_a_failing_report_write_keeps_the_previous_report(folder, capsys, monkeypatch):
     out, report = folder / "pair.npz", folder / "pair.report.json"
-    arguments = ["train", "{f}/battery.csv", "--targets", "soc", "--hidden", "3", "--epochs", "2", "--quiet",
+    arguments = ["train", "{f}/battery.csv", "--targets", "soc", "--hidden", "3", MB, "--epochs", "2", "--quiet",
                  "--out", str(out)]
     assert _run(folder, arguments, capsys)[0] == 0
     before = report.read_bytes()
@@ -191,7 +192,7 @@ def test_a_run_cannot_slip_between_another_runs_model_and_report(folder, monkeyp
     out = folder / "interleaved.npz"
 
     def run(seed):
-        return main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "3", "--epochs", "2",
+        return main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "3", MB, "--epochs", "2",
                      "--quiet", "--seed", str(seed), "--out", str(out)])
 
     first = threading.Thread(target=run, args=(1,), name="A")
@@ -210,7 +211,7 @@ def test_concurrent_runs_leave_a_report_that_matches_the_model(folder):
     out = folder / "shared.npz"
     for round_ in range(4):
         runs = [subprocess.Popen([sys.executable, "-m", "tinyprop", "train", str(folder / "battery.csv"), "--targets",
-                                  "soc", "--hidden", "3", "--epochs", "2", "--quiet", "--seed", str(seed),
+                                  "soc", "--hidden", "3", MB, "--epochs", "2", "--quiet", "--seed", str(seed),
                                   "--out", str(out)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
                 for seed in range(6)]
         assert [run.wait(timeout=300) for run in runs] == [0] * 6
@@ -222,7 +223,7 @@ def test_concurrent_runs_leave_a_report_that_matches_the_model(folder):
 def test_data_from_a_pipe_is_hashed_as_parsed(folder):
     data = (folder / "battery.csv").read_bytes()
     done = subprocess.run([sys.executable, "-m", "tinyprop", "train", "/dev/stdin", "--targets", "soc", "--hidden",
-                           "3", "--epochs", "2", "--quiet", "--out", str(folder / "piped.npz")],
+                           "3", MB, "--epochs", "2", "--quiet", "--out", str(folder / "piped.npz")],
                           input=data, capture_output=True, timeout=120)
     assert done.returncode == 0, done.stderr
     expected = hashlib.sha256(data).hexdigest()
@@ -248,7 +249,7 @@ def test_a_column_of_plus_minus_1e308_trains(tmp_path, capsys):
     rows = ["a,b,y"] + [f"{float(a) * 1e308!r},{float(b)!r},{float(a + b)!r}" for a, b in x]
     (tmp_path / "huge.csv").write_text("\n".join(rows) + "\n")
     with np.errstate(over="raise", invalid="raise", divide="raise"):
-        status, _, err = _run(tmp_path, ["train", "{f}/huge.csv", "--targets", "y", "--epochs", "5", "--quiet",
+        status, _, err = _run(tmp_path, ["train", "{f}/huge.csv", "--targets", "y", MB, "--epochs", "5", "--quiet",
                                          "--out", "{f}/huge.npz"], capsys)
     assert status == 0 and err == ""
     assert np.isfinite(tp.load(tmp_path / "huge.npz").predict(x * [1e308, 1])).all()

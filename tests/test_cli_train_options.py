@@ -35,11 +35,20 @@ REFUSED = [
     ("default-value-given-with-lbfgs", ["--method", "lbfgs", "--epochs", str(FitSettings().epochs)],
      "--epochs applies to --method mini-batch, not lbfgs"),
     ("max-evaluations-with-default-method", ["--max-evaluations", "50"],
-     "--max-evaluations applies to --method levenberg-marquardt or lbfgs, not mini-batch"),
+     "--max-evaluations applies to --method levenberg-marquardt or lbfgs, not auto"),
+    ("epochs-with-default-method", ["--epochs", "10"], "--epochs applies to --method mini-batch, not auto"),
+    ("restarts-with-mini-batch", ["--method", "mini-batch", "--restarts", "2"],
+     "--restarts applies to --method auto or evidence-lm, not mini-batch"),
+    ("restarts-with-adam-branch", ["--method", "adam-early-stopping", "--restarts", "2"],
+     "--restarts applies to --method auto or evidence-lm, not adam-early-stopping"),
+    ("activation-with-the-recipe", ["--activation", "relu"],
+     "--method auto (the default recipe) uses tanh hidden units; --activation relu needs --method mini-batch, "
+     "levenberg-marquardt or lbfgs"),
     ("max-evaluations-with-mini-batch", ["--method", "mini-batch", "--max-evaluations", "50"],
      "--max-evaluations applies to --method levenberg-marquardt or lbfgs, not mini-batch"),
-    ("momentum-with-default-optimizer", ["--momentum", "0.5"], "--momentum applies to --optimizer sgd, not adam"),
-    ("zero-momentum-with-rmsprop", ["--optimizer", "rmsprop", "--momentum", "0"],
+    ("momentum-with-default-optimizer", ["--method", "mini-batch", "--momentum", "0.5"],
+     "--momentum applies to --optimizer sgd, not adam"),
+    ("zero-momentum-with-rmsprop", ["--method", "mini-batch", "--optimizer", "rmsprop", "--momentum", "0"],
      "--momentum applies to --optimizer sgd, not rmsprop"),
 ]
 

@@ -52,7 +52,8 @@ def test_demo_exits_0_and_writes_everything(demo):
         assert (out / name).is_file(), name
         assert str(Path("tinyprop-demo") / name) in result.stdout
     assert "PASSED" in result.stdout and "RMSE" in result.stdout
-    assert "epoch 1/" in result.stderr and "\r" not in result.stderr  # progress shown, plain lines in a pipe
+    assert "blocked-levenberg-marquardt: " in result.stderr and "\r" not in result.stderr  # progress, plain lines
+    assert "method chosen: evidence-lm" in result.stdout  # the default recipe, and why
     assert "not certified for safety functions" in result.stdout
 
 
@@ -76,7 +77,9 @@ def test_demo_report_matches_the_model(demo):
     net = tp.load(out / "battery_soc.npz")
     assert report["network"]["fingerprint"] == tp.fingerprint(net)
     assert report["gradient_check"]["passed"] is True
-    assert len(report["history"]["training_loss"]) == report["fit"]["epochs_run"]
+    assert report["fit"]["method"] == "auto" and report["fit"]["recipe_method"] == "evidence-lm"
+    assert report["fit"]["effective_parameters"] < report["network"]["n_params"]
+    assert tp.load_model_file(out / "battery_soc.npz").metadata["training"]["fit"]["recipe_method"] == "evidence-lm"
     # the synthetic scenario's 10 mV voltage noise divided by the slope of its open-circuit voltage,
     # 4 (0.70 + 5.4 exp(-12 s) + 0.4 s**7) V per unit of charge, has an RMS of 0.0029 over uniform s:
     # no estimator does much better; the demo must be within a few times of that floor

@@ -55,7 +55,8 @@ def test_train_writes_both_plots(tmp_path, capsys):
     pytest.importorskip("matplotlib")
     write_synthetic_csv(tmp_path / "data.csv", n=60)
     status = main(["train", str(tmp_path / "data.csv"), "--inputs", "x0,x1,x2", "--targets", "y1,y2",
-                   "--hidden", "4", "--epochs", "15", "--quiet", "--out", str(tmp_path / "m.npz"),
+                   "--hidden", "4", "--method", "mini-batch", "--epochs", "15", "--quiet",
+                   "--out", str(tmp_path / "m.npz"),
                    "--plots", str(tmp_path / "plots")])
     assert status == 0, capsys.readouterr().err
     assert_png(tmp_path / "plots" / "learning_curves.png")
@@ -72,7 +73,8 @@ def test_without_matplotlib_the_functions_say_how_to_enable_plots(without_matplo
 def test_without_matplotlib_train_still_works_and_says_how_to_enable_plots(without_matplotlib, tmp_path, capsys):
     write_synthetic_csv(tmp_path / "data.csv", n=60)
     status = main(["train", str(tmp_path / "data.csv"), "--inputs", "x0,x1,x2", "--targets", "y1",
-                   "--hidden", "3", "--epochs", "5", "--quiet", "--out", str(tmp_path / "m.npz"),
+                   "--hidden", "3", "--method", "mini-batch", "--epochs", "5", "--quiet",
+                   "--out", str(tmp_path / "m.npz"),
                    "--plots", str(tmp_path / "plots")])
     out, err = capsys.readouterr()
     assert status == 0

@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
-from tinyprop.recipes import TabularRegression, fit_tabular_regression
+from tinyprop.recipes import RECIPE_HIDDEN, TabularRegression, fit_tabular_regression
 from tinyprop.sweep import SweepRecord, TrainingData, setting_key, sweep
 
 QUICK = TabularRegression(epochs=25, patience=10)
@@ -76,10 +76,17 @@ def assert_same_run(run, reference) -> None:
     assert (result.epochs_run, result.best_epoch) == (reference_result.epochs_run, reference_result.best_epoch)
 
 
+def adam_branch(*args, **kwargs):
+    """The adam-early-stopping branch of the default recipe, as ``(net, TrainingResult)``."""
+    net, result = fit_tabular_regression(*args, method="adam-early-stopping", **kwargs)
+    assert result.method == "adam-early-stopping" and result.reason == "requested"
+    return net, result.training
+
+
 def test_recipe_defaults_reproduce_fit_tabular_regression():
-    # the ready recipe is tinyprop's documented default recipe, not a second one
+    # the ready recipe is the documented default recipe's mini-batch branch, not a second one
     assert_same_run(TabularRegression(epochs=40)({"hidden": [7], "seed": 3}, TrainingData(X, Y)),
-                    fit_tabular_regression(X, Y, hidden=[7], seed=3, epochs=40))
+                    adam_branch(X, Y, hidden=[7], seed=3, epochs=40))
 
 
 def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
@@ -87,9 +94,8 @@ def test_default_recipe_is_fit_tabular_regression_bit_for_bit():
     # patience: the run stops early, so a different patience would change it
     defaults = {name: p.default for name, p in inspect.signature(fit_tabular_regression).parameters.items()}
     recipe = TabularRegression()
-    assert (recipe.hidden, recipe.epochs, recipe.seed) == (tuple(defaults["hidden"]), defaults["epochs"],
-                                                               defaults["seed"])
-    run, reference = recipe({}, TrainingData(X, Y)), fit_tabular_regression(X, Y)
+    assert (recipe.hidden, recipe.epochs, recipe.seed) == (RECIPE_HIDDEN, defaults["epochs"], defaults["seed"])
+    run, reference = recipe({}, TrainingData(X, Y)), adam_branch(X, Y)
     assert run[1].stop_reason == "early stopping" and run[1].epochs_run < recipe.epochs
     assert_same_run(run, reference)
     # the comparison can fail: another patience gives another run

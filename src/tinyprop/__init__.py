@@ -12,7 +12,16 @@ modules: ``tinyprop.network.Trace``, ``tinyprop.workspace.Workspace``,
 """
 
 from ._version import __version__
-from .activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .activations import Activation, ActivationShape, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from .bounds import (
+    Certificate,
+    GradientBounds,
+    OutputBounds,
+    UndeclaredActivation,
+    certificate,
+    gradient_bounds,
+    output_bounds,
+)
 from .check import ActivationReport, GradientReport, check_activation, check_gradient
 from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_checkpoint
 from .ensemble import Ensemble
@@ -40,7 +49,8 @@ from .modelfile import (
 )
 from .network import Network
 from .optim import SGD, Adam, Optimizer, RMSProp
-from .recipes import TabularRegression, fit_tabular_regression
+from .posterior import PosteriorUncertainty
+from .recipes import RecipeResult, TabularRegression, fit_tabular_regression
 from .registry import register_activation
 from .schedules import CosineSchedule, ExponentialSchedule, LinearWarmUp, Schedule, StepSchedule
 from .sensitivity import SensitivityTable, input_sensitivity
@@ -61,6 +71,7 @@ __all__ = [
     "Network", "build_mlp", "Affine", "Standardize", "Unstandardize",
     # activations
     "Activation", "Sigmoid", "Tanh", "ReLU", "LeakyReLU", "Softplus", "Identity", "register_activation",
+    "ActivationShape",
     # losses
     "Loss", "SquaredError", "MeanSquaredError", "HuberError", "CrossEntropyOnSigmoid", "CrossEntropyOnSoftmax",
     # training: the loop, optimizers, schedules, checkpoints
@@ -71,7 +82,7 @@ __all__ = [
     # least-squares fitting
     "solve", "SolveResult",
     # recipes
-    "fit_tabular_regression", "TabularRegression",
+    "fit_tabular_regression", "TabularRegression", "RecipeResult",
     # verification
     "check_gradient", "GradientReport", "check_activation", "ActivationReport",
     # model files
@@ -79,8 +90,12 @@ __all__ = [
     "model_parts", "model_from_parts",
     # inference code
     "export_c", "export_python", "export_c_fixed_point", "FixedPointReport", "agreement_bound",
+    # guarantees over an input box
+    "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
+    "UndeclaredActivation",
     # how far to trust a fit
-    "parameter_uncertainty", "ParameterUncertainty", "PredictionIntervals", "RankDeficientError", "parameter_labels",
+    "parameter_uncertainty", "ParameterUncertainty", "PosteriorUncertainty", "PredictionIntervals",
+    "RankDeficientError", "parameter_labels",
     "input_sensitivity", "SensitivityTable", "uncertainty_report",
     # many networks
     "sweep", "setting_key", "SweepResult", "SweepRecord", "TrainingData", "Ensemble",

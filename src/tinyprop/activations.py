@@ -25,6 +25,7 @@ Custom activations keep ``z`` and ``a`` in separate arrays and need neither.
 from __future__ import annotations
 
 import re
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -32,6 +33,7 @@ from ._settings_equality import Configured
 
 __all__ = [
     "Activation",
+    "ActivationShape",
     "Sigmoid",
     "Tanh",
     "ReLU",
@@ -41,6 +43,57 @@ __all__ = [
     "BUILT_IN_ACTIVATIONS",
     "built_in_name",
 ]
+
+
+_FUNCTION_ULPS = 4.0
+"""Assumed accuracy of numpy's ``exp``, ``tanh``, ``log1p``, ``expm1`` (ulps; as in ``export/bound.py``)."""
+
+
+@dataclass(frozen=True)
+class ActivationShape:
+    """What :mod:`tinyprop.bounds` must know about ``f`` to bound it soundly over an interval.
+
+    ``breakpoints`` (strictly increasing) cut the real line into
+    ``len(breakpoints) + 1`` pieces; ``curvature[i]`` says what ``f`` is on
+    piece ``i``: ``1`` convex, ``-1`` concave, ``0`` linear. Put a breakpoint
+    at every inflection point and every kink. Everything else is derived from
+    this: on a piece, ``f'`` is monotone (non-decreasing where convex,
+    non-increasing where concave), so the extremes of ``f`` and ``f'`` over an
+    interval lie at its ends, at breakpoints inside it, or (for ``f``) where a
+    tangent is horizontal, and a line lies below a convex piece exactly when
+    it lies below some tangent.
+
+    Assumed, and the user's promise for a custom activation: ``f`` is
+    continuous; next to a breakpoint ``f'`` equals its one-sided limit (true
+    when ``f'`` is constant or continuous near it); ``value`` is within
+    ``value_error * (u |f(z)| + s)`` of ``f(z)`` and ``derivative`` within
+    ``derivative_error * (u max(1, |f'(z)|) + s)`` of ``f'(z)``, where ``u`` is
+    the unit roundoff and ``s`` the smallest subnormal of the dtype; and
+    ``derivative`` is never negative where ``f'`` is not. The built-in figures
+    count the operations of each stable formula, with 4 ulps per call of
+    ``exp``, ``tanh``, ``log1p`` or ``expm1`` (as ``export/bound.py`` does).
+    """
+
+    breakpoints: tuple[float, ...]
+    curvature: tuple[int, ...]
+    value_error: float
+    derivative_error: float
+
+    def __post_init__(self) -> None:
+        points = tuple(float(b) for b in self.breakpoints)
+        if not all(np.isfinite(points)) or any(b >= c for b, c in zip(points, points[1:])):
+            raise ValueError(f"breakpoints must be finite and strictly increasing, got {self.breakpoints!r}")
+        if len(self.curvature) != len(points) + 1 or any(c not in (-1, 0, 1) for c in self.curvature):
+            raise ValueError(
+                f"curvature needs one entry of 1 (convex), -1 (concave) or 0 (linear) per piece, "
+                f"{len(points) + 1} for {len(points)} breakpoints; got {self.curvature!r}"
+            )
+        for name in ("value_error", "derivative_error"):
+            figure = getattr(self, name)
+            if not (np.isfinite(figure) and figure >= 0):
+                raise ValueError(f"{name} must be a finite number >= 0, got {figure!r}")
+        object.__setattr__(self, "breakpoints", points)
+        object.__setattr__(self, "curvature", tuple(int(c) for c in self.curvature))
 
 
 class Activation(Configured):
@@ -59,6 +112,10 @@ class Activation(Configured):
     """
 
     kinks: tuple[float, ...] = ()
+
+    def declared_shape(self) -> ActivationShape | None:
+        """Pieces, curvature and rounding of ``f`` for :func:`tinyprop.output_bounds`; ``None`` if undeclared."""
+        return None
 
     def value(self, z: np.ndarray) -> np.ndarray:
         """Return ``f(z)`` elementwise."""
@@ -80,6 +137,10 @@ class Sigmoid(Activation):
     with ``e = exp(-|z|) <= 1``, so no exponential can overflow and large
     negative ``z`` gives a tiny positive number (or 0), never NaN.
     """
+
+    def declared_shape(self) -> ActivationShape:
+        """Convex below 0, concave above; ``exp``, one addition, one division; ``a (1 - a)``."""
+        return ActivationShape((0.0,), (1, -1), 3 * _FUNCTION_ULPS + 2, 3 * _FUNCTION_ULPS + 4)
 
     def value(self, z: np.ndarray) -> np.ndarray:
         e = np.exp(-np.abs(z))
@@ -104,6 +165,10 @@ class Tanh(Activation):
 
     ``f(z) = tanh(z)``, ``f'(z) = 1 - tanh(z)**2 = 1 - a**2``.
     """
+
+    def declared_shape(self) -> ActivationShape:
+        """Convex below 0, concave above; ``1 - a**2`` with ``a`` off by ``2k`` ulps."""
+        return ActivationShape((0.0,), (1, -1), 2 * _FUNCTION_ULPS, 4 * _FUNCTION_ULPS + 2)
 
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.tanh(z)
@@ -133,6 +198,10 @@ class ReLU(Activation):
 
     kinks = (0.0,)
 
+    def declared_shape(self) -> ActivationShape:
+        """Linear on each side of the kink; exact."""
+        return ActivationShape((0.0,), (0, 0), 0.0, 0.0)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.maximum(z, 0.0, dtype=z.dtype)
 
@@ -159,6 +228,10 @@ class LeakyReLU(Activation):
     """
 
     kinks = (0.0,)
+
+    def declared_shape(self) -> ActivationShape:
+        """Linear on each side of the kink; ``slope`` rounded to the dtype, one multiplication."""
+        return ActivationShape((0.0,), (0, 0), 2.0, 1.0)
 
     def __init__(self, slope: float = 0.01) -> None:
         slope = float(slope)
@@ -197,6 +270,10 @@ class Softplus(Activation):
     accurate for tiny ``a`` too.
     """
 
+    def declared_shape(self) -> ActivationShape:
+        """Convex; ``log1p`` of ``exp`` plus one addition; ``-expm1(-a)``."""
+        return ActivationShape((), (1,), 4 * _FUNCTION_ULPS + 1, 3 * _FUNCTION_ULPS + 2)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.maximum(z, 0.0, dtype=z.dtype) + np.log1p(np.exp(-np.abs(z)))
 
@@ -220,6 +297,10 @@ class Identity(Activation):
 
     ``f(z) = z``, ``f'(z) = 1``.
     """
+
+    def declared_shape(self) -> ActivationShape:
+        """Linear; exact."""
+        return ActivationShape((), (0,), 0.0, 0.0)
 
     def value(self, z: np.ndarray) -> np.ndarray:
         return z.copy()

@@ -41,7 +41,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
@@ -54,13 +54,15 @@ from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
 from .schedules import CosineSchedule
-from .solve import solve
+from .solve import SolveResult, solve
 from .sweep import TrainingData
 from .train import History, TrainingResult, train
 from .uncertainty import uncertainty_report
 
 __all__ = [
     "fit_tabular_regression",
+    "choose_method",
+    "RecipeResult",
     "TabularRegression",
     "FitSettings",
     "Dataset",
@@ -76,53 +78,198 @@ __all__ = [
 
 
 # ---------------------------------------------------------------- the default recipe
-# The default recipe's settings (chosen and measured in docs/training.md). They are
-# also the defaults of TabularRegression, which trains through _fit_tabular too.
-RECIPE_HIDDEN = (50,)
+# The default recipe's settings (chosen and measured in docs/training.md). The mini-batch
+# ones are also the defaults of TabularRegression, which trains through _fit_tabular too.
+RECIPE_HIDDEN = (50,)  # adam-early-stopping branch
+RECIPE_EVIDENCE_HIDDEN = (20,)  # evidence-lm branch
 RECIPE_LR = 3e-3
 RECIPE_BATCH_SIZE = 64
 RECIPE_EPOCHS = 2000
 RECIPE_PATIENCE = 60
+RECIPE_METHODS = ("auto", "evidence-lm", "adam-early-stopping")
+RECIPE_EVALUATIONS = 600  # evidence-lm: forward passes per restart (each taken step adds one more)
+# evidence-lm while one iteration stays affordable: the normal equations n_out p^2 float64 numbers,
+# the work n n_out p^2 multiply-adds per iteration
+SECOND_ORDER_BYTES = 256 * 2**20
+SECOND_ORDER_WORK = 2e10
+RECIPE_RESTARTS = 1  # measured on the UCI splits: 3 restarts kept by log evidence did not pay (docs/training.md)
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class RecipeResult:
+    """What :func:`fit_tabular_regression` returns besides the network.
+
+    ``method``: the branch that ran, ``"evidence-lm"`` or ``"adam-early-stopping"``;
+    ``reason``: why (the sizes against the limits, or "requested").
+    ``seeds``: the initialisation seed of every restart; ``log_evidence``: the
+    log evidence of every restart (evidence-lm; empty otherwise) and
+    ``chosen`` the index of the restart kept (the largest log evidence).
+    ``solved``: the kept restart's :class:`~tinyprop.solve.SolveResult`
+    (evidence-lm; its ``noise_sd``, ``effective_parameters`` and ``penalty``,
+    and ``parameter_uncertainty(net, result=solved)`` for intervals);
+    ``training``: the :class:`~tinyprop.train.TrainingResult` (adam-early-stopping).
+    """
+
+    method: str
+    reason: str
+    seeds: tuple[int, ...]
+    log_evidence: tuple[float, ...]
+    chosen: int
+    solved: SolveResult | None = field(default=None, repr=False)
+    training: TrainingResult | None = field(default=None, repr=False)
+
+    def summary(self) -> dict[str, Any]:
+        """JSON-able facts for reports and model metadata."""
+        facts: dict[str, Any] = {"recipe_method": self.method, "reason": self.reason, "seeds": list(self.seeds),
+                                 "chosen_restart": self.chosen}
+        if self.solved is not None:
+            solved = self.solved
+            facts.update(
+                log_evidence=list(self.log_evidence), message=solved.message, success=solved.success,
+                iterations=solved.iterations, function_evaluations=solved.function_evaluations,
+                noise_sd=[float(v) for v in solved.noise_sd], penalty=solved.penalty,
+                effective_parameters=solved.effective_parameters, n_params=int(solved.theta.size),
+            )
+        if self.training is not None:
+            training = self.training
+            facts.update(message=training.message, stop_reason=training.stop_reason, epochs_run=training.epochs_run,
+                         best_epoch=training.best_epoch)
+        return facts
+
+
+def choose_method(n_rows: int, n_out: int, n_params: int, method: str = "auto") -> tuple[str, str]:
+    """The recipe's branch and the reason, for ``n_rows`` rows, ``n_out`` targets and a network of ``n_params``.
+
+    ``"auto"``: evidence-lm while the normal equations (``n_out p^2`` float64
+    numbers) take at most 256 MB and one iteration at most ``2e10``
+    multiply-adds (``n n_out p^2``); adam-early-stopping beyond.
+    """
+    if method not in RECIPE_METHODS:
+        raise ValueError(f"method must be one of {RECIPE_METHODS}, got {method!r}")
+    if method != "auto":
+        return method, "requested"
+    size, work = 8 * n_out * n_params**2, n_rows * n_out * n_params**2
+    within = size <= SECOND_ORDER_BYTES and work <= SECOND_ORDER_WORK
+    sizes = (f"{n_params} parameters, {n_rows} rows x {n_out} targets: normal equations {size / 2**20:.3g} MB, "
+             f"{work:.3g} multiply-adds per iteration (limits {SECOND_ORDER_BYTES / 2**20:.0f} MB, "
+             f"{SECOND_ORDER_WORK:.0e})")
+    if within:
+        return "evidence-lm", sizes + ": evidence-regularised Levenberg-Marquardt is affordable"
+    return "adam-early-stopping", sizes + ": beyond the limits, mini-batch Adam with early stopping"
 
 
 def fit_tabular_regression(
     X: Any,
     y: Any,
     *,
-    hidden: Sequence[int] = RECIPE_HIDDEN,
+    hidden: int | Sequence[int] | None = None,
     seed: int = 0,
+    method: str = "auto",
+    restarts: int | None = None,
     epochs: int = RECIPE_EPOCHS,
     progress: bool = False,
-) -> tuple[Network, TrainingResult]:
-    """tinyprop's default recipe for small tabular regression; returns ``(net, result)``.
+) -> tuple[Network, RecipeResult]:
+    """tinyprop's default recipe for tabular regression; returns ``(net, result)``.
 
     The recipe (documented with its measured results in ``docs/training.md``):
 
-    - network ``Standardize -> [Affine -> Tanh] per width in hidden -> Affine
-      -> Unstandardize`` (one hidden layer of 50 by default), scalings fitted on
-      all rows given (the training rows), Glorot initialisation from ``seed``;
-    - 10 % of the rows (at least one), drawn with ``seed``, held out for early
-      stopping; the network trains on the rest;
-    - :class:`~tinyprop.losses.MeanSquaredError` in the targets' units,
-      ``Adam(lr=3e-3)``, mini-batches of 64, at most ``epochs`` epochs,
-      early stopping with patience 60 restoring the best weights.
-
-    The settings were chosen by the RMSE on development rows carved from the
-    training rows of the UCI regression benchmark, never on its test rows
-    (``docs/training.md`` gives the candidates and the order of events).
-    :class:`TabularRegression` is the same recipe with every
-    setting open to a sweep.
+    - network ``Standardize -> [Affine -> Tanh] per width in hidden -> Affine ->
+      Unstandardize``, scalings fitted on all rows given (the training rows),
+      Glorot initialisation. ``hidden``: one width or a list of widths; default
+      one layer of 20 units (evidence-lm) or 50 (adam-early-stopping).
+    - ``method="auto"`` picks the branch by :func:`choose_method` for the
+      evidence-lm network; ``"evidence-lm"`` or ``"adam-early-stopping"`` force one.
+    - **evidence-lm**: ``solve(net, X, y, regularization="evidence",
+      max_evaluations=600)`` on all rows (no hold-out: the evidence framework
+      sets the penalty and one noise level per target from the training rows,
+      see :mod:`tinyprop.evidence`), from ``restarts`` initialisations (default
+      1: on the UCI splits three restarts chosen by their log evidence did not
+      lower the test error); the restart with the largest log evidence is kept.
+    - **adam-early-stopping**: :class:`TabularRegression` with ``hidden``,
+      ``seed`` and ``epochs``: 10 % of the rows (at least one), drawn with
+      ``seed``, held out for early stopping; :class:`~tinyprop.losses.MeanSquaredError`
+      in the targets' units, ``Adam(lr=3e-3)``, mini-batches of 64, at most
+      ``epochs`` epochs, patience 60, best weights restored.
 
     ``X`` is ``(n, d)``, ``y`` ``(n,)`` or ``(n, m)``; ``n >= 2``. Deterministic
-    for a given ``seed``, from which the hold-out rows, the initial weights and
-    the shuffling draw three independent streams (``numpy.random.SeedSequence``).
+    for a given ``seed`` (``numpy.random.SeedSequence`` streams for the
+    hold-out rows, the initial weights of each restart and the shuffling).
     """
-    return TabularRegression(hidden=hidden, seed=seed, epochs=epochs).fit(X, y, progress=progress)
+    seed = seed_value(seed, required=True)
+    if method not in RECIPE_METHODS:
+        raise ValueError(f"method must be one of {RECIPE_METHODS}, got {method!r}")
+    X64, targets = _tabular_data(X, y)
+    widths = None if hidden is None else _widths(hidden)
+    evidence_widths = widths or RECIPE_EVIDENCE_HIDDEN
+    sizes = [X64.shape[1], *evidence_widths, targets.shape[1]]
+    n_params = sum((a + 1) * b for a, b in zip(sizes[:-1], sizes[1:]))
+    branch, reason = choose_method(X64.shape[0], targets.shape[1], n_params, method)
+    if branch == "adam-early-stopping":
+        net, training = TabularRegression(hidden=widths or RECIPE_HIDDEN, seed=seed, epochs=epochs).fit(
+            X64, targets, progress=progress
+        )
+        _, init_seed, _ = _streams(seed)
+        return net, RecipeResult(method=branch, reason=reason, seeds=(init_seed,), log_evidence=(), chosen=0,
+                                 training=training)
+    restarts = positive_int(RECIPE_RESTARTS if restarts is None else restarts, "restarts")
+    seeds = tuple(int(s) for s in np.random.SeedSequence(seed).generate_state(restarts))
+    best: tuple[Network, SolveResult] | None = None
+    evidences = []
+    for init_seed in seeds:
+        net = _scaled_tanh_network(X64, targets, evidence_widths, init_seed)
+        solved = solve(net, X64, targets, regularization="evidence", max_evaluations=RECIPE_EVALUATIONS,
+                       progress=progress)
+        evidences.append(float(solved.log_evidence))
+        if best is None or solved.log_evidence > best[1].log_evidence:
+            best = (net, solved)
+    assert best is not None
+    return best[0], RecipeResult(
+        method=branch, reason=reason, seeds=seeds, log_evidence=tuple(evidences),
+        chosen=evidences.index(float(best[1].log_evidence)), solved=best[1],
+    )
+
+
+def _widths(hidden: int | Sequence[int]) -> tuple[int, ...]:
+    if isinstance(hidden, (int, np.integer)) and not isinstance(hidden, bool):
+        return (positive_int(hidden, "hidden"),)
+    if not isinstance(hidden, (list, tuple)) or len(hidden) == 0:
+        raise TypeError(f"hidden must be a width or a non-empty list of widths, e.g. 20 or [16, 16], got {hidden!r}")
+    return tuple(positive_int(width, "each width in hidden") for width in hidden)
+
+
+def _tabular_data(X: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
+    """``X`` ``(n, d)`` and the targets ``(n, m)`` as float64, checked; ``n >= 2``."""
+    X = as_float_array(X, "X", np.dtype(np.float64))
+    y = as_float_array(y, "y", np.dtype(np.float64))
+    if X.ndim != 2:
+        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
+    targets = y.reshape(-1, 1) if y.ndim == 1 else y
+    if targets.ndim != 2 or targets.shape[0] != X.shape[0]:
+        raise ValueError(f"y must have shape ({X.shape[0]},) or ({X.shape[0]}, n_outputs), got shape {y.shape}")
+    if X.shape[0] < 2:
+        raise ValueError(f"need at least 2 rows, got {X.shape[0]}")
+    return X, targets
+
+
+def _streams(seed: int) -> tuple[int, int, int]:
+    """Hold-out rows, initial weights, shuffling: three independent streams from ``seed``."""
+    hold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(seed).generate_state(3))
+    return hold_seed, init_seed, shuffle_seed
+
+
+def _scaled_tanh_network(X: np.ndarray, targets: np.ndarray, hidden: tuple[int, ...], init_seed: int) -> Network:
+    """``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine -> Unstandardize``, Glorot from ``init_seed``."""
+    widths = [X.shape[1], *hidden, targets.shape[1]]
+    layers: list[Layer] = [Standardize.from_data(X)]
+    for n_in, n_out in zip(widths[:-2], widths[1:-1]):
+        layers += [Affine(n_in, n_out), Tanh()]
+    layers += [Affine(widths[-2], widths[-1]), Unstandardize.from_data(targets)]
+    return Network(layers, seed=init_seed)
 
 
 @dataclass(frozen=True)
 class TabularRegression:
-    """A recipe for small tabular regression; its defaults are :func:`fit_tabular_regression`.
+    """The adam-early-stopping branch of :func:`fit_tabular_regression`, every setting open to a sweep.
 
     ``recipe(setting, data)`` trains ``replace(recipe, **setting).fit(data.X, data.y)``:
     every setting key must be one of the fields below, whose values are the
@@ -138,10 +285,9 @@ class TabularRegression:
     validation rows of the sweep are not used for early stopping, so they
     stay an independent yardstick for choosing a setting.
 
-    Both recipes train through one implementation, so with the defaults
-    and one hidden layer it reproduces
-    ``fit_tabular_regression(X, y, hidden=..., seed=..., epochs=...)``
-    bit for bit (checked in ``tests/test_sweep.py``).
+    Both train through one implementation, so with the defaults it reproduces
+    ``fit_tabular_regression(X, y, hidden=..., seed=..., epochs=...,
+    method="adam-early-stopping")`` bit for bit (checked in ``tests/test_sweep.py``).
     """
 
     hidden: tuple[int, ...] = RECIPE_HIDDEN
@@ -207,25 +353,12 @@ def _fit_tabular(
     ``seed`` feeds three independent streams (``numpy.random.SeedSequence``):
     hold-out rows, initial weights, shuffling.
     """
-    X = as_float_array(X, "X", np.dtype(np.float64))
-    y = as_float_array(y, "y", np.dtype(np.float64))
-    if X.ndim != 2:
-        raise ValueError(f"X must have shape (n_samples, n_features), got shape {X.shape}")
-    targets = y.reshape(-1, 1) if y.ndim == 1 else y
-    if targets.ndim != 2 or targets.shape[0] != X.shape[0]:
-        raise ValueError(f"y must have shape ({X.shape[0]},) or ({X.shape[0]}, n_outputs), got shape {y.shape}")
-    if X.shape[0] < 2:
-        raise ValueError(f"need at least 2 rows (one is held out for early stopping), got {X.shape[0]}")
-    hold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(seed).generate_state(3))
+    X, targets = _tabular_data(X, y)
+    hold_seed, init_seed, shuffle_seed = _streams(seed)
     order = np.random.default_rng(hold_seed).permutation(X.shape[0])
     n_hold = max(1, X.shape[0] // 10)
     held, kept = order[:n_hold], order[n_hold:]
-    widths = [X.shape[1], *hidden, targets.shape[1]]
-    layers: list[Layer] = [Standardize.from_data(X)]
-    for n_in, n_out in zip(widths[:-2], widths[1:-1]):
-        layers += [Affine(n_in, n_out), Tanh()]
-    layers += [Affine(widths[-2], widths[-1]), Unstandardize.from_data(targets)]
-    net = Network(layers, seed=init_seed)
+    net = _scaled_tanh_network(X, targets, hidden, init_seed)
     result = train(
         net, X[kept], targets[kept], loss=MeanSquaredError(), optimizer=Adam(lr=lr, decoupled_decay=decoupled_decay),
         epochs=epochs, batch_size=batch_size, validation=(X[held], targets[held]), patience=patience,
@@ -244,7 +377,8 @@ OPTIMIZERS: dict[str, tuple[type[Optimizer], float]] = {  # class and default le
     "rmsprop": (RMSProp, 1e-3),
     "sgd": (SGD, 1e-2),
 }
-METHODS = ("mini-batch", "levenberg-marquardt", "lbfgs")
+METHODS = (*RECIPE_METHODS, "mini-batch", "levenberg-marquardt", "lbfgs")
+COMMAND_LINE_HIDDEN = (16, 16)  # the widths of the mini-batch / least-squares methods when none are given
 SCHEDULES = ("cosine", "constant")
 
 
@@ -252,9 +386,9 @@ SCHEDULES = ("cosine", "constant")
 class FitSettings:
     """Everything that decides the fitted weights (the recipe above); defaults of ``tinyprop train``."""
 
-    hidden: tuple[int, ...] = (16, 16)
+    hidden: tuple[int, ...] | None = None  # None: the recipe's choice, or COMMAND_LINE_HIDDEN
     activation: str = "tanh"
-    method: str = "mini-batch"
+    method: str = "auto"
     optimizer: str = "adam"
     lr: float | None = None  # the learning rate; None: the optimizer's default in OPTIMIZERS
     schedule: str = "cosine"
@@ -267,6 +401,7 @@ class FitSettings:
     test_fraction: float = 0.15
     dtype: str = "float64"
     max_evaluations: int = 1000
+    restarts: int | None = None  # None: the recipe's default
 
     def optimizer_lr(self) -> float:
         """``lr``, or the optimizer's default learning rate when it is ``None``."""
@@ -274,12 +409,15 @@ class FitSettings:
 
     def to_dict(self) -> dict[str, Any]:
         settings = asdict(self)
-        settings["hidden"] = list(self.hidden)
+        settings["hidden"] = None if self.hidden is None else list(self.hidden)
         settings["lr"] = self.optimizer_lr()
         settings["loss"] = "MeanSquaredError"
         return settings
 
     def describe_method(self) -> str:
+        if self.method in RECIPE_METHODS:
+            return ("the default recipe (evidence-regularised Levenberg-Marquardt while affordable, else Adam with "
+                    f"early stopping), method {self.method}")
         if self.method != "mini-batch":
             return f"{self.method}, at most {self.max_evaluations} evaluations"
         text = (f"{self.optimizer}, learning rate {self.optimizer_lr():g} ({self.schedule}), batch {self.batch_size}, "
@@ -312,11 +450,18 @@ class Split:
 
 @dataclass(frozen=True)
 class FitOutcome:
-    """The fit's facts for the report; ``history`` is ``None`` for the least-squares methods."""
+    """The fit's facts for the report; ``history`` is ``None`` for the least-squares methods.
+
+    ``network``: the fitted network (for the recipe's methods the recipe builds
+    it; otherwise the one passed to :func:`fit`); ``recipe``: the recipe's
+    :class:`RecipeResult` (``None`` for the other methods).
+    """
 
     summary: dict[str, Any]
     history: History | None
     seconds: float
+    network: Network | None = None
+    recipe: RecipeResult | None = None
 
 
 def split_rows(n: int, settings: FitSettings) -> Split:
@@ -335,23 +480,41 @@ def split_rows(n: int, settings: FitSettings) -> Split:
 def build_network(data: Dataset, split: Split, settings: FitSettings) -> Network:
     """Step 2 of the recipe."""
     X_train, y_train = data.X[split.training], data.y[split.training]
-    sizes = [data.X.shape[1], *settings.hidden, data.y.shape[1]]
+    sizes = [data.X.shape[1], *(settings.hidden or COMMAND_LINE_HIDDEN), data.y.shape[1]]
     mlp = build_mlp(sizes, activation=ACTIVATIONS[settings.activation](), seed=settings.seed, dtype=settings.dtype)
     layers = [Standardize.from_data(X_train), *mlp.layers, Unstandardize.from_data(y_train)]
     return Network(layers, dtype=settings.dtype, init=None)
 
 
 def fit(
-    net: Network,
+    net: Network | None,
     data: Dataset,
     split: Split,
     settings: FitSettings,
     *,
     progress: bool = False,
 ) -> FitOutcome:
-    """Step 3 of the recipe: changes ``net``'s weights in place; ``progress`` shows the progress line on stderr."""
+    """Step 3 of the recipe: changes ``net``'s weights in place; ``progress`` shows the progress line on stderr.
+
+    For the default recipe's methods (``auto``, ``evidence-lm``,
+    ``adam-early-stopping``) ``net`` is ``None``:
+    ``fit_tabular_regression(X_train, y_train, hidden=settings.hidden,
+    seed=settings.seed, method=settings.method, restarts=settings.restarts)``
+    builds and fits the network (copied to ``settings.dtype``), returned as
+    ``outcome.network``.
+    """
     X_train, y_train = data.X[split.training], data.y[split.training]
     started = time.perf_counter()
+    if settings.method in RECIPE_METHODS:
+        fitted, recipe = fit_tabular_regression(
+            X_train, y_train, hidden=settings.hidden, seed=settings.seed, method=settings.method,
+            restarts=settings.restarts, progress=progress,
+        )
+        history = None if recipe.training is None else recipe.training.history
+        return FitOutcome(recipe.summary(), history, time.perf_counter() - started,
+                          network=fitted.copy(settings.dtype), recipe=recipe)
+    if net is None:
+        raise TypeError(f"method {settings.method!r} fits a given network; build it with build_network")
     if settings.method == "mini-batch":
         optimizer = _optimizer(settings, X_train.shape[0])
         validation = (data.X[split.validation], data.y[split.validation]) if split.validation.size else None
@@ -368,7 +531,7 @@ def fit(
             "best_epoch": result.best_epoch,
             "best_validation_loss": result.best_validation_loss,  # finite: a non-finite loss raises
         }
-        return FitOutcome(summary, result.history, time.perf_counter() - started)
+        return FitOutcome(summary, result.history, time.perf_counter() - started, network=net)
     solved = solve(net, X_train, y_train, method=settings.method, max_evaluations=settings.max_evaluations,
                    progress=progress)
     summary = {
@@ -380,7 +543,7 @@ def fit(
         "function_evaluations": solved.function_evaluations,
         "jacobian_evaluations": solved.jacobian_evaluations,
     }
-    return FitOutcome(summary, None, time.perf_counter() - started)
+    return FitOutcome(summary, None, time.perf_counter() - started, network=net)
 
 
 def _optimizer(settings: FitSettings, n_train: int) -> Optimizer:
@@ -418,12 +581,18 @@ def evaluate_all(net: Network, data: Dataset, split: Split) -> dict[str, Any]:
     return {part: evaluate(net, data, getattr(split, part)) for part in ("training", "validation", "test")}
 
 
-def least_squares_uncertainty(net: Network, data: Dataset, split: Split) -> dict[str, Any]:
-    """Parameter standard errors, prediction intervals and input sensitivities on the training rows."""
+def least_squares_uncertainty(
+    net: Network, data: Dataset, split: Split, result: SolveResult | None = None
+) -> dict[str, Any]:
+    """Parameter standard errors, prediction intervals and input sensitivities on the training rows.
+
+    ``result``: the fit's :class:`~tinyprop.solve.SolveResult`, needed for a
+    regularised (evidence-lm) fit, whose posterior is reported per target.
+    """
     try:
         return uncertainty_report(
             net, data.X[split.training], data.y[split.training],
-            input_names=data.input_names, output_names=data.target_names,
+            input_names=data.input_names, output_names=data.target_names, result=result,
         )
     except ValueError as exc:  # e.g. no degrees of freedom left
         return {"unavailable": str(exc)}

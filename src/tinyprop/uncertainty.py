@@ -50,6 +50,13 @@ minimises the unweighted sum of squares over all outputs, which is the
 maximum-likelihood fit only when every output has the same noise level. Scale
 the targets so that this holds (or fit one network per output).
 
+A regularised fit (``solve(..., regularization="evidence")`` or a fixed
+penalty) is not a plain least-squares solution: for its result,
+:func:`parameter_uncertainty` returns the Gaussian posterior of
+:mod:`tinyprop.posterior` instead (covariance ``H^-1``,
+``H = sum_k beta_k J_k^T J_k + alpha I``, one noise level per target), whose
+intervals have the same form.
+
 These results assume that the model is locally linear in ``theta`` near the
 solution, that the model form is right, and that the errors are independent,
 Gaussian, with constant variance; see ``docs/uncertainty.md``.
@@ -65,17 +72,21 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ._json import finite_or_none
 from ._validate import as_samples, as_targets, real_in_range, require_finite
 from .activations import Identity, LeakyReLU, ReLU
+from .intervals import PredictionIntervals
 from .layers import Affine
 from .network import Network
 from .sensitivity import input_sensitivity
 from .solve import SolveResult
+
+if TYPE_CHECKING:
+    from .posterior import PosteriorUncertainty
 
 __all__ = [
     "ParameterUncertainty",
@@ -134,42 +145,6 @@ class RankDeficientError(ValueError):
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
-class PredictionIntervals:
-    """Delta-method intervals at new inputs (module docstring formulas).
-
-    Arrays have shape ``(m, n_out)`` for ``m`` new inputs. ``prediction``:
-    the network output ``f(x0)``. ``mean_standard_error``: ``sqrt(g^T C g)``.
-    ``prediction_standard_error``: ``sqrt(s^2 + g^T C g)``. ``mean_lower`` /
-    ``mean_upper``: confidence interval of the fitted mean. ``lower`` /
-    ``upper``: prediction interval for a new observation. ``level``: the
-    confidence level; ``t_quantile``: ``t_{(1 + level)/2, dof}``;
-    ``degrees_of_freedom``: ``N - p``.
-    """
-
-    level: float
-    t_quantile: float
-    degrees_of_freedom: int
-    prediction: np.ndarray
-    mean_standard_error: np.ndarray
-    prediction_standard_error: np.ndarray
-    mean_lower: np.ndarray
-    mean_upper: np.ndarray
-    lower: np.ndarray
-    upper: np.ndarray
-
-    @property
-    def half_width(self) -> np.ndarray:
-        """Half-width of the prediction interval, ``t * sqrt(s^2 + g^T C g)``."""
-        return self.t_quantile * self.prediction_standard_error
-
-    def contains(self, y: Any) -> np.ndarray:
-        """Boolean ``(m, n_out)``: ``lower <= y <= upper`` (1-D ``y`` for one output)."""
-        m, n_out = self.prediction.shape
-        target = as_targets(y, "y", m, n_out, np.dtype(np.float64))
-        return (self.lower <= target) & (target <= self.upper)
-
-
-@dataclass(frozen=True, kw_only=True, eq=False)
 class ParameterUncertainty:
     """What :func:`parameter_uncertainty` returns (formulas in the module docstring).
 
@@ -222,20 +197,9 @@ class ParameterUncertainty:
         G = self.network.jacobian(X64)
         B = (G / self.column_norms) @ self.right_singular_vectors / self.singular_values
         mean_variance = self.residual_variance * np.einsum("ij,ij->i", B, B).reshape(out.shape)
-        mean_se = np.sqrt(mean_variance)
-        prediction_se = np.sqrt(self.residual_variance + mean_variance)
         t = float(stats.t.ppf(0.5 + level / 2, self.degrees_of_freedom))
-        return PredictionIntervals(
-            level=level,
-            t_quantile=t,
-            degrees_of_freedom=self.degrees_of_freedom,
-            prediction=out,
-            mean_standard_error=mean_se,
-            prediction_standard_error=prediction_se,
-            mean_lower=out - t * mean_se,
-            mean_upper=out + t * mean_se,
-            lower=out - t * prediction_se,
-            upper=out + t * prediction_se,
+        return PredictionIntervals.from_variances(
+            level, t, self.degrees_of_freedom, out, mean_variance, self.residual_variance
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -279,7 +243,7 @@ def parameter_labels(net: Network) -> tuple[str, ...]:
 
 def parameter_uncertainty(
     net: Network, X: Any = None, y: Any = None, *, result: SolveResult | None = None
-) -> ParameterUncertainty:
+) -> ParameterUncertainty | PosteriorUncertainty:
     """Parameter covariance and standard errors of a least-squares fitted network.
 
     Give either ``X`` and ``y`` (the data the network was fitted to; the
@@ -287,7 +251,10 @@ def parameter_uncertainty(
     or ``result``, the :class:`~tinyprop.solve.SolveResult` of
     ``solve(net, X, y)`` (its float64 ``theta``, residuals and Jacobian are
     used; ``net`` must be the network ``solve`` fitted, unchanged since).
-    ``net`` is not modified.
+    ``net`` is not modified. For the result of a regularised fit the answer is
+    the posterior of :mod:`tinyprop.posterior`
+    (:class:`~tinyprop.posterior.PosteriorUncertainty`: covariance ``H^-1``,
+    per-target noise levels, intervals from the normal quantile).
 
     Raises :class:`RankDeficientError` (a ``ValueError``) when the Jacobian
     is numerically rank-deficient, and ``ValueError`` when there are no
@@ -319,6 +286,15 @@ def parameter_uncertainty(
         if X is not None or y is not None:
             raise TypeError("give either X and y or result, not both")
         work = _network_at_solution(net, result)
+        if getattr(result, "regularization", None) is not None:
+            from .posterior import posterior_uncertainty
+
+            return posterior_uncertainty(work, result, parameter_labels(work))
+        if result.jacobian is None:
+            raise ValueError(
+                f"result of method {result.method!r} keeps no Jacobian; give the fitted data instead: "
+                "parameter_uncertainty(net, X, y)"
+            )
         residuals = np.asarray(result.residuals, dtype=np.float64)
         jacobian = np.asarray(result.jacobian, dtype=np.float64)
     require_finite(residuals, "the residual vector (network output - y)")
@@ -330,15 +306,16 @@ def _network_at_solution(net: Network, result: Any) -> Network:
     """A float64 copy of ``net`` at ``result.theta``, after checking they belong together."""
     try:
         theta = np.asarray(result.theta, dtype=np.float64)
-        shapes = (np.shape(result.residuals), np.shape(result.jacobian))
+        kept = result.jacobian if result.jacobian is not None else result.normal_matrices
+        shapes = (np.shape(result.residuals), np.shape(kept))
     except AttributeError:
         raise TypeError(
             f"result must be the SolveResult of solve(net, X, y), got {type(result).__name__}"
         ) from None
-    if theta.shape != (net.n_params,) or shapes[1] != (shapes[0][0], net.n_params):
+    if theta.shape != (net.n_params,) or shapes[1][-1] != net.n_params:
         raise ValueError(
-            f"result does not belong to this network: it has {theta.size} parameters and a Jacobian of "
-            f"shape {shapes[1]}, the network has {net.n_params} parameters"
+            f"result does not belong to this network: it has {theta.size} parameters and a Jacobian "
+            f"(or normal matrices) of shape {shapes[1]}, the network has {net.n_params} parameters"
         )
     if not np.array_equal(net.get_vector(), theta.astype(net.dtype)):
         raise ValueError(
@@ -469,8 +446,13 @@ def uncertainty_report(
     level: float = 0.95,
     input_names: Sequence[str] | None = None,
     output_names: Sequence[str] | None = None,
+    result: SolveResult | None = None,
 ) -> dict[str, Any]:
     """Everything above for a fitted network, as a JSON-able dict (for reports and the command line).
+
+    ``X``, ``y``: the fitted data. ``result``: the fit's
+    :class:`~tinyprop.solve.SolveResult`, needed for a regularised fit (its
+    posterior is reported, per target) and optional otherwise.
 
     Keys: ``"parameters"`` (:meth:`ParameterUncertainty.to_dict`, or
     :meth:`RankDeficientError.to_dict` when the Jacobian is rank-deficient,
@@ -482,7 +464,8 @@ def uncertainty_report(
     """
     table = input_sensitivity(net, X, input_names=input_names, output_names=output_names)
     try:
-        uncertainty = parameter_uncertainty(net, X, y)
+        regularised = result is not None and result.regularization is not None
+        uncertainty = parameter_uncertainty(net, result=result) if regularised else parameter_uncertainty(net, X, y)
     except RankDeficientError as exc:
         return {"parameters": exc.to_dict(), "prediction_interval": None, "input_sensitivity": table.to_dict()}
     intervals = uncertainty.prediction_intervals(X, level=level)

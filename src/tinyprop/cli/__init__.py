@@ -1,7 +1,7 @@
 """The ``tinyprop`` command (also ``python -m tinyprop``).
 
 Subcommands, one module each: ``demo``, ``train``, ``check``, ``inspect``,
-``export``, ``bench``. Every module has ``add_arguments(parser)`` and
+``export``, ``bench``, ``certify``. Every module has ``add_arguments(parser)`` and
 ``run(args) -> int``; :func:`main` parses, dispatches and turns user mistakes
 and failures into one line on stderr:
 
@@ -29,7 +29,7 @@ import warnings
 from typing import NoReturn, Sequence
 
 from .._version import __version__
-from . import bench_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
+from . import bench_cmd, certify_cmd, check_cmd, demo_cmd, export_cmd, inspect_cmd, train_cmd
 from ._common import USAGE, CommandError, describe_os_error
 
 __all__ = ["main"]
@@ -41,6 +41,7 @@ COMMANDS = {
     "inspect": inspect_cmd,
     "export": export_cmd,
     "bench": bench_cmd,
+    "certify": certify_cmd,
 }
 
 SHORT_HELP = f"""tinyprop {__version__}: verified multilayer perceptrons for controllers, instruments and test rigs

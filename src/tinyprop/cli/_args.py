@@ -55,6 +55,11 @@ def names(text: str) -> list[str]:
     return parts
 
 
+def number(text: str) -> float:
+    """A finite number."""
+    return _float(text)
+
+
 def _float(text: str) -> float:
     try:
         value = float(text)

@@ -41,13 +41,21 @@ def architecture(net: Network) -> str:
     return " -> ".join(parts)
 
 
-def model_metadata(data: Dataset, settings: FitSettings, description: str) -> dict[str, Any]:
-    """What the model file keeps: names of inputs and outputs (used by ``export``), a description, the recipe."""
+def model_metadata(
+    data: Dataset, settings: FitSettings, description: str, outcome: FitOutcome | None = None
+) -> dict[str, Any]:
+    """What the model file keeps: names of inputs and outputs (used by ``export``), a description, the recipe.
+
+    For the default recipe's methods also the branch it chose and why (``training.fit``).
+    """
+    training: dict[str, Any] = {"settings": settings.to_dict(), "data": data.source}
+    if outcome is not None and outcome.recipe is not None:
+        training["fit"] = {"recipe_method": outcome.recipe.method, "reason": outcome.recipe.reason}
     return {
         "description": description,
         "inputs": [{"name": name} for name in data.input_names],
         "outputs": [{"name": name} for name in data.target_names],
-        "training": {"settings": settings.to_dict(), "data": data.source},
+        "training": training,
     }
 
 

@@ -18,6 +18,7 @@ from ..recipes import (
     ACTIVATIONS,
     METHODS,
     OPTIMIZERS,
+    RECIPE_METHODS,
     SCHEDULES,
     Dataset,
     FitSettings,
@@ -47,7 +48,8 @@ HELP = "fit a network to columns of a CSV file; write the model file and a JSON 
 _APPLIES_ONLY_TO = (
     *((option, "method", ("mini-batch",))
       for option in ("optimizer", "lr", "schedule", "momentum", "epochs", "batch_size", "patience")),
-    ("max_evaluations", "method", tuple(method for method in METHODS if method != "mini-batch")),
+    ("max_evaluations", "method", ("levenberg-marquardt", "lbfgs")),
+    ("restarts", "method", ("auto", "evidence-lm")),
     ("momentum", "optimizer", ("sgd",)),
 )
 
@@ -72,15 +74,20 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                       metavar="F", help=f"share of rows held out for the final test (default {defaults.test_fraction})")
     network = parser.add_argument_group("network")
     network.add_argument("--hidden", type=_args.widths, default=defaults.hidden, metavar="WIDTHS",
-                         help="hidden-layer widths, comma-separated (default 16,16)")
+                         help="hidden-layer widths, comma-separated (default: the recipe's, 20 for evidence-lm and "
+                              "50 for adam-early-stopping; 16,16 for the other methods)")
     network.add_argument("--activation", choices=sorted(ACTIVATIONS), default=defaults.activation,
                          help=f"hidden-layer activation (default {defaults.activation})")
     network.add_argument("--dtype", choices=("float64", "float32"), default=defaults.dtype,
                          help=f"number type of the network (default {defaults.dtype})")
     fitting = parser.add_argument_group("fitting", _applicability())
     fitting.add_argument("--method", choices=METHODS, default=defaults.method,
-                         help="mini-batch gradient descent (default), or full-batch least squares by "
-                              "Levenberg-Marquardt or L-BFGS (small networks)")
+                         help="auto (default): the default recipe, evidence-regularised Levenberg-Marquardt "
+                              "(evidence-lm) while affordable, else Adam with early stopping (adam-early-stopping); "
+                              "or one of these two forced; or mini-batch gradient descent with the options below, "
+                              "or plain least squares by Levenberg-Marquardt or L-BFGS (small networks)")
+    fitting.add_argument("--restarts", type=_args.positive_int, metavar="N",
+                         help="evidence-lm: initialisations tried, the largest log evidence kept (default 1)")
     fitting.add_argument("--optimizer", choices=sorted(OPTIMIZERS),
                          help=f"mini-batch optimizer (default {defaults.optimizer})")
     fitting.add_argument(
@@ -124,25 +131,34 @@ def run(args: argparse.Namespace) -> int:
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
     _refuse_a_network_too_large(data.X.shape[1], settings.hidden, data.y.shape[1], settings.dtype)
-    net = build_network(data, split, settings)
+    recipe = settings.method in RECIPE_METHODS
+    net = None if recipe else build_network(data, split, settings)
     print(f"data: {args.data}: {data.X.shape[0]} rows; inputs {', '.join(data.input_names)}; "
           f"targets {', '.join(data.target_names)}")
     sizes = split.sizes()
     print(f"split (seed {settings.seed}): {sizes['training']} training, {sizes['validation']} validation, "
           f"{sizes['test']} test rows")
-    print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
+    if net is not None:
+        print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fitting: {settings.describe_method()}", flush=True)
     try:
         outcome = fit(net, data, split, settings, progress=not args.quiet)
     except (ValueError, ArithmeticError) as exc:  # divergence, too few rows for Levenberg-Marquardt, ...
         raise CommandError(f"fitting failed: {exc}") from None
+    net = outcome.network
+    assert net is not None
+    if outcome.recipe is not None:
+        print(f"method chosen: {outcome.recipe.method} ({outcome.recipe.reason})")
+        print(f"network: {architecture(net)}; {net.n_params} parameters, {net.dtype.name}")
     print(f"fit: {outcome.summary['message']} ({outcome.seconds:.1f} s)")
-    if outcome.summary.get("success") is False:
+    if outcome.summary.get("success") is False and outcome.recipe is None:
         print("     the solver did not report convergence: raise --max-evaluations, or check the data and network size")
     started = time.perf_counter()
     metrics = evaluate_all(net, data, split)
     extra: dict[str, Any] = {}
-    if settings.method != "mini-batch":
+    if outcome.recipe is not None and outcome.recipe.solved is not None:
+        extra["uncertainty"] = least_squares_uncertainty(net, data, split, outcome.recipe.solved)
+    elif settings.method in ("levenberg-marquardt", "lbfgs"):
         extra["uncertainty"] = least_squares_uncertainty(net, data, split)
     evaluate_seconds = time.perf_counter() - started
     _print_metrics(metrics)
@@ -151,7 +167,7 @@ def run(args: argparse.Namespace) -> int:
         print(_uncertainty_line(extra["uncertainty"]))
 
     started = time.perf_counter()
-    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}")
+    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome)
     extra["model_file"] = os.fspath(model_path)
     with files_together(model_path.parent):  # the report on disk always describes the model on disk
         try:
@@ -195,6 +211,9 @@ def _settings(args: argparse.Namespace) -> FitSettings:
         if getattr(args, option) is not None and value(depends_on) not in values:
             raise CommandError(f"{_flag(option)} applies to {_flag(depends_on)} {' or '.join(values)}, "
                                f"not {value(depends_on)}", USAGE)
+    if args.method in RECIPE_METHODS and args.activation != "tanh":
+        raise CommandError(f"--method {args.method} (the default recipe) uses tanh hidden units; --activation "
+                           f"{args.activation} needs --method mini-batch, levenberg-marquardt or lbfgs", USAGE)
     if args.patience is not None and args.validation_fraction == 0:
         raise CommandError("--patience needs validation rows; set --validation-fraction above 0", USAGE)
     return FitSettings(
@@ -257,6 +276,14 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
     if "unavailable" in uncertainty:
         return f"parameter uncertainty: not available ({uncertainty['unavailable']})"
     parameters = uncertainty["parameters"]
+    if parameters.get("posterior"):
+        interval = uncertainty["prediction_interval"]
+        widths = ", ".join(f"{name} +-{w['mean']:.4g}" for name, w in interval["half_width_on_data"].items())
+        noise = ", ".join(f"{sd:.4g}" for sd in parameters["noise_sd"])
+        return (f"regularised fit: noise sd per target {noise}; {parameters['effective_parameters']:.1f} effective "
+                f"of {parameters['n_params']} parameters, penalty {parameters['penalty']:.3g}; "
+                f"{100 * interval['level']:g}% prediction interval on the training rows {widths} "
+                "(posterior standard deviations and input sensitivities in the report)")
     if parameters["rank_deficient"]:
         return (f"parameter uncertainty: not available, the Jacobian is rank-deficient (rank {parameters['rank']} of "
                 f"{parameters['n_params']}); see 'uncertainty' in the report")
@@ -268,7 +295,12 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
 
 
 def _refuse_a_network_too_large(n_in: int, hidden: Any, n_out: int, dtype: str) -> None:
-    """Refuse ``--hidden`` widths whose weights alone would not fit in this machine's memory."""
+    """Refuse ``--hidden`` widths whose weights alone would not fit in this machine's memory.
+
+    ``hidden`` is ``None`` when the recipe chooses the widths itself.
+    """
+    if hidden is None:
+        return
     widths = [n_in, *hidden, n_out]
     n_params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
     needed = n_params * np.dtype(dtype).itemsize
