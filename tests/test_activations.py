@@ -99,16 +99,40 @@ def test_leaky_relu_rejects_bad_slope():
         tp.LeakyReLU(-1.0)
 
 
-# ----------------------------------------------------------------------------- one list, every table
-def test_every_table_covers_every_built_in_activation():
-    """Adding a class to BUILT_IN_ACTIVATIONS without its entry in a table fails here."""
+# ----------------------------------------------------------------------------- one list, every declaration
+_EXPORT_DECLARATIONS = ("_c_statements", "_python_statements", "_rounding")
+
+
+def _missing_declarations(activation: tp.Activation) -> list[str]:
+    """What a built-in must declare on its class (DEVELOPERS.md, "Adding an activation") and does not."""
+    from tinyprop.activations import declaration
+    from tinyprop.init import SCHEMES
+
+    missing = [] if activation.declared_shape() is not None else ["declared_shape"]
+    arguments = {"_c_statements": [("float", repr), ("double", repr)], "_python_statements": [()],
+                 "_rounding": [(4.0,)]}
+    for method in _EXPORT_DECLARATIONS:
+        declared = declaration(activation, method)
+        if declared is None or any(declared(*args) is None for args in arguments[method]):
+            missing.append(method)
+    if declaration(activation, "_fixed_point_form") is None:  # a decision by the class, even "not supported"
+        missing.append("_fixed_point_form")
+    if activation.suggested_init not in SCHEMES:  # build_mlp(init="auto")
+        missing.append("suggested_init")
+    z = np.linspace(-3.0, 3.0, 13)  # the uncertainty hint lists the positively homogeneous ones
+    if activation.positively_homogeneous != np.allclose(activation.value(2.5 * z), 2.5 * activation.value(z)):
+        missing.append("positively_homogeneous")
+    return missing
+
+
+def test_every_built_in_activation_declares_every_fact():
+    """Adding a class to BUILT_IN_ACTIVATIONS without one of its declarations fails here."""
     from tinyprop.activations import BUILT_IN_ACTIVATIONS as CLASSES
     from tinyprop.export import _activations, bound
     from tinyprop.export._fixed_program import _check_activations
     from tinyprop.export._plan import ActivationStep
     from tinyprop.recipes import ACTIVATIONS
     from tinyprop.registry import activation_name
-    from tinyprop.uncertainty import _HOMOGENEOUS
 
     assert set(CLASSES) == {type(a) for a in BUILT_IN_ACTIVATIONS}
     assert set(tp.__all__) >= {cls.__name__ for cls in CLASSES}
@@ -116,6 +140,7 @@ def test_every_table_covers_every_built_in_activation():
     fixed_point_unsupported = {tp.Softplus}  # no integer form yet (DEVELOPERS.md, "Adding an activation")
     for activation in BUILT_IN_ACTIVATIONS:
         cls = type(activation)
+        assert _missing_declarations(activation) == [], cls.__name__
         assert activation_name(activation) == cls.__name__  # model files
         if cls is tp.Identity:  # generated code: no code at all for Identity,
             assert _activations.activation_kind(activation) is None
@@ -132,5 +157,56 @@ def test_every_table_covers_every_built_in_activation():
                 _check_activations(plan)
         else:
             _check_activations(plan)
-        z = np.linspace(-3.0, 3.0, 13)  # the uncertainty hint lists the positively homogeneous ones
-        assert (cls in _HOMOGENEOUS) == np.allclose(activation.value(2.5 * z), 2.5 * activation.value(z))
+
+
+class _Softsign(tp.Activation):
+    """``z / (1 + |z|)``, declaring nothing but its value and derivative (synthetic, for the checks below)."""
+
+    def value(self, z):
+        return z / (1.0 + np.abs(z))
+
+    def derivative(self, z, a):
+        return 1.0 / (1.0 + np.abs(z)) ** 2
+
+
+class _ScaledTanh(tp.Tanh):
+    """``tanh(2 z)``: a subclass, which must not inherit Tanh's forms (synthetic)."""
+
+    def value(self, z):
+        return np.tanh(2.0 * z)
+
+    def derivative(self, z, a):
+        return 2.0 * (1.0 - a * a)
+
+
+def test_declaration_check_names_what_a_class_lacks():
+    """The check above can fail: a class with value and derivative alone lacks every declaration."""
+    assert _missing_declarations(_Softsign()) == ["declared_shape", *_EXPORT_DECLARATIONS, "_fixed_point_form"]
+    assert "_c_statements" in _missing_declarations(_ScaledTanh())
+
+
+@pytest.mark.parametrize(
+    ("activation", "scheme"),
+    [(tp.ReLU(), "he"), (tp.LeakyReLU(0.1), "he"), (tp.Tanh(), "glorot"), (tp.Softplus(), "glorot"),
+     (_Softsign(), "glorot")],
+)
+def test_build_mlp_auto_init_is_the_one_the_activation_suggests(activation, scheme):
+    auto = tp.build_mlp([3, 5, 1], activation=activation, seed=0)
+    named = tp.build_mlp([3, 5, 1], activation=activation, init=scheme, seed=0)
+    np.testing.assert_array_equal(auto.get_vector(), named.get_vector())
+
+
+@pytest.mark.parametrize("activation", [_Softsign(), _ScaledTanh()], ids=["undeclared", "subclass"])
+def test_undeclared_activation_is_refused_by_every_exporter(activation, tmp_path):
+    """Without its own declarations an activation keeps the custom behaviour: clear refusals."""
+    net = tp.Network([tp.Affine(2, 2), activation, tp.Affine(2, 1)], seed=0)
+    X = np.zeros((3, 2))
+    name = type(activation).__name__
+    with pytest.raises(TypeError, match=f"cannot write the activation {name} in C"):
+        tp.export_c(net, tmp_path)
+    with pytest.raises(TypeError, match=f"cannot write the activation {name} in Python"):
+        tp.export_python(net, tmp_path)
+    with pytest.raises(TypeError, match=f"{name}, whose Lipschitz constant and rounding are unknown"):
+        tp.agreement_bound(net, X)
+    with pytest.raises(TypeError, match=f"{name}, which the fixed-point export does not support"):
+        tp.export_c_fixed_point(net, tmp_path, X)

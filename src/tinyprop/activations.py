@@ -24,8 +24,10 @@ Custom activations keep ``z`` and ``a`` in separate arrays and need neither.
 
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass
+from typing import Any, Callable
 
 import numpy as np
 
@@ -42,6 +44,9 @@ __all__ = [
     "Identity",
     "BUILT_IN_ACTIVATIONS",
     "built_in_name",
+    "IntegerTable",
+    "declaration",
+    "declared",
 ]
 
 
@@ -96,6 +101,20 @@ class ActivationShape:
         object.__setattr__(self, "curvature", tuple(int(c) for c in self.curvature))
 
 
+@dataclass(frozen=True)
+class IntegerTable:
+    """How the fixed-point export tabulates ``f`` (``export/_fixed_tables.py``): ``kind`` names the C
+    function and the symmetry (``"tanh"``: odd; ``"sigmoid"``: ``f(-u) = 1 - f(u)``), the knots are
+    ``0, h, ..., intervals h`` with ``h = 2**-step_bits``, ``function`` is ``f`` on Python floats and
+    ``max_second_derivative`` bounds ``|f''|`` (the interpolation error ``h**2/8 max|f''|``)."""
+
+    kind: str
+    step_bits: int
+    intervals: int
+    function: Callable[[float], float]
+    max_second_derivative: float
+
+
 class Activation(Configured):
     """Base class of elementwise activations ``a = f(z)``.
 
@@ -113,8 +132,42 @@ class Activation(Configured):
 
     kinks: tuple[float, ...] = ()
 
+    positively_homogeneous: bool = False
+    """True when ``f(c z) = c f(z)`` for every ``c > 0`` (read by the uncertainty report's hint)."""
+
+    suggested_init: str = "glorot"
+    """The weight initialisation ``build_mlp(init="auto")`` picks for hidden layers of this activation."""
+
     def declared_shape(self) -> ActivationShape | None:
         """Pieces, curvature and rounding of ``f`` for :func:`tinyprop.output_bounds`; ``None`` if undeclared."""
+        return None
+
+    # What the exporters need, declared by each built-in (see DEVELOPERS.md, "Adding an activation").
+    # ``None`` means undeclared: export then asks for the custom-activation protocol or refuses.
+    # They are read through :func:`declaration`, so a subclass does not inherit them.
+
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str | None:
+        """The statements of ``static ctype f(ctype z)``, the stable form operation for operation;
+        ``literal`` writes a number as a C constant of ``ctype``."""
+        return None
+
+    def _c_input_limit(self, ctype: str) -> float | None:
+        """The bound the generated C clamps ``z`` to (``|z| <= limit``) before calling the C function."""
+        return None
+
+    def _python_statements(self) -> str | None:
+        """The statements of ``def f(z)`` on Python floats (``math`` imported)."""
+        return None
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float] | None:
+        """``(L, c)`` for ``agreement_bound``: the Lipschitz constant of ``f`` and the relative error
+        of one evaluation in units of the unit roundoff, with ``function_ulps`` ulps per call of
+        ``exp``, ``tanh`` or ``log1p`` (``export/bound.py``)."""
+        return None
+
+    def _fixed_point_form(self) -> IntegerTable | str | None:
+        """The fixed-point export's form of ``f``: an :class:`IntegerTable`, or ``"identity"``,
+        ``"relu"``, ``"leaky_relu"`` (computed in the input's format); ``None``: not supported."""
         return None
 
     def value(self, z: np.ndarray) -> np.ndarray:
@@ -141,6 +194,25 @@ class Sigmoid(Activation):
     def declared_shape(self) -> ActivationShape:
         """Convex below 0, concave above; ``exp``, one addition, one division; ``a (1 - a)``."""
         return ActivationShape((0.0,), (1, -1), 3 * _FUNCTION_ULPS + 2, 3 * _FUNCTION_ULPS + 4)
+
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        f = "f" if ctype == "float" else ""
+        zero, one = literal(0.0), literal(1.0)
+        return (
+            f"const {ctype} e = exp{f}(-fabs{f}(z));\n"
+            f"return (z >= {zero} ? {one} : e) / ({one} + e);"
+        )
+
+    def _python_statements(self) -> str:
+        return "e = math.exp(-abs(z))\nreturn (1.0 if z >= 0.0 else e) / (1.0 + e)"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = 1/4``; ``e = exp(-|z|)``, then ``1 + e`` and one division: ``3k + 2``."""
+        return 0.25, 3 * function_ulps + 2
+
+    def _fixed_point_form(self) -> IntegerTable:
+        """Knots 1/32 apart on ``[0, 16]``; ``max|f''| = 0.0963`` (``_fixed_tables.py``)."""
+        return IntegerTable("sigmoid", 5, 512, _logistic, 0.0963)
 
     def value(self, z: np.ndarray) -> np.ndarray:
         e = np.exp(-np.abs(z))
@@ -170,6 +242,25 @@ class Tanh(Activation):
         """Convex below 0, concave above; ``1 - a**2`` with ``a`` off by ``2k`` ulps."""
         return ActivationShape((0.0,), (1, -1), 2 * _FUNCTION_ULPS, 4 * _FUNCTION_ULPS + 2)
 
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        """``tanh(z)`` in ``double``; in ``float`` the rational form of ``export/_activations.py``."""
+        return _float_tanh_statements(literal) if ctype == "float" else "return tanh(z);"
+
+    def _c_input_limit(self, ctype: str) -> float | None:
+        """The float form holds for ``|z| <= 9.5`` only; the clamp is a loop of its own (``docs/export.md``)."""
+        return _TANH_FLOAT_LIMIT if ctype == "float" else None
+
+    def _python_statements(self) -> str:
+        return "return math.tanh(z)"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = 1``; one call of ``tanh``: ``2k``."""
+        return 1.0, 2 * function_ulps
+
+    def _fixed_point_form(self) -> IntegerTable:
+        """Knots 1/64 apart on ``[0, 8]``; ``max|f''| = 0.7699`` (``_fixed_tables.py``)."""
+        return IntegerTable("tanh", 6, 512, math.tanh, 0.7699)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.tanh(z)
 
@@ -197,10 +288,26 @@ class ReLU(Activation):
     """
 
     kinks = (0.0,)
+    positively_homogeneous = True
+    suggested_init = "he"  # He et al. 2015, derived for rectifiers
 
     def declared_shape(self) -> ActivationShape:
         """Linear on each side of the kink; exact."""
         return ActivationShape((0.0,), (0, 0), 0.0, 0.0)
+
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        """``z < 0 ? 0 : z``: a NaN input stays NaN."""
+        return f"return z < {literal(0.0)} ? {literal(0.0)} : z;"
+
+    def _python_statements(self) -> str:
+        return "return 0.0 if z < 0.0 else z"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = 1``; exact."""
+        return 1.0, 0.0
+
+    def _fixed_point_form(self) -> str:
+        return "relu"
 
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.maximum(z, 0.0, dtype=z.dtype)
@@ -228,10 +335,27 @@ class LeakyReLU(Activation):
     """
 
     kinks = (0.0,)
+    positively_homogeneous = True
+    suggested_init = "he"  # He et al. 2015, derived for rectifiers
 
     def declared_shape(self) -> ActivationShape:
         """Linear on each side of the kink; ``slope`` rounded to the dtype, one multiplication."""
         return ActivationShape((0.0,), (0, 0), 2.0, 1.0)
+
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        """``z > 0 ? z : z * slope`` (slope rounded to the export dtype)."""
+        return f"return z > {literal(0.0)} ? z : z * {literal(self.slope)};"
+
+    def _python_statements(self) -> str:
+        return f"return z if z > 0.0 else z * {float(self.slope)!r}"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = max(1, slope)``; one multiplication."""
+        return max(1.0, self.slope), 1.0
+
+    def _fixed_point_form(self) -> str:
+        """``z > 0 ? z : z * slope_q`` with the slope in Q15 (slope < 1)."""
+        return "leaky_relu"
 
     def __init__(self, slope: float = 0.01) -> None:
         slope = float(slope)
@@ -274,6 +398,22 @@ class Softplus(Activation):
         """Convex; ``log1p`` of ``exp`` plus one addition; ``-expm1(-a)``."""
         return ActivationShape((), (1,), 4 * _FUNCTION_ULPS + 1, 3 * _FUNCTION_ULPS + 2)
 
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        f = "f" if ctype == "float" else ""
+        zero = literal(0.0)
+        return f"return (z < {zero} ? {zero} : z) + log1p{f}(exp{f}(-fabs{f}(z)));"
+
+    def _python_statements(self) -> str:
+        return "return (0.0 if z < 0.0 else z) + math.log1p(math.exp(-abs(z)))"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = 1``; ``log1p`` of ``exp`` (condition <= 1), plus one addition: ``4k + 1``."""
+        return 1.0, 4 * function_ulps + 1
+
+    def _fixed_point_form(self) -> None:
+        """Not supported: no integer form yet (``DEVELOPERS.md``, "Adding an activation")."""
+        return None
+
     def value(self, z: np.ndarray) -> np.ndarray:
         return np.maximum(z, 0.0, dtype=z.dtype) + np.log1p(np.exp(-np.abs(z)))
 
@@ -298,9 +438,26 @@ class Identity(Activation):
     ``f(z) = z``, ``f'(z) = 1``.
     """
 
+    positively_homogeneous = True
+
     def declared_shape(self) -> ActivationShape:
         """Linear; exact."""
         return ActivationShape((), (0,), 0.0, 0.0)
+
+    def _c_statements(self, ctype: str, literal: Callable[[float], str]) -> str:
+        """``return z;`` (the exporters skip Identity steps altogether)."""
+        return "return z;"
+
+    def _python_statements(self) -> str:
+        """``return z`` (the exporters skip Identity steps altogether)."""
+        return "return z"
+
+    def _rounding(self, function_ulps: float) -> tuple[float, float]:
+        """``L = 1``; exact."""
+        return 1.0, 0.0
+
+    def _fixed_point_form(self) -> str:
+        return "identity"
 
     def value(self, z: np.ndarray) -> np.ndarray:
         return z.copy()
@@ -318,9 +475,10 @@ class Identity(Activation):
 
 BUILT_IN_ACTIVATIONS: tuple[type[Activation], ...] = (Sigmoid, Tanh, ReLU, LeakyReLU, Softplus, Identity)
 """The built-in activations, listed once. The model-file registry, the command line's
-choices and the names in generated code are derived from it; ``tests/test_activations.py``
-checks that every other table (generated code, the agreement bound, the fixed-point
-export, the uncertainty hint) covers every entry. Every built-in evaluates in place."""
+choices and the names in generated code are derived from it; everything else the library
+knows about one is declared on its class (shape for bounds, C and Python forms, rounding for
+the agreement bound, fixed-point form, positive homogeneity), and ``tests/test_activations.py``
+checks that every entry declares all of it. Every built-in evaluates in place."""
 
 
 def built_in_name(cls: type[Activation]) -> str:
@@ -337,3 +495,54 @@ def built_in_name(cls: type[Activation]) -> str:
 def works_in_place(activation: Activation) -> bool:
     """True for the built-in classes themselves (not subclasses, which may redefine ``value``)."""
     return type(activation) in BUILT_IN_ACTIVATIONS
+
+
+def declaration(activation: Activation, method: str) -> Callable[..., Any] | None:
+    """``activation``'s bound method ``method`` (an export declaration such as ``_c_statements``), or ``None``.
+
+    Only the activation's own class counts: a subclass inherits no declaration, since it may
+    change ``f`` (a subclass of Tanh is not exported as tanh). The method itself may still
+    return ``None``: undeclared.
+    """
+    return getattr(activation, method) if method in type(activation).__dict__ else None
+
+
+def declared(activation: Activation, method: str, *args: Any) -> Any:
+    """What ``activation`` declares through ``method`` called with ``args``; ``None`` when undeclared
+    (see :func:`declaration`)."""
+    found = declaration(activation, method)
+    return None if found is None else found(*args)
+
+
+def _logistic(u: float) -> float:
+    return 1.0 / (1.0 + math.exp(-u))
+
+
+# Tanh in float C (see export/_activations.py): the clamp and the coefficients of
+# D(w) = D0 + D1 w + D2 w^2 and Q(w) = 1 + Q1 w + Q2 w^2 + Q3 w^3; each is a float32 value.
+_TANH_FLOAT_LIMIT = 9.5
+_TANH_FLOAT_D = (0.0833332762, 0.0012311805, 2.61138166e-06)
+_TANH_FLOAT_Q = (1.0, 0.114773773, 0.00138974877, 2.6951293e-06)
+
+
+def _horner(coefficients: tuple[float, ...], variable: str, literal: Callable[[float], str]) -> str:
+    """``c0 + v * (c1 + v * (c2 + ...))`` (at least two coefficients), each written by ``literal``."""
+    text = f"{literal(coefficients[-2])} + {variable} * {literal(coefficients[-1])}"
+    for c in reversed(coefficients[:-2]):
+        text = f"{literal(c)} + {variable} * ({text})"
+    return text
+
+
+def _float_tanh_statements(literal: Callable[[float], str]) -> str:
+    return "\n".join([
+        f"/* tanh(z) for |z| <= {_TANH_FLOAT_LIMIT:g}: the caller clamps z to that range first (beyond 9.02",
+        " * the float nearest to tanh(z) is +-1). h = 2 tanh(z/2) from a rational fit, then the",
+        " * double-angle formula tanh(z) = 2 tanh(z/2) / (1 + tanh(z/2)^2) = h - h h^2 / (4 + h^2).",
+        " * Error at most 2.06 ulp, tested at every float input against the C library's double",
+        " * tanh (see tinyprop.export._activations). */",
+        "const float w = z * z;",
+        f"const float h = z - z * w * ({_horner(_TANH_FLOAT_D, 'w', literal)})",
+        f"    / ({_horner(_TANH_FLOAT_Q, 'w', literal)});",
+        "const float hh = h * h;",
+        f"return h - h * (hh / ({literal(4.0)} + hh));",
+    ])

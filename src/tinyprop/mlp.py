@@ -7,7 +7,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ._validate import kind_of, positive_int
-from .activations import Activation, LeakyReLU, ReLU, Tanh
+from .activations import Activation, Tanh
 from .layers import Affine
 from .network import Layer, Network
 
@@ -29,8 +29,8 @@ def build_mlp(
     ``sizes = [n_in, h_1, ..., n_out]``. ``activation``, the hidden layers'
     activation, defaults to :class:`Tanh` (one instance is shared by all hidden
     layers; activations hold no state). ``output_activation`` defaults to none
-    (a linear output). ``init="auto"`` chooses ``"he"`` when ``activation`` is a
-    ReLU or LeakyReLU and ``"glorot"`` otherwise; any scheme of
+    (a linear output). ``init="auto"`` chooses the scheme ``activation`` suggests
+    (``suggested_init``: ``"he"`` for ReLU and LeakyReLU, ``"glorot"`` otherwise); any scheme of
     :class:`~tinyprop.network.Network` may be named instead.
 
     >>> import tinyprop as tp
@@ -46,7 +46,7 @@ def build_mlp(
         if act is not None and not isinstance(act, Activation):
             raise TypeError(f"{name} must be a tp.Activation instance, got {kind_of(act)}")
     if init == "auto":
-        init = "he" if isinstance(hidden, (ReLU, LeakyReLU)) else "glorot"
+        init = hidden.suggested_init
     layers: list[Layer] = []
     for i, (n_in, n_out) in enumerate(zip(sizes[:-1], sizes[1:])):
         layers.append(Affine(n_in, n_out, bias=bias))

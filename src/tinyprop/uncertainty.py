@@ -78,7 +78,7 @@ import numpy as np
 
 from ._json import finite_or_none
 from ._validate import as_samples, as_targets, real_in_range, require_finite
-from .activations import Identity, LeakyReLU, ReLU
+from .activations import Activation
 from .intervals import PredictionIntervals
 from .layers import Affine
 from .network import Network
@@ -100,7 +100,6 @@ __all__ = [
 _EPS = float(np.finfo(np.float64).eps)
 _MAX_NAMED = 6  # parameters named per unidentifiable direction in the error message
 _MAX_GROUPS = 3  # unidentifiable directions listed in the error message
-_HOMOGENEOUS = (ReLU, LeakyReLU, Identity)  # f(c z) = c f(z) for c > 0
 
 
 class RankDeficientError(ValueError):
@@ -404,14 +403,16 @@ def _require_full_rank(
 def _rescaling_hint(work: Network) -> str:
     """A note when hidden units are (piecewise) linear, which makes J rank-deficient by construction.
 
-    For ``a = f(z)`` with ``f(c z) = c f(z)`` for ``c > 0`` (ReLU, LeakyReLU,
-    Identity), multiplying a hidden unit's incoming weights and bias by ``c``
+    For ``a = f(z)`` with ``f(c z) = c f(z)`` for ``c > 0`` (the activations that
+    declare ``positively_homogeneous``: ReLU, LeakyReLU, Identity), multiplying
+    a hidden unit's incoming weights and bias by ``c``
     and its outgoing weights by ``1/c`` leaves the network unchanged, so every
     such unit adds a null direction to ``J`` (Euler's theorem on homogeneous
     functions; Identity units, being linear, add more).
     """
     last_affine = max(i for i, layer in enumerate(work.layers) if isinstance(layer, Affine))
-    hidden = {type(layer).__name__ for layer in work.layers[:last_affine] if isinstance(layer, _HOMOGENEOUS)}
+    hidden = {type(layer).__name__ for layer in work.layers[:last_affine]
+              if isinstance(layer, Activation) and layer.positively_homogeneous}
     if not hidden:
         return ""
     return (

@@ -1,7 +1,8 @@
 """Activations as code: the built-in forms in C and Python, and the custom-activation protocol.
 
-Built-in forms repeat the numerically stable evaluation of
-:mod:`tinyprop.activations` operation for operation, so the generated code
+Each built-in class declares its forms in :mod:`tinyprop.activations`
+(``_c_statements``, ``_c_input_limit``, ``_python_statements``); they repeat
+its numerically stable evaluation operation for operation, so the generated code
 rounds the way ``Network.predict`` does (apart from the accuracy of the
 platform's ``exp``/``tanh``/``log1p``):
 
@@ -14,8 +15,9 @@ Softplus    ``(z < 0 ? 0 : z) + log1p(exp(-|z|))`` (never overflows)
 Identity    no code at all
 ==========  ============================================================
 
-Only the exact built-in classes are recognised: a subclass may change
-``value`` and must describe itself through the protocol below.
+A subclass does not inherit its parent's forms
+(:func:`tinyprop.activations.declaration`): it declares its own or describes
+itself through the protocol below.
 
 **Tanh in float C.** The float export evaluates tanh with arithmetic alone
 instead of calling ``tanhf`` (why: ``docs/export.md``, "How the layout was
@@ -30,7 +32,7 @@ found"), in two passes over the layer (see :func:`c_input_limit`):
    ``h`` where ``tanh`` is close to 1.
 
 ``D`` (degree 2) and ``Q`` (degree 3, ``Q(0) = 1``) are the float coefficients
-below (how they were found: ``docs/export.md``). The accuracy claim does not
+beside ``Tanh`` in :mod:`tinyprop.activations` (how they were found: ``docs/export.md``). The accuracy claim does not
 rest on how they were found:
 the tests evaluate the generated function at every float input and compare with
 the C library's double ``tanh``. Largest error: 2.06 ulp (two inputs above
@@ -60,17 +62,7 @@ import math
 import re
 from typing import Callable
 
-from ..activations import (
-    BUILT_IN_ACTIVATIONS,
-    Activation,
-    Identity,
-    LeakyReLU,
-    ReLU,
-    Sigmoid,
-    Softplus,
-    Tanh,
-    built_in_name,
-)
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, Identity, built_in_name, declared
 
 __all__ = [
     "C_METHOD",
@@ -89,12 +81,6 @@ PYTHON_METHOD = "python_expression"
 
 _KINDS = {cls: built_in_name(cls) for cls in BUILT_IN_ACTIVATIONS}
 
-# Tanh in float C (see the module docstring): the clamp and the coefficients of
-# D(w) = D0 + D1 w + D2 w^2 and Q(w) = 1 + Q1 w + Q2 w^2 + Q3 w^3; each is a float32 value.
-_TANH_FLOAT_LIMIT = 9.5
-_TANH_FLOAT_D = (0.0833332762, 0.0012311805, 2.61138166e-06)
-_TANH_FLOAT_Q = (1.0, 0.114773773, 0.00138974877, 2.6951293e-06)
-
 
 def activation_kind(act: Activation) -> str | None:
     """A short snake-case name for generated function names; ``None`` for Identity."""
@@ -109,22 +95,9 @@ def c_body(act: Activation, ctype: str, literal: Callable[[float], str]) -> str:
     ``literal`` formats a number as a C constant of ``ctype``. Where
     :func:`c_input_limit` gives a limit, the function expects ``z`` clamped to it.
     """
-    f = "f" if ctype == "float" else ""
-    zero, one = literal(0.0), literal(1.0)
-    kind = type(act)
-    if kind is Sigmoid:
-        return (
-            f"const {ctype} e = exp{f}(-fabs{f}(z));\n"
-            f"return (z >= {zero} ? {one} : e) / ({one} + e);"
-        )
-    if kind is Tanh:
-        return _float_tanh_body(literal) if ctype == "float" else "return tanh(z);"
-    if kind is ReLU:
-        return f"return z < {zero} ? {zero} : z;"
-    if kind is LeakyReLU:
-        return f"return z > {zero} ? z : z * {literal(act.slope)};"
-    if kind is Softplus:
-        return f"return (z < {zero} ? {zero} : z) + log1p{f}(exp{f}(-fabs{f}(z)));"
+    statements = declared(act, "_c_statements", ctype, literal)
+    if statements is not None:
+        return statements
     expression = check_c_expression(_custom_expression(act, C_METHOD, "C", ctype), type(act).__name__)
     return f"(void)z;\nreturn ({expression});"
 
@@ -132,49 +105,19 @@ def c_body(act: Activation, ctype: str, literal: Callable[[float], str]) -> str:
 def c_input_limit(act: Activation, ctype: str) -> float | None:
     """The bound the caller clamps ``z`` to (``|z| <= limit``) before calling the function of :func:`c_body`.
 
-    ``None`` (no clamp) except for Tanh in ``float``, whose rational form holds
-    for ``|z| <= 9.5`` only. The clamp is a loop of its own in the generated
-    code, so that compilers can vectorise both loops (``docs/export.md``).
+    ``None`` (no clamp) unless the activation declares one (Tanh in ``float``,
+    whose rational form holds for ``|z| <= 9.5`` only). The clamp is a loop of
+    its own in the generated code, so that compilers can vectorise both loops
+    (``docs/export.md``).
     """
-    return _TANH_FLOAT_LIMIT if type(act) is Tanh and ctype == "float" else None
-
-
-def _horner(coefficients: tuple[float, ...], variable: str, literal: Callable[[float], str]) -> str:
-    """``c0 + v * (c1 + v * (c2 + ...))`` (at least two coefficients), each written by ``literal``."""
-    text = f"{literal(coefficients[-2])} + {variable} * {literal(coefficients[-1])}"
-    for c in reversed(coefficients[:-2]):
-        text = f"{literal(c)} + {variable} * ({text})"
-    return text
-
-
-def _float_tanh_body(literal: Callable[[float], str]) -> str:
-    return "\n".join([
-        f"/* tanh(z) for |z| <= {_TANH_FLOAT_LIMIT:g}: the caller clamps z to that range first (beyond 9.02",
-        " * the float nearest to tanh(z) is +-1). h = 2 tanh(z/2) from a rational fit, then the",
-        " * double-angle formula tanh(z) = 2 tanh(z/2) / (1 + tanh(z/2)^2) = h - h h^2 / (4 + h^2).",
-        " * Error at most 2.06 ulp, tested at every float input against the C library's double",
-        " * tanh (see tinyprop.export._activations). */",
-        "const float w = z * z;",
-        f"const float h = z - z * w * ({_horner(_TANH_FLOAT_D, 'w', literal)})",
-        f"    / ({_horner(_TANH_FLOAT_Q, 'w', literal)});",
-        "const float hh = h * h;",
-        f"return h - h * (hh / ({literal(4.0)} + hh));",
-    ])
+    return declared(act, "_c_input_limit", ctype)
 
 
 def python_body(act: Activation) -> str:
     """The statements of ``def f(z)`` computing the activation in Python floats."""
-    kind = type(act)
-    if kind is Sigmoid:
-        return "e = math.exp(-abs(z))\nreturn (1.0 if z >= 0.0 else e) / (1.0 + e)"
-    if kind is Tanh:
-        return "return math.tanh(z)"
-    if kind is ReLU:
-        return "return 0.0 if z < 0.0 else z"
-    if kind is LeakyReLU:
-        return f"return z if z > 0.0 else z * {float(act.slope)!r}"
-    if kind is Softplus:
-        return "return (0.0 if z < 0.0 else z) + math.log1p(math.exp(-abs(z)))"
+    statements = declared(act, "_python_statements")
+    if statements is not None:
+        return statements
     expression = check_python_expression(_custom_expression(act, PYTHON_METHOD, "Python"), type(act).__name__)
     return f"return ({expression})"
 

@@ -57,7 +57,7 @@ from typing import Union
 
 import numpy as np
 
-from ..activations import Activation, Identity, LeakyReLU, ReLU
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, declared
 from ._fixed_tables import OUT_BITS, Table, lookup, round_half_away, table_for
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep
 
@@ -243,9 +243,18 @@ def _quantise(values: np.ndarray, bits: int) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------- building
+_ELEMENTWISE = ("identity", "relu", "leaky_relu")
+"""The fixed-point forms computed element by element in the input's format (they never increase a magnitude)."""
+
+
+def _form(activation: Activation) -> object:
+    """The activation's declared fixed-point form (``_fixed_point_form``), ``None`` if it has none."""
+    return declared(activation, "_fixed_point_form")
+
+
 def _preserves_format(step) -> bool:
-    """ReLU, LeakyReLU and Identity: output fits the input's format, computed element by element."""
-    return isinstance(step, ActivationStep) and type(step.activation) in (ReLU, LeakyReLU, Identity)
+    """Identity, ReLU and LeakyReLU forms: output fits the input's format, computed element by element."""
+    return isinstance(step, ActivationStep) and _form(step.activation) in _ELEMENTWISE
 
 
 def calibration_ranges(plan: Plan, X: np.ndarray) -> list[np.ndarray]:
@@ -302,9 +311,9 @@ def build_program(plan: Plan, X: np.ndarray, headroom: float) -> IntegerProgram:
                 out = (OUT_BITS,) * step.width
                 program.append(QTable(step.layer, where, table, bits[0], out))
                 bits = out
-            elif type(activation) is ReLU:
+            elif _form(activation) == "relu":
                 program.append(QRelu(step.layer, where, bits))
-            elif type(activation) is LeakyReLU:
+            elif _form(activation) == "leaky_relu":
                 program.append(QLeaky(step.layer, where, _slope(activation, where), bits))
     return IntegerProgram(tuple(program), in_bits, bits)
 
@@ -369,8 +378,9 @@ def _check_activations(plan: Plan) -> None:
         if not isinstance(step, ActivationStep):
             continue
         act = step.activation
-        if table_for(act) is None and type(act) not in (ReLU, LeakyReLU, Identity):
+        if table_for(act) is None and _form(act) not in _ELEMENTWISE:
+            supported = ", ".join(cls.__name__ for cls in BUILT_IN_ACTIVATIONS if _form(cls()) is not None)
             raise TypeError(
                 f"layer {step.layer} has the activation {type(act).__name__}, which the fixed-point "
-                "export does not support; supported are Identity, ReLU, LeakyReLU (slope < 1), "
-                "Tanh and Sigmoid (exact classes; no custom activations, no Softplus)")
+                f"export does not support; supported are {supported} (LeakyReLU with slope < 1; "
+                "a custom activation or a subclass only with its own fixed-point form)")

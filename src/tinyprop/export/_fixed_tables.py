@@ -41,16 +41,18 @@ grid of inputs and several input formats.
 
 The error is that of the function at the quantised input ``z_q / 2**F``;
 the quantisation of ``z`` itself is accounted for by the layer before.
+
+Each class declares its table (step, entries, ``max |f''|``) as its
+``_fixed_point_form`` in :mod:`tinyprop.activations`.
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from ..activations import Activation, Sigmoid, Tanh
+from ..activations import BUILT_IN_ACTIVATIONS, Activation, IntegerTable, declared
 
 __all__ = ["OUT_BITS", "Table", "TABLES", "table_for", "lookup", "c_function", "round_half_away"]
 
@@ -95,25 +97,28 @@ class Table:
                 f"worst-case error {self.error_bound:.3g}")
 
 
-def _logistic(u: float) -> float:
-    return 1.0 / (1.0 + math.exp(-u))
+def _make(spec: IntegerTable) -> Table:
+    knots = np.arange(spec.intervals + 1, dtype=np.float64) * 2.0 ** -spec.step_bits
+    values = round_half_away(np.array([spec.function(u) for u in knots]) * ONE)
+    return Table(spec.kind, spec.step_bits, spec.intervals, spec.max_second_derivative, tuple(int(v) for v in values))
 
 
-def _make(kind: str, step_bits: int, intervals: int, function, second: float) -> Table:
-    knots = np.arange(intervals + 1, dtype=np.float64) * 2.0 ** -step_bits
-    values = round_half_away(np.array([function(u) for u in knots]) * ONE)
-    return Table(kind, step_bits, intervals, second, tuple(int(v) for v in values))
+def _declared_table(activation: Activation) -> IntegerTable | None:
+    """The table ``activation`` declares as its fixed-point form (``_fixed_point_form``), else ``None``."""
+    spec = declared(activation, "_fixed_point_form")
+    return spec if isinstance(spec, IntegerTable) else None
 
 
-TABLES = {
-    Tanh: _make("tanh", 6, 512, math.tanh, 0.7699),
-    Sigmoid: _make("sigmoid", 5, 512, _logistic, 0.0963),
-}
+TABLES = {cls: _make(spec) for cls in BUILT_IN_ACTIVATIONS if (spec := _declared_table(cls())) is not None}
+"""The tables of the built-in classes, built once at import."""
 
 
 def table_for(activation: Activation) -> Table | None:
-    """The table of a built-in Tanh or Sigmoid (exact class), else ``None``."""
-    return TABLES.get(type(activation))
+    """The table ``activation`` declares (built once for the built-ins), else ``None``."""
+    spec = _declared_table(activation)
+    if spec is None:
+        return None
+    return TABLES[type(activation)] if type(activation) in TABLES else _make(spec)
 
 
 def lookup(table: Table, z_q: np.ndarray, frac_bits: int) -> np.ndarray:

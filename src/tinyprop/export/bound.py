@@ -17,18 +17,10 @@ roundoff ``u = eps / 2`` of the dtype:
 - activation: ``L e + 2 c u |a|`` with ``L`` the Lipschitz constant of ``f``
   and ``c`` the relative error of one evaluation in units of ``u``, from the
   operations of the stable form and ``k = function_ulps`` ulps (one ulp is at
-  most ``2 u |a|``) per call of ``exp``, ``tanh`` or ``log1p``:
-
-  ==========  =====  ==============================================================
-  activation  L      c
-  ==========  =====  ==============================================================
-  Sigmoid     1/4    ``3k + 2``: ``e = exp(-|z|)``, then ``1 + e`` and one division
-  Tanh        1      ``2k``
-  Softplus    1      ``4k + 1``: ``log1p`` of ``exp`` (condition <= 1), plus one addition
-  ReLU        1      0 (exact)
-  LeakyReLU   max(1, slope)  1 (one multiplication)
-  Identity    1      0
-  ==========  =====  ==============================================================
+  most ``2 u |a|``) per call of ``exp``, ``tanh`` or ``log1p``. Each activation
+  class declares its pair as ``_rounding(k)`` in :mod:`tinyprop.activations`, the
+  count beside it (Sigmoid: ``L = 1/4``, ``c = 3k + 2`` for ``e = exp(-|z|)``, then
+  ``1 + e`` and one division; ReLU: ``L = 1``, ``c = 0``, exact).
 
 Near underflow a result can lose its relative accuracy, so every rounding also
 gets an absolute allowance of one smallest subnormal. The sums over the
@@ -53,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from .._validate import as_samples
-from ..activations import Activation, Identity, LeakyReLU, ReLU, Sigmoid, Softplus, Tanh
+from ..activations import Activation, declared
 from ..network import Network
 from ._plan import ActivationStep, AffineStep, ScalingStep, make_plan
 
@@ -121,14 +113,10 @@ def agreement_bound(net: Network, X: Any, *, dtype: Any = None, function_ulps: f
 def _activation_constants(step: ActivationStep, k: float) -> tuple[float, float]:
     """``(L, c)``: Lipschitz constant and relative error in units of ``u`` (see the module docstring)."""
     act: Activation = step.activation
-    kind = type(act)
-    table = {Sigmoid: (0.25, 3 * k + 2), Tanh: (1.0, 2 * k), Softplus: (1.0, 4 * k + 1),
-             ReLU: (1.0, 0.0), Identity: (1.0, 0.0)}
-    if kind is LeakyReLU:
-        return max(1.0, act.slope), 1.0  # type: ignore[attr-defined]
-    if kind not in table:
+    constants = declared(act, "_rounding", k)
+    if constants is None:
         raise TypeError(
             f"agreement_bound knows the built-in activations only; layer {step.layer} is "
             f"{type(act).__name__}, whose Lipschitz constant and rounding are unknown"
         )
-    return table[kind]
+    return constants
