@@ -10,6 +10,7 @@ file are compared with copies taken before the call. All data is synthetic.
 from __future__ import annotations
 
 import copy
+import dataclasses
 import re
 import zipfile
 from dataclasses import dataclass
@@ -20,6 +21,7 @@ import numpy as np
 import pytest
 
 import tinyprop as tp
+from tinyprop.csvdata import CsvError, read_csv
 from tinyprop.modelfile import ModelFileError, fingerprint, load, save
 from tinyprop.optim import SGD, Adam
 from tinyprop.registry import register_activation
@@ -95,6 +97,8 @@ def make_inputs(folder: Path) -> Inputs:
         "points_nan": np.array([0.0, np.nan, 1.0]),
         "metadata_tuple": {"hidden": (4, 4)},
         "metadata_array": {"mean": np.zeros(3)},
+        "metadata_surrogate": {"note": "\ud800"},
+        "X_huge": X / np.abs(X).max() * 1e308,
         "layers_mismatch": [tp.Affine(3, 4), tp.Tanh(), tp.Affine(5, 1)],
     }
     return Inputs(net, Adam(lr=0.01), path, user)
@@ -153,6 +157,71 @@ def _resume_with_other_batch_size(inputs: Inputs) -> Any:
     return _train(inputs, batch_size=2, seed=0, resume=first.state)
 
 
+def _first_state(inputs: Inputs, net: tp.Network | None = None, **options: Any) -> Any:
+    """The state after one epoch of a run like ``_train``'s (on a copy of the network), with validation."""
+    settings = {"loss": tp.MeanSquaredError(), "epochs": 1, "batch_size": 4, "seed": 0,
+                "validation": (inputs.X, inputs.y)}
+    settings.update(options)
+    return train(net or inputs.net.copy(), inputs.X, inputs.y, optimizer=Adam(lr=0.01), **settings).state
+
+
+def _resume(inputs: Inputs, state: Any, **options: Any) -> Any:
+    return _train(inputs, seed=0, validation=(inputs.X, inputs.y), resume=state, **options)
+
+
+def _resume_best_epoch_without_best_weights(inputs: Inputs) -> Any:
+    state = dataclasses.replace(_first_state(inputs, patience=2), best_weights=None, best_loss=-1.0)
+    return _resume(inputs, state, patience=2)
+
+
+def _resume_optimizer_wrong_shape(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    arrays = {name: np.zeros(3) for name in state.optimizer.arrays}
+    return _resume(inputs, dataclasses.replace(state, optimizer=dataclasses.replace(state.optimizer, arrays=arrays)))
+
+
+def _resume_rng_out_of_range(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    state.rng["state"]["state"] = 2**200
+    return _resume(inputs, state)
+
+
+def _resume_other_activation(inputs: Inputs) -> Any:
+    other = tp.Network([tp.Affine(3, 4), tp.Sigmoid(), tp.Affine(4, 2)], seed=0)
+    return _resume(inputs, _first_state(inputs, other))
+
+
+def _resume_other_data(inputs: Inputs) -> Any:
+    state = _first_state(inputs)
+    return train(inputs.net, inputs.X[::-1], inputs.y, loss=tp.MeanSquaredError(), optimizer=inputs.optimizer,
+                 epochs=2, batch_size=4, seed=0, validation=(inputs.X, inputs.y), resume=state)
+
+
+def _concatenated(inputs: Inputs) -> Any:
+    other = inputs.path.with_name("both.npz")
+    save(tp.build_mlp([3, 4, 2], seed=1), other)
+    other.write_bytes(inputs.path.read_bytes() + other.read_bytes())
+    return load(other)
+
+
+def _manifest_edited(inputs: Inputs, old: bytes, new: bytes, name: str) -> Any:
+    other = inputs.path.with_name(name)
+    with zipfile.ZipFile(inputs.path) as archive:
+        members = {info.filename: archive.read(info) for info in archive.infolist()}
+    assert old in members["manifest.json"]
+    members["manifest.json"] = members["manifest.json"].replace(old, new, 1)
+    with zipfile.ZipFile(other, "w") as archive:  # valid ZIP checksums: only the manifest differs
+        for member, data in members.items():
+            archive.writestr(member, data)
+    return load(other)
+
+
+def _csv(inputs: Inputs, text: str) -> Any:
+    path = inputs.path.with_name("data.csv")
+    path.write_text(text, encoding="utf-8")
+    return read_csv(path).numeric(["x", "y"])
+
+
 def _write_text(inputs: Inputs) -> Any:
     other = inputs.path.with_name("notes.npz")
     other.write_text("weights: 0.1 0.2 0.3\n")
@@ -199,6 +268,8 @@ ROWS = [
     Row("affine-zero-units", lambda i: tp.Affine(3, 0), ValueError, r"n_out must be a positive integer, got 0"),
     Row("standardize-zero-scale", lambda i: tp.Standardize([0.0, 1.0], [1.0, 0.0]), ValueError,
         r"scale must be positive, got 0\.0 at column 1"),
+    Row("standardize-scale-too-small", lambda i: tp.Standardize([0.0], [1e-310]), ValueError,
+        r"scale must be at least 5\.563e-309 \(so that 1 / scale is finite\), got 1e-310 at column 0"),
     Row("leaky-relu-negative-slope", lambda i: tp.LeakyReLU(-0.1), ValueError,
         r"slope must be a finite number >= 0, got -0\.1"),
     Row("predict-wrong-columns", lambda i: i.net.predict(i.X_two_columns), ValueError,
@@ -226,6 +297,8 @@ ROWS = [
         r"batch_size must be a positive integer, got 0"),
     Row("train-epochs-not-integer", lambda i: _train(i, epochs=2.5), TypeError,
         r"epochs must be a positive integer, got 2\.5"),
+    Row("train-targets-overflow-the-loss", lambda i: _train(i, y=i.y * 1e200), tp.TrainingDiverged,
+        r"The targets are too large for the loss in float64: \|y\| reaches .*lowering the learning rate cannot help"),
     Row("train-loss-as-text", lambda i: _train(i, loss="mse"), TypeError, r"loss must be a tinyprop Loss .*got str"),
     Row("train-optimizer-missing", lambda i: _train(i, optimizer=None), TypeError,
         r"optimizer must be a tinyprop Optimizer .*got NoneType"),
@@ -239,6 +312,15 @@ ROWS = [
         r"seed must be None or an integer >= 0, got -1"),
     Row("train-resume-other-settings", _resume_with_other_batch_size, ValueError,
         r"resume state does not match this training run \(batch_size: state has 4, this call 2\)"),
+    Row("resume-best-epoch-without-best-weights", _resume_best_epoch_without_best_weights, ValueError,
+        r"resume state is inconsistent: training state best_epoch, best_loss, epochs_since_best are 1, -1\.0, 0"),
+    Row("resume-optimizer-arrays-wrong-shape", _resume_optimizer_wrong_shape, ValueError,
+        r"state array 0 has shape \(3,\) float64, the parameter array it updates has \(26,\) float64"),
+    Row("resume-generator-state-out-of-range", _resume_rng_out_of_range, ValueError,
+        r"resume state has an unusable rng state"),
+    Row("resume-other-activation", _resume_other_activation, ValueError, r"resume state comes from another network"),
+    Row("resume-other-data", _resume_other_data, ValueError,
+        r"resume state does not match this training run \(data_sha256"),
     Row("sgd-negative-learning-rate", lambda i: SGD(lr=-0.1), ValueError, r"lr must be"),
     # ------------------------------------------------------------ solve
     Row("solve-unknown-method", lambda i: solve(i.net, i.X, i.y, method="gauss-newton"), ValueError,
@@ -284,6 +366,23 @@ ROWS = [
         r"\(BadZipFile: Bad CRC-32 for file 'layer0\.weight\.npy'\)"),
     Row("load-unknown-activation", _names_unknown_activation, ModelFileError,
         r"names the activation 'test_bad_inputs\.Halving', which is not registered in this program"),
+    Row("load-two-archives-concatenated", _concatenated, ModelFileError,
+        r"both\.npz: the archive is ambiguous: \d+ bytes before the first member"),
+    Row("load-device-file", lambda i: load("/dev/zero"), ModelFileError,
+        r"/dev/zero: not a regular file \(a character device\)"),
+    Row("load-overflowing-manifest-number",
+        lambda i: _manifest_edited(i, b'"format_version": 1', b'"format_version": 1e999', "big.npz"),
+        ModelFileError, r"big\.npz: manifest\.json is not valid UTF-8 JSON: 1e999 is not a finite number"),
+    Row("save-lone-surrogate-in-metadata", lambda i: save(i.net, i.path, metadata=i.metadata_surrogate), ModelFileError,
+        r"metadata\['note'\] holds the character '\\ud800' at position 0, which UTF-8 cannot encode"),
+    Row("csv-python-only-number", lambda i: _csv(i, "x,y\n1_0,2\n"), CsvError,
+        r"data\.csv, line 2, column 'x': '1_0' is not a number$"),
+    Row("csv-several-bad-cells", lambda i: _csv(i, "x,y\n1,\n2,n/a\ninf,3\n"), CsvError,
+        r"data\.csv: 3 cells are not usable numbers .*\n  line 2, column 'y': the cell is empty.*\n"
+        r"  line 3, column 'y': 'n/a' is not a number\n  line 4, column 'x': 'inf' is not a finite number"),
+    Row("export-fixed-point-calibration-overflows",
+        lambda i: tp.export_c_fixed_point(i.net, i.path.parent, i.X_huge), ValueError,
+        r"a calibrated magnitude of 1e\+308 times headroom 2 overflows float64; no fixed-point format can hold it"),
     Row("fingerprint-not-a-network", lambda i: fingerprint("model.npz"), TypeError,
         r"expected a tinyprop Network, got str"),
     Row("network-negative-seed", lambda i: tp.Network([tp.Affine(3, 1)], seed=-1), ValueError,
@@ -314,6 +413,8 @@ def test_the_rows_are_distinct_and_many():
 
 
 def test_docs_table_lists_exactly_these_rows():
-    documented = re.findall(r"^\| `([a-z0-9-]+)` \|", DOC.read_text(encoding="utf-8"), flags=re.M)
+    text = DOC.read_text(encoding="utf-8")
+    table = text[text.index("## The bad-input table"):text.index("## Command-line cases")]
+    documented = re.findall(r"^\| `([a-z0-9-]+)` \|", table, flags=re.M)
     assert sorted(documented) == sorted(row.id for row in ROWS)
     assert len(documented) == len(set(documented))

@@ -421,7 +421,7 @@ def test_state_from_parts_reports_missing_pieces():
         ("training_loss", [0.1, float("nan")], "training_loss must be a list of finite numbers"),
         ("rng", [1, 2], "rng must be a dict"),
         ("best_epoch", -1, "best_epoch must be an integer >= 0"),
-        ("version", 2, "not a version-1 tinyprop training state"),
+        ("version", 1, "not a version-2 tinyprop training state"),
     ],
 )
 def test_state_from_parts_refuses_ill_typed_scalars(key, value, text):

@@ -35,6 +35,8 @@ import math
 import os
 import re
 import secrets
+import stat
+import struct
 import zipfile
 from collections.abc import Mapping
 from typing import Any
@@ -62,6 +64,11 @@ ARRAY_NAME = re.compile(r"(?=.{1,200}\Z)[A-Za-z0-9_][A-Za-z0-9_.\-]*(/[A-Za-z0-9
 MAX_JSON_DEPTH = 64
 MAX_MANIFEST_BYTES = 64 * 2**20
 _MAX_NPY_HEADER = 10_000  # numpy's own default limit for reading .npy headers
+MAX_ARCHIVE_BYTES = 2**31 - 1  # below ZIP64's limits: every size and offset fits the classic ZIP fields
+_LOCAL_HEADER = b"PK\x03\x04"
+_LOCAL = struct.Struct("<4s5H3L2H")  # signature, version, flags, method, time, date, crc, sizes, name and extra lengths
+_END_SIGNATURE = b"PK\x05\x06"
+_END_RECORD = struct.Struct("<4s4H2LH")  # signature, disks, entries, central directory size and offset, comment
 _RECORD_KEYS = {"name", "dtype", "shape", "sha256"}
 _SHA256 = re.compile(r"[0-9a-f]{64}")
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)  # fixed, so equal content gives byte-identical files
@@ -108,7 +115,7 @@ def write_bytes_atomically(path: str | os.PathLike[str], data: bytes) -> None:
     """Replace the file at ``path`` by ``data`` so that readers see the old file or the new one, never a mix.
 
     Temporary file ``.<name>.<random>.tmp`` in the same folder (created
-    exclusively, with the usual permissions), written in full and
+    exclusively, with the usual permissions, or those of the file it replaces), written in full and
     ``os.fsync``-ed, then ``os.replace``-d over ``path``; afterwards the folder
     is ``fsync``-ed on POSIX systems that allow it, so the rename itself
     survives a power cut. On any failure, including ``KeyboardInterrupt``, the
@@ -120,9 +127,16 @@ def write_bytes_atomically(path: str | os.PathLike[str], data: bytes) -> None:
     if not os.path.isdir(folder):
         raise FileNotFoundError(errno.ENOENT, f"cannot write {target}: the folder does not exist", folder)
     temporary = os.path.join(folder, f".{base[:100]}.{secrets.token_hex(8)}.tmp")
+    try:
+        existing = os.stat(target)
+        mode = stat.S_IMODE(existing.st_mode) if stat.S_ISREG(existing.st_mode) else None
+    except OSError:
+        mode = None
     descriptor = os.open(temporary, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666)
     try:
         try:
+            if mode is not None and hasattr(os, "fchmod"):
+                os.fchmod(descriptor, mode)  # a re-saved file keeps its permissions
             remaining = memoryview(data)
             while remaining:
                 remaining = remaining[os.write(descriptor, remaining):]
@@ -201,7 +215,10 @@ def check_json(value: Any, where: str, depth: int = 0) -> None:
     """
     if depth > MAX_JSON_DEPTH:
         raise ArchiveError(f"{where} is nested more than {MAX_JSON_DEPTH} levels deep (or contains itself)")
-    if value is None or isinstance(value, (str, bool, int)):
+    if isinstance(value, str):
+        _check_text(value, where, "holds")
+        return
+    if value is None or isinstance(value, (bool, int)):
         return
     if isinstance(value, float):
         if not math.isfinite(value):
@@ -211,6 +228,7 @@ def check_json(value: Any, where: str, depth: int = 0) -> None:
         for key, item in value.items():
             if not isinstance(key, str):
                 raise ArchiveError(f"{where} has the key {key!r} of type {type(key).__name__}; JSON keys are strings")
+            _check_text(key, where, "has a key with")
             check_json(item, f"{where}[{key!r}]", depth + 1)
         return
     if isinstance(value, list):
@@ -228,6 +246,16 @@ def check_json(value: Any, where: str, depth: int = 0) -> None:
     )
 
 
+def _check_text(text: str, where: str, verb: str) -> None:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise ArchiveError(
+            f"{where} {verb} the character {text[exc.start]!r} at position {exc.start}, which UTF-8 cannot encode "
+            "(a lone surrogate); manifests are UTF-8 text"
+        ) from None
+
+
 # ---------------------------------------------------------------- reading
 def read_archive(path: str | os.PathLike[str]) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
     """Read and verify an archive; return ``(arrays, manifest)``.
@@ -237,17 +265,97 @@ def read_archive(path: str | os.PathLike[str]) -> tuple[dict[str, np.ndarray], d
     :class:`ArchiveError` for any malformed or inconsistent content and
     ``OSError`` if the file cannot be read at all.
     """
-    with open(path, "rb") as handle:
-        data = handle.read()
-    if not data.startswith(b"PK\x03\x04"):
-        raise ArchiveError(f"not a tinyprop archive: it does not start with a ZIP signature (first bytes {data[:8]!r})")
+    data = _read_file(path)
     try:
         with zipfile.ZipFile(io.BytesIO(data)) as archive:
+            _check_layout(data, archive)
             return _read_members(archive)
     except ArchiveError:
         raise
     except _MALFORMED as exc:
         raise ArchiveError(f"the archive is damaged or truncated ({type(exc).__name__}: {exc})") from None
+
+
+def _read_file(path: str | os.PathLike[str]) -> bytes:
+    """The bytes of a regular file that starts with a ZIP signature and holds at most :data:`MAX_ARCHIVE_BYTES`.
+
+    The type, the signature and the size are checked before the file is read,
+    so a FIFO or device is refused without blocking or reading, and a large
+    file that is not an archive costs a few bytes of memory.
+    """
+    name = os.fspath(path)
+    if not stat.S_ISREG(os.stat(name).st_mode):
+        raise ArchiveError(f"not a regular file ({_file_kind(os.stat(name).st_mode)}); an archive is a regular file")
+    descriptor = os.open(name, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    with os.fdopen(descriptor, "rb") as handle:
+        status = os.fstat(handle.fileno())
+        if not stat.S_ISREG(status.st_mode):  # replaced between the two looks
+            raise ArchiveError(f"not a regular file ({_file_kind(status.st_mode)}); an archive is a regular file")
+        head = handle.read(8)
+        if not head.startswith(_LOCAL_HEADER):
+            raise ArchiveError(f"not a tinyprop archive: it does not start with a ZIP signature (first bytes {head!r})")
+        if status.st_size > MAX_ARCHIVE_BYTES:
+            raise ArchiveError(f"the file holds {status.st_size} bytes; archives are limited to {MAX_ARCHIVE_BYTES}")
+        handle.seek(max(0, status.st_size - _END_RECORD.size))
+        _check_end_record(handle.read(_END_RECORD.size), status.st_size)
+        handle.seek(0)
+        data = handle.read(MAX_ARCHIVE_BYTES + 1)
+    if len(data) > MAX_ARCHIVE_BYTES:
+        raise ArchiveError(f"the file holds more than {MAX_ARCHIVE_BYTES} bytes, the limit for archives")
+    return data
+
+
+def _file_kind(mode: int) -> str:
+    kinds = ((stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a FIFO"), (stat.S_ISCHR, "a character device"),
+             (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+    return next((text for test, text in kinds if test(mode)), "not a regular file")
+
+
+def _check_layout(data: bytes, archive: zipfile.ZipFile) -> None:
+    """Refuse ZIP files that could be read in more than one way.
+
+    The members must start at byte 0 and follow each other without gaps, each
+    local header must agree with its central-directory entry (name, flags,
+    method, CRC-32, sizes), the central directory must follow the last member,
+    and the end-of-central-directory record (without a comment) must end the
+    file. This refuses two archives glued together, data in front of an
+    archive and bytes hidden between members or after the end.
+    """
+    cd_offset = _check_end_record(data[-_END_RECORD.size:], len(data))
+    position = 0
+    for info in sorted(archive.infolist(), key=lambda i: i.header_offset):
+        if info.header_offset != position:
+            where = "before the first member" if position == 0 else f"hidden between members, before {info.filename!r}"
+            raise ArchiveError(f"the archive is ambiguous: {abs(info.header_offset - position)} bytes {where}")
+        fields = _LOCAL.unpack_from(data, position) if position + _LOCAL.size <= len(data) else None
+        name_bytes = info.filename.encode("utf-8" if info.flag_bits & 0x800 else "cp437")
+        if fields is None or fields[0] != _LOCAL_HEADER or fields[2:4] != (info.flag_bits, info.compress_type) \
+                or fields[6:9] != (info.CRC, info.compress_size, info.file_size) \
+                or data[position + _LOCAL.size:position + _LOCAL.size + fields[9]] != name_bytes:
+            raise ArchiveError(f"the archive is ambiguous: the local header of member {info.filename!r} "
+                               "disagrees with the central directory")
+        position += _LOCAL.size + fields[9] + fields[10] + info.compress_size
+    if position != cd_offset:
+        raise ArchiveError(f"the archive is ambiguous: {abs(cd_offset - position)} bytes hidden between the last "
+                           "member and the central directory")
+
+
+def _check_end_record(tail: bytes, size: int) -> int:
+    """Check that the file ends with its end-of-central-directory record; return the directory's offset."""
+    if len(tail) < _END_RECORD.size or tail[:4] != _END_SIGNATURE:
+        raise ArchiveError(
+            "the archive is damaged or truncated (the file does not end with the end of the central directory: "
+            "bytes follow it, or it is missing)"
+        )
+    _, disk, cd_disk, n_here, n_total, cd_size, cd_offset, comment = _END_RECORD.unpack(tail)
+    end = size - _END_RECORD.size
+    if cd_offset + cd_size < end:
+        raise ArchiveError(f"the archive is ambiguous: {end - cd_offset - cd_size} bytes before the first member "
+                           "(another archive or other data in front of it)")
+    if (disk, cd_disk, comment) != (0, 0, 0) or n_here != n_total or cd_offset + cd_size != end:
+        raise ArchiveError("the archive is damaged or truncated (its end of the central directory does not "
+                           "describe one archive of one part, without a comment, that ends the file)")
+    return cd_offset
 
 
 def _read_members(archive: zipfile.ZipFile) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -286,7 +394,8 @@ def _read_manifest(archive: zipfile.ZipFile, info: zipfile.ZipInfo) -> dict[str,
     raw = archive.read(info)
     try:
         text = raw.decode("utf-8")
-        manifest = json.loads(text, object_pairs_hook=_no_duplicate_keys, parse_constant=_no_constants)
+        manifest = json.loads(text, object_pairs_hook=_no_duplicate_keys, parse_constant=_no_constants,
+                              parse_float=_finite_float)
     except (ValueError, RecursionError) as exc:
         raise ArchiveError(f"{MANIFEST_MEMBER} is not valid UTF-8 JSON: {exc}") from None
     if not isinstance(manifest, dict):
@@ -300,6 +409,13 @@ def _no_duplicate_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
         keys = [key for key, _ in pairs]
         raise ValueError(f"duplicate key(s) {sorted({k for k in keys if keys.count(k) > 1})}")
     return result
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"{text} is not a finite number (it overflows a float)")
+    return value
 
 
 def _no_constants(name: str) -> None:

@@ -25,19 +25,23 @@ the state; :func:`tinyprop.train` then checks it against the run it resumes.
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
+import re
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from .archive import ArchiveError, read_archive, write_archive
+from ._json import canonical_json, sha256_hex
+from .archive import ArchiveError, array_bytes, read_archive, write_archive
 from .optim import OptimizerState
 
-__all__ = ["TrainingState", "CheckpointError", "save_checkpoint", "load_checkpoint"]
+__all__ = ["TrainingState", "CheckpointError", "save_checkpoint", "load_checkpoint", "network_digest"]
 
 _KIND = "tinyprop checkpoint"
+_SHA256 = re.compile(r"[0-9a-f]{64}")
 
 
 @dataclass
@@ -50,7 +54,13 @@ class TrainingState:
     ``validation_loss`` the history; ``best_epoch``, ``best_loss``,
     ``best_weights`` and ``epochs_since_best`` the early-stopping bookkeeping
     (``None`` without validation data); ``settings`` the run's settings, which
-    a resumed run must match.
+    a resumed run must match (they include ``data_sha256``, a digest of the
+    training and validation data); ``network`` the :func:`network_digest` of
+    the network holding ``weights``, so a state is only resumed into the
+    network (layers, activations, fixed scalings) it came from.
+
+    :meth:`check` refuses a state whose fields contradict each other; saving,
+    loading and resuming call it.
     """
 
     epoch: int
@@ -64,6 +74,59 @@ class TrainingState:
     best_weights: list[np.ndarray] | None
     epochs_since_best: int
     settings: dict[str, Any]
+    network: str = ""
+
+    def check(self) -> None:
+        """Raise ``ValueError`` naming the first field that contradicts the others.
+
+        The rules follow from how :func:`tinyprop.train` keeps the state: one
+        training loss per epoch; validation losses exactly when the run has
+        validation data, one per epoch; then the best epoch is the first
+        epoch with the lowest validation loss, ``best_loss`` is that loss,
+        ``epochs_since_best`` counts the epochs after it and ``best_weights``
+        are present and shaped like ``weights``; without validation data none
+        of these are set.
+        """
+        if len(self.training_loss) != self.epoch:
+            raise ValueError(f"training state has {len(self.training_loss)} training losses for {self.epoch} epochs")
+        if not isinstance(self.network, str) or not _SHA256.fullmatch(self.network):
+            raise ValueError(
+                f"training state network must be a SHA-256 (64 lowercase hex digits), got {self.network!r}"
+            )
+        has_validation = self.settings.get("n_validation") is not None
+        if (self.validation_loss is not None) != has_validation:
+            raise ValueError(
+                f"training state validation_loss is {'a list' if self.validation_loss is not None else 'None'}, "
+                f"but its settings have n_validation {self.settings.get('n_validation')!r}"
+            )
+        losses = self.validation_loss or []
+        if has_validation and len(losses) != self.epoch:
+            raise ValueError(f"training state has {len(losses)} validation losses for {self.epoch} epochs")
+        if losses:
+            best = min(losses)
+            expected = (losses.index(best) + 1, best, self.epoch - losses.index(best) - 1)
+        else:
+            expected = (None, None, 0)
+        found = (self.best_epoch, self.best_loss, self.epochs_since_best)
+        if found != expected:
+            raise ValueError(
+                "training state best_epoch, best_loss, epochs_since_best are "
+                f"{found[0]!r}, {found[1]!r}, {found[2]!r}; its validation losses give {expected[0]!r}, "
+                f"{expected[1]!r}, {expected[2]!r}"
+            )
+        if (self.best_weights is not None) != (self.best_epoch is not None):
+            raise ValueError(
+                f"training state best_weights are {'present' if self.best_weights is not None else 'missing'} "
+                f"with best_epoch {self.best_epoch!r}"
+            )
+        if self.best_weights is not None:
+            if len(self.best_weights) != len(self.weights):
+                raise ValueError(
+                    f"training state has {len(self.best_weights)} best_weights for {len(self.weights)} weights"
+                )
+            for i, (b, w) in enumerate(zip(self.best_weights, self.weights)):
+                if np.shape(b) != np.shape(w) or np.asarray(b).dtype != np.asarray(w).dtype:
+                    raise ValueError(f"training state best_weights {i} is not shaped like weights {i}")
 
     def to_parts(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         """Split into ``(scalars, arrays)``: a JSON-able dict and a dict of named arrays.
@@ -73,7 +136,7 @@ class TrainingState:
         """
         scalars = {
             "format": "tinyprop training state",
-            "version": 1,
+            "version": 2,
             "epoch": self.epoch,
             "n_weights": len(self.weights),
             "optimizer": {
@@ -88,6 +151,7 @@ class TrainingState:
             "best_loss": self.best_loss,
             "epochs_since_best": self.epochs_since_best,
             "settings": self.settings,
+            "network": self.network,
         }
         arrays = {f"weights/{i}": w for i, w in enumerate(self.weights)}
         if self.best_weights is not None:
@@ -109,10 +173,10 @@ class TrainingState:
                 f"{type(arrays).__name__}"
             )
         try:
-            if scalars["format"] != "tinyprop training state" or scalars["version"] != 1:
+            if scalars["format"] != "tinyprop training state" or scalars["version"] != 2:
                 raise ValueError(
-                    f"not a version-1 tinyprop training state: {scalars['format']!r} "
-                    f"{scalars['version']!r}"
+                    f"not a version-2 tinyprop training state: {scalars['format']!r} {scalars['version']!r} "
+                    "(version 1, written before states recorded their network and data, cannot be resumed)"
                 )
             n = _whole(scalars["n_weights"], "n_weights")
             weights = [np.asarray(arrays[f"weights/{i}"]) for i in range(n)]
@@ -132,7 +196,7 @@ class TrainingState:
             if extra:
                 raise ValueError(f"unexpected arrays {sorted(extra)}")
             validation = scalars["validation_loss"]
-            return cls(
+            state = cls(
                 epoch=_whole(scalars["epoch"], "epoch"),
                 weights=weights,
                 optimizer=optimizer,
@@ -144,9 +208,48 @@ class TrainingState:
                 best_weights=best,
                 epochs_since_best=_whole(scalars["epochs_since_best"], "epochs_since_best"),
                 settings=_typed(scalars["settings"], "settings", dict),
+                network=_typed(scalars["network"], "network", str),
             )
         except KeyError as exc:
             raise ValueError(f"training state is missing {exc}") from None
+        state.check()
+        return state
+
+
+def network_digest(net: Any, weights: list[np.ndarray] | None = None) -> str:
+    """SHA-256 of a network's dtype, layers (class, settings) and parameter arrays.
+
+    ``weights`` stands in for ``net.params`` (the network is not changed).
+    Layers are named by their class's module and qualified name, so, unlike
+    :func:`tinyprop.modelfile.fingerprint`, this needs no registered names and
+    works for every network :func:`tinyprop.train` accepts. Two networks have
+    the same digest when they have the same dtype, layer classes, settings
+    (activation parameters, fixed scalings) and bit-identical parameters.
+    """
+    params = net.params if weights is None else weights
+    layers = [
+        {"class": f"{type(layer).__module__}.{type(layer).__qualname__}",
+         "settings": layer.settings() if hasattr(layer, "settings") else None}
+        for layer in net.layers
+    ]
+    description = {
+        "dtype": net.dtype.name,
+        "layers": layers,
+        "params": [[list(np.shape(p)), np.asarray(p).dtype.name, hashlib.sha256(array_bytes(np.asarray(p))).hexdigest()]
+                   for p in params],
+    }
+    return sha256_hex(canonical_json(_plain(description)))
+
+
+def _plain(value: Any) -> Any:
+    """``value`` with every leaf JSON cannot hold (a custom activation's own setting types) replaced by its ``repr``."""
+    if isinstance(value, dict):
+        return {str(key): _plain(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(item) for item in value]
+    if value is None or isinstance(value, (str, bool, int)) or (isinstance(value, float) and math.isfinite(value)):
+        return value
+    return repr(value)
 
 
 def _whole(value: Any, name: str) -> int:
@@ -177,6 +280,10 @@ def save_checkpoint(state: TrainingState, path: str | os.PathLike[str]) -> None:
     """Write ``state`` to ``path`` atomically (a previous file there survives any failure)."""
     if not isinstance(state, TrainingState):
         raise TypeError(f"state must be a TrainingState (result.state or info.capture()), got {type(state).__name__}")
+    try:
+        state.check()
+    except ValueError as exc:
+        raise CheckpointError(f"{os.fspath(path)}: not a usable training state: {exc}") from None
     scalars, arrays = state.to_parts()
     if any(v is not None and not math.isfinite(v) for v in _all_losses(scalars)):
         raise CheckpointError(f"{os.fspath(path)}: the state holds a non-finite loss; a diverged run cannot be resumed")

@@ -6,7 +6,7 @@ the cell with surrounding blanks removed; an empty cell is a missing label, and
 every missing one is reported at once, by line, in one
 :class:`~tinyprop.csvdata.CsvError`.
 
->>> label_cells(["run", " idle ", "run"], [2, 3, 4], "state", "plant.csv").tolist()
+>>> label_cells(["run", " idle ", "run"], lambda i: i + 2, "state", "plant.csv").tolist()
 ['run', 'idle', 'run']
 >>> is_text_column(["run", "idle"]), is_text_column(["0", "1", "2"])
 (True, False)
@@ -15,7 +15,7 @@ every missing one is reported at once, by line, in one
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 
@@ -24,14 +24,14 @@ from .csvdata import CsvError
 __all__ = ["is_text_column", "label_cells"]
 
 
-def label_cells(cells: Sequence[str], line_numbers: Sequence[int], column: str, path: str) -> np.ndarray:
+def label_cells(cells: Sequence[str], line_of: Callable[[int], int], column: str, path: str) -> np.ndarray:
     """The labels of one column (cells stripped) as an array of strings; refuse empty cells.
 
-    ``line_numbers[i]`` is the file line of ``cells[i]``; the error lists the
+    ``line_of(i)`` is the file line of ``cells[i]`` (asked only for empty cells); the error lists the
     lines of all empty cells (the first 20 and how many more).
     """
     labels = [cell.strip() for cell in cells]
-    empty = [line for line, label in zip(line_numbers, labels) if not label]
+    empty = [line_of(i) for i, label in enumerate(labels) if not label]
     if empty:
         shown = ", ".join(map(str, empty[:20])) + (f" and {len(empty) - 20} more" if len(empty) > 20 else "")
         raise CsvError(f"{path}, column {column!r}: {len(empty)} empty cell{'s' * (len(empty) > 1)} on "

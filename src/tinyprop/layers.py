@@ -62,6 +62,9 @@ class Affine:
         return f"Affine({self.n_in}, {self.n_out}, bias={self.bias is not None})"
 
 
+_SMALLEST_SCALE = 1.0 / np.finfo(np.float64).max  # below this, 1 / scale overflows
+
+
 class ColumnScaling:
     """Fixed per-column rescaling ``y = x * gain + offset`` built from a mean and a scale.
 
@@ -78,8 +81,22 @@ class ColumnScaling:
             )
         if np.any(scale <= 0):
             raise ValueError(f"scale must be positive, got {scale.min()} at column {int(np.argmin(scale))}")
+        if np.any(scale < _SMALLEST_SCALE):
+            column = int(np.argmin(scale))
+            raise ValueError(
+                f"scale must be at least {_SMALLEST_SCALE:.4g} (so that 1 / scale is finite), got "
+                f"{float(scale[column])!r} at column {column}"
+            )
+        with np.errstate(over="ignore", divide="ignore"):
+            gain, offset = self._gain_offset(mean, scale)
+        if not (np.isfinite(gain).all() and np.isfinite(offset).all()):
+            column = int(np.flatnonzero(~(np.isfinite(gain) & np.isfinite(offset)))[0])
+            raise ValueError(
+                f"mean {float(mean[column])!r} and scale {float(scale[column])!r} at column {column} give a non-finite "
+                f"{type(self).__name__} gain or offset"
+            )
         self.mean, self.scale = mean, scale
-        self.gain, self.offset = self._gain_offset(mean, scale)
+        self.gain, self.offset = gain, offset
 
     @staticmethod
     def _gain_offset(mean: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -87,15 +104,24 @@ class ColumnScaling:
 
     @classmethod
     def from_data(cls, data: Any) -> "ColumnScaling":
-        """Mean and population standard deviation of each column; a constant column gets scale 1."""
+        """Mean and population standard deviation of each column; a constant column gets scale 1.
+
+        Columns whose values are so large that the plain sums overflow (say
+        ``+-1e308``) are divided by their largest magnitude ``m`` first:
+        ``mean = m * mean(x / m)``, ``std = m * std(x / m)``.
+        """
         array = as_float_array(data, "data", np.dtype(np.float64))
         if array.ndim == 1:
             array = array.reshape(-1, 1)
         if array.ndim != 2:
             raise ValueError(f"data must be 1-D or 2-D, got shape {array.shape}")
-        scale = array.std(axis=0)
-        scale[scale == 0] = 1.0
-        return cls(array.mean(axis=0), scale)
+        with np.errstate(over="ignore", invalid="ignore"):
+            mean, scale = array.mean(axis=0), array.std(axis=0)
+        for column in np.flatnonzero(~(np.isfinite(mean) & np.isfinite(scale))):
+            largest = float(np.max(np.abs(array[:, column])))
+            mean[column], scale[column] = _scaled_moments(array[:, column], largest)
+        scale[scale == 0] = 1.0  # a computed positive std is at least sqrt(5e-324) ~ 2e-162: 1 / std is finite
+        return cls(mean, scale)
 
     @property
     def width(self) -> int:
@@ -114,6 +140,12 @@ class ColumnScaling:
 
     def __repr__(self) -> str:
         return f"{type(self).__name__}(width={self.width})"
+
+
+def _scaled_moments(column: np.ndarray, largest: float) -> tuple[float, float]:
+    """Mean and population standard deviation of ``column`` computed on ``column / largest`` (no overflow)."""
+    scaled = column / largest
+    return float(scaled.mean()) * largest, float(scaled.std()) * largest  # both at most `largest`: finite
 
 
 class Standardize(ColumnScaling):

@@ -262,11 +262,14 @@ class Optimizer:
         }
         return OptimizerState(type(self).__name__, self.settings(), self.steps, arrays)
 
-    def set_state(self, state: OptimizerState) -> None:
+    def set_state(self, state: OptimizerState, *, params: Sequence[np.ndarray] | None = None) -> None:
         """Continue from ``state`` (from :meth:`get_state` of an optimizer with equal settings).
 
         The arrays are copied. Raises ``ValueError`` if the kind or settings
-        differ or the arrays do not form complete, consistent slots.
+        differ, the arrays do not form complete, consistent slots, or (with
+        ``params``, the parameter arrays the next updates will receive) their
+        shapes and dtypes differ from ``params``. Everything is checked before
+        anything changes: a refused state leaves the optimizer as it was.
         """
         if not isinstance(state, OptimizerState):
             raise TypeError(f"state must be an OptimizerState, got {type(state).__name__}")
@@ -280,6 +283,13 @@ class Optimizer:
         if isinstance(state.steps, bool) or not isinstance(state.steps, (int, np.integer)) or state.steps < 0:
             raise ValueError(f"state.steps must be an integer >= 0, got {state.steps!r}")
         slots = _slots_from_arrays(state.arrays, self._slot_names)
+        if slots is None and self._slot_names and state.steps > 0:
+            raise ValueError(
+                f"state has made {state.steps} updates but holds no {', '.join(self._slot_names)} arrays; "
+                "a state after an update keeps them"
+            )
+        if slots is not None and params is not None:
+            _check_layout(slots[self._slot_names[0]], params)
         self.steps = int(state.steps)
         if slots is None:
             self._layout, self._slots, self._work, self._clipped = None, {}, [], []
@@ -291,6 +301,18 @@ class Optimizer:
 
     def __repr__(self) -> str:
         return f"{type(self).__name__}({', '.join(f'{k}={v!r}' for k, v in self.settings().items())})"
+
+
+def _check_layout(arrays: list[np.ndarray], params: Sequence[np.ndarray]) -> None:
+    """Refuse state arrays that do not match the parameter arrays in count, shape and dtype."""
+    if len(arrays) != len(params):
+        raise ValueError(f"state holds arrays for {len(arrays)} parameter arrays, the parameters are {len(params)}")
+    for i, (a, p) in enumerate(zip(arrays, params)):
+        if a.shape != np.shape(p) or a.dtype != np.asarray(p).dtype:
+            raise ValueError(
+                f"state array {i} has shape {a.shape} {a.dtype}, the parameter array it updates has "
+                f"{np.shape(p)} {np.asarray(p).dtype}"
+            )
 
 
 def _slots_from_arrays(

@@ -68,6 +68,7 @@ file live in :mod:`tinyprop.checkpoint`.
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
 import time
@@ -79,7 +80,7 @@ import numpy as np
 from ._json import json_copy
 from ._progress import EpochProgress
 from ._validate import _sum_is_finite, as_samples, as_targets, positive_int, real_in_range, require_finite, seed_value
-from .checkpoint import TrainingState, save_checkpoint
+from .checkpoint import TrainingState, network_digest, save_checkpoint
 from .layers import Affine
 from .losses import Loss
 from .network import Network
@@ -341,6 +342,7 @@ class _Run:
             "n_samples": int(self.X.shape[0]),
             "n_validation": None if self.validation is None else int(self.validation[0].shape[0]),
             "parameter_shapes": [list(p.shape) for p in net.params],
+            "data_sha256": _data_digest(self.X, self.y, self.validation),
         }
         self.params = net.params
         self.is_weight = [
@@ -389,6 +391,7 @@ class _Run:
             best_weights=[w.copy() for w in self.best_weights] if has_best else None,  # type: ignore[union-attr]
             epochs_since_best=self.epochs_since_best,
             settings=json_copy(self.settings),
+            network=network_digest(self.net),
         )
 
     def restore(self, state: TrainingState) -> None:
@@ -397,26 +400,35 @@ class _Run:
                 "resume must be a TrainingState (result.state or info.capture()), got "
                 f"{type(state).__name__}"
             )
+        # check everything first: a refused state leaves the network and the optimizer as they were
         keys = set(self.settings) | set(state.settings)
         differing = sorted(k for k in keys if self.settings.get(k) != state.settings.get(k))
         if differing:
             detail = ", ".join(
-                f"{k}: state has {state.settings.get(k)!r}, this call {self.settings.get(k)!r}" for k in differing
+                f"{k}: state has {_brief(state.settings.get(k))}, this call {_brief(self.settings.get(k))}"
+                for k in differing
             )
             raise ValueError(f"resume state does not match this training run ({detail})")
+        try:
+            state.check()
+        except ValueError as exc:
+            raise ValueError(f"resume state is inconsistent: {exc}") from None
         if not 0 <= state.epoch <= self.epochs:
             raise ValueError(f"resume state has {state.epoch} epochs done, more than epochs={self.epochs}")
-        if len(state.training_loss) != state.epoch:
-            raise ValueError(f"resume state has {len(state.training_loss)} history entries for {state.epoch} epochs")
         _check_like(self.params, state.weights, "resume state weights")
         if state.best_weights is not None:
             _check_like(self.best_weights or [], state.best_weights, "resume state best_weights")
+        if network_digest(self.net, state.weights) != state.network:
+            raise ValueError(
+                "resume state comes from another network: its layers, activations, fixed scalings or weights "
+                "differ from this network's with the state's weights (network digest mismatch)"
+            )
         probe = type(self.rng.bit_generator)()
         try:
             probe.state = json_copy(state.rng)
-        except (TypeError, ValueError, KeyError) as exc:
+        except (TypeError, ValueError, KeyError, OverflowError) as exc:
             raise ValueError(f"resume state has an unusable rng state: {exc}") from None
-        self.optimizer.set_state(state.optimizer)  # checks everything before changing anything
+        self.optimizer.set_state(state.optimizer, params=[self.net.vector])  # checks before changing anything
         # from here on nothing can fail
         _copy_into(self.params, state.weights, "resume state weights")
         if state.best_weights is not None:
@@ -575,6 +587,9 @@ class _Run:
             ),
         }
         message = messages[reason]
+        if reason == STOP_DIVERGED and self._targets_overflow() is not None:
+            message = (f"training diverged {problem}; the network holds the last finite weights. "
+                       f"{self._targets_overflow()}")
         if reason == STOP_CALLBACK and self.patience is not None and self.best_epoch is not None:
             message += f"; restored the weights of epoch {self.best_epoch}"
         if reason == STOP_EPOCHS and self.patience is not None and self.best_epoch is not None:
@@ -592,6 +607,22 @@ class _Run:
             elapsed=time.perf_counter() - self.started,
             state=self.capture(),
         )
+
+    def _targets_overflow(self) -> str | None:
+        """A sentence saying the targets are too large for the loss in this dtype, or ``None``.
+
+        The loss sums squares over a mini-batch: when ``max |y|**2`` times the
+        batch's element count exceeds the dtype's largest number, it
+        overflows whatever the learning rate.
+        """
+        largest = float(np.max(np.abs(self.y)))
+        limit = float(np.finfo(self.y.dtype).max)
+        elements = min(self.batch_size, self.y.shape[0]) * self.y.shape[1]
+        if largest * largest * elements <= limit:
+            return None
+        return (f"The targets are too large for the loss in {self.y.dtype.name}: |y| reaches {largest:.3g}, and the "
+                f"sum of squares over a mini-batch overflows (largest {self.y.dtype.name} {limit:.3g}); lowering the "
+                "learning rate cannot help: rescale the targets (other units, or divide by a power of ten)")
 
     def _show_progress(self) -> None:
         if self.progress_line is None:
@@ -636,3 +667,17 @@ def _copy_into(targets: list[np.ndarray], sources: list[np.ndarray], what: str) 
     for t, s in zip(targets, sources):
         np.copyto(t, s)
 
+
+def _data_digest(X: np.ndarray, y: np.ndarray, validation: tuple[np.ndarray, np.ndarray] | None) -> str:
+    """SHA-256 over the training and validation arrays (shapes, dtypes and bytes), as the loop sees them."""
+    digest = hashlib.sha256()
+    for array in (X, y, *(validation or ())):
+        digest.update(f"{array.dtype.name}{array.shape};".encode("ascii"))
+        digest.update(np.ascontiguousarray(array).data)
+    return digest.hexdigest()
+
+
+def _brief(value: Any) -> str:
+    """``repr`` of a setting, a SHA-256 shortened to its first 12 digits."""
+    text = repr(value)
+    return text[:13] + "...'" if isinstance(value, str) and len(value) == 64 else text

@@ -10,7 +10,12 @@ and failures into one line on stderr:
   malformed file, a non-numeric cell, a tampered model file, a failed
   gradient check, diverged training);
 - exit status 2: the command line is wrong (an unknown option, a bad value, a
-  column name that is not in the file).
+  column name that is not in the file);
+- exit status 141: the output pipe was closed by its reader
+  (``tinyprop check m.npz | head -2``); nothing more is printed.
+
+Running out of memory and numerical warnings (overflow and the like) are
+failures reported in one line too, never a traceback or a warning.
 
 No traceback is shown for these; one would mean a bug in tinyprop.
 """
@@ -18,7 +23,9 @@ No traceback is shown for these; one would mean a bug in tinyprop.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
+import warnings
 from typing import NoReturn, Sequence
 
 from .._version import __version__
@@ -49,6 +56,19 @@ Commands:
 'tinyprop <command> --help' shows a command's options; 'tinyprop docs' lists the guides shipped with
 tinyprop and 'tinyprop docs cli' prints the full guide to the command line.
 """
+
+
+BROKEN_PIPE = 141  # the status of a command-line tool stopped by SIGPIPE (128 + 13)
+
+
+def _discard_stdout() -> None:
+    """Point stdout at the null device, so that the interpreter's final flush does not fail again."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):  # stdout replaced by an object without a descriptor
+        pass
 
 
 class _Parser(argparse.ArgumentParser):
@@ -89,10 +109,25 @@ def main(argv: Sequence[str] | None = None) -> int:
         subparsers[args.command].error(f"unrecognized arguments: {' '.join(unknown)}")
     prefix = f"tinyprop {args.command}: error:"
     try:
-        return COMMANDS[args.command].run(args)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", RuntimeWarning)  # numerical trouble ends in one line, never a warning
+            status = COMMANDS[args.command].run(args)
+        sys.stdout.flush()  # a closed pipe shows here, not at interpreter exit
+        return status
     except CommandError as exc:
         print(f"{prefix} {option_words(str(exc))}", file=sys.stderr)
         return exc.status
+    except BrokenPipeError:  # the reader went away (`tinyprop check m.npz | head -2`): stop quietly
+        _discard_stdout()
+        return BROKEN_PIPE
+    except MemoryError as exc:
+        detail = f" ({exc})" if str(exc) else ""
+        print(f"{prefix} not enough memory{detail}; use a smaller network or a smaller data file", file=sys.stderr)
+        return 1
+    except RuntimeWarning as exc:
+        print(f"{prefix} numerical problem: {exc}; the data or the model hold values outside the range they can be "
+              "computed in", file=sys.stderr)
+        return 1
     except OSError as exc:  # a file that could not be read or written, reported without a traceback
         print(f"{prefix} {describe_os_error(exc)}", file=sys.stderr)
         return 1

@@ -53,8 +53,7 @@ def class_targets(table: CsvTable, targets: list[str], marked: list[str] | None)
         raise CommandError(f"--classes names {', '.join(map(repr, strays))}, which {verb} not among --targets", USAGE)
     found = []
     for name in targets:
-        index = table.columns.index(name)
-        if name in marked or is_text_column([row[index] for row in table.rows]):
+        if name in marked or is_text_column([cells[0] for _, cells in table.cells([name])]):
             found.append(name)
     return found
 
@@ -99,9 +98,8 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     """Fit, measure, save and report a classifier for the class column ``target``."""
     started = time.perf_counter()
     X, _ = numeric_columns(table, inputs, [])
-    index = table.columns.index(target)
     try:
-        labels = label_cells([row[index] for row in table.rows], table.line_numbers, target, table.path)
+        labels = label_cells([cells[0] for _, cells in table.cells([target])], table.line_number, target, table.path)
     except CsvError as exc:
         raise CommandError(str(exc)) from None
     classes, indices = encode_labels(labels)

@@ -2,17 +2,17 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
 import sys
-from dataclasses import replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterator, Sequence
 
 import numpy as np
 
-from ..archive import read_archive
+from ..archive import read_archive, write_bytes_atomically
 from ..csvdata import CsvError, CsvTable, read_csv
 from ..modelfile import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
@@ -117,26 +117,37 @@ _UNIT = re.compile(r"(?P<name>.*?\S)\s+\[(?P<unit>[^\[\]]*)\]")  # a space befor
 
 
 def split_units(table: CsvTable) -> tuple[CsvTable, dict[str, str]]:
+    """The table with its header cells ``name [unit]`` renamed ``name``, and a dict of the units.
+
+    See :func:`split_header`. Two cells that give one name are refused (:class:`CsvError`).
+    """
+    try:
+        names, units = split_header(table.columns)
+    except ValueError as exc:
+        raise CsvError(f"{table.path}: {exc}") from None
+    return table.renamed(names), units
+
+
+def split_header(cells: Sequence[str]) -> tuple[tuple[str, ...], dict[str, str]]:
     """A header cell ``name [unit]`` names the column ``name`` and gives its unit ``unit``.
 
-    Returns the table with the bare names and a dict of the units. A cell
-    without a space and ``[...]`` at its end (``note``, ``x[0]``) is a name
-    with no unit. Two cells that give one name are refused (:class:`CsvError`).
+    A cell without a space and ``[...]`` at its end (``note``, ``x[0]``) is a
+    name with no unit. Two cells that give one name raise ``ValueError``.
 
-    >>> table, units = split_units(CsvTable("p.csv", ("speed [rpm]", "head [m]", "note", "x[0]"), (), ()))
-    >>> table.columns, units
+    >>> split_header(("speed [rpm]", "head [m]", "note", "x[0]"))
     (('speed', 'head', 'note', 'x[0]'), {'speed': 'rpm', 'head': 'm'})
     """
-    names, units = [], {}
-    for cell in table.columns:
+    names: list[str] = []
+    units: dict[str, str] = {}
+    for cell in cells:
         match = _UNIT.fullmatch(cell)
         name = match["name"] if match else cell
         if name in names:
-            raise CsvError(f"{table.path}: the header names the column {name!r} twice (with its unit or without)")
+            raise ValueError(f"the header names the column {name!r} twice (with its unit or without)")
         names.append(name)
         if match and match["unit"].strip():
             units[name] = match["unit"].strip()
-    return replace(table, columns=tuple(names)), units
+    return tuple(names), units
 
 
 def _read_csv(path: str, delimiter: str) -> CsvTable:
@@ -159,12 +170,33 @@ def require_columns(table: CsvTable, names: list[str], what: str) -> None:
         raise CommandError(str(exc), USAGE) from None
 
 
-def numeric_columns(table: CsvTable, inputs: list[str], targets: list[str]) -> tuple[np.ndarray, np.ndarray]:
-    """``(X, y)``: the input and target columns as float64 arrays; a cell that is not a number fails the command."""
+def numeric_columns(
+    table: CsvTable, inputs: list[str], targets: list[str], *, default_inputs: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
+    """``(X, y)``: the input and target columns as float64 arrays; bad cells fail the command.
+
+    Every bad cell of the used columns is reported at once (up to
+    :data:`tinyprop.csvdata.MAX_PROBLEMS` described, the rest counted). With
+    ``default_inputs`` (``--inputs`` not given), a column holding text gets a
+    hint that ``--inputs`` leaves it out.
+    """
     try:
-        return table.numeric(inputs), table.numeric(targets)
+        values = table.numeric([*inputs, *targets])
     except CsvError as exc:
-        raise CommandError(str(exc)) from None
+        raise CommandError(str(exc) + _text_column_hint(exc, inputs if default_inputs else [], len(table))) from None
+    return np.ascontiguousarray(values[:, : len(inputs)]), np.ascontiguousarray(values[:, len(inputs):])
+
+
+def _text_column_hint(exc: CsvError, default_inputs: list[str], n_rows: int) -> str:
+    """A hint naming the input columns that hold text (in most rows), when ``--inputs`` was not given."""
+    text = sorted({p.column for p in exc.problems if p.kind == "text" and p.column in default_inputs
+                   and 2 * exc.counts.get(p.column, 0) > n_rows}, key=default_inputs.index)
+    if not text:
+        return ""
+    hint = (f"{', '.join(map(repr, text))} {'holds' if len(text) == 1 else 'hold'} text; without --inputs every column "
+            "that is not a target is an input: name the input columns with --inputs to leave "
+            f"{'it' if len(text) == 1 else 'them'} out")
+    return ("; " if len(exc.problems) == 1 and not exc.more else "\n  ") + hint
 
 
 def stored_names(metadata: dict, key: str) -> list[str] | None:
@@ -189,10 +221,37 @@ def output_folder(path: str | os.PathLike[str]) -> Path:
 
 
 def write_json(path: Path, document: dict[str, Any]) -> Path:
-    """Write ``document`` as indented UTF-8 JSON (strict: no NaN or infinity)."""
+    """Write ``document`` as indented UTF-8 JSON (strict: no NaN or infinity), atomically.
+
+    Readers see the previous file or the complete new one, never a mix
+    (:func:`tinyprop.archive.write_bytes_atomically`).
+    """
     text = json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False)
-    path.write_text(text + "\n", encoding="utf-8")
+    write_bytes_atomically(path, (text + "\n").encode("utf-8"))
     return path
+
+
+@contextlib.contextmanager
+def files_together(folder: Path) -> Iterator[None]:
+    """Hold an exclusive lock on ``folder`` while writing files that must match each other (a model and its report).
+
+    Two commands writing the same model file then write model and report one
+    after the other, never interleaved, so the report on disk always
+    describes the model on disk. POSIX advisory lock (``flock`` on the
+    folder); elsewhere the files are still each written atomically.
+    """
+    try:
+        import fcntl
+    except ImportError:  # Windows
+        yield
+        return
+    descriptor = os.open(folder, os.O_RDONLY)
+    try:
+        fcntl.flock(descriptor, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(descriptor)  # releases the lock
+
 
 
 def write_plots(

@@ -74,6 +74,7 @@ def run(args: argparse.Namespace) -> int:
     else:
         X, y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"
+    _refuse_overflowing_rows(net, X, y, source)
     try:
         report = check_gradient(net, X, y, MeanSquaredError(), tolerance=args.tolerance,
                                 parameters=args.parameters, seed=args.seed)
@@ -88,6 +89,20 @@ def run(args: argparse.Namespace) -> int:
               f"{report.max_rel_error:.2e} > tolerance {report.tolerance:.0e})", file=sys.stderr)
         return 1
     return 0
+
+
+def _refuse_overflowing_rows(net: Network, X: np.ndarray, y: np.ndarray, source: str) -> None:
+    """Refuse rows on which the loss itself overflows: no gradient, analytic or numerical, is meaningful there."""
+    with np.errstate(all="ignore"):
+        residual = np.asarray(net.predict(X), dtype=np.float64) - y
+        per_row = np.sum(residual * residual, axis=1)
+    bad = np.flatnonzero(~np.isfinite(per_row))
+    if bad.size:
+        raise CommandError(
+            f"cannot check on these rows: the squared error overflows on {bad.size} of the {source} (the first is "
+            f"row {int(bad[0])} of those checked, largest |value| {float(np.max(np.abs(X[bad[0]]))):.3g}); "
+            "check on rows within the range the model is used on"
+        )
 
 
 def _generated_rows(net: Network, rows: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
@@ -117,5 +132,6 @@ def _rows_from_csv(
     table = read_table(args.data, args.delimiter)
     for option, names in (("--inputs", inputs), ("--targets", targets)):
         require_columns(table, names, labels[option])
-    chosen = np.sort(rng.choice(len(table.rows), size=min(args.rows, len(table.rows)), replace=False))
-    return numeric_columns(table.subset(chosen.tolist()), inputs, targets)
+    X, y = numeric_columns(table, inputs, targets)  # the whole file is checked, not only the rows drawn
+    chosen = np.sort(rng.choice(len(table), size=min(args.rows, len(table)), replace=False))
+    return X[chosen], y[chosen]

@@ -11,12 +11,14 @@ columns of a ``--calibration`` CSV file.
 from __future__ import annotations
 
 import argparse
+import sys
 from typing import Any
 
 import numpy as np
 
 from ..classify import class_entry
-from ..export import check_name, export_c, export_c_fixed_point, export_python
+from ..export import export_c, export_c_fixed_point, export_python
+from ..export._identifiers import check_c_name, check_module_name
 from ..export.classes import fixed_point_class_agreement
 from ..modelfile import ModelFile
 from . import _args
@@ -37,6 +39,11 @@ from ._imports import add_import_option, import_modules
 HELP = "write C99 and/or plain-Python inference code for a model file"
 
 LANGUAGES = ("c", "python", "c-fixed")
+_NAME_CHECKS = {  # what each language's export requires of --name
+    "c": check_c_name,
+    "python": check_module_name,
+    "c-fixed": lambda name: check_c_name(f"{name}_q"),
+}
 DEFAULT_LANGUAGES = ("c", "python")
 _EXPORTED_KEYS = ("inputs", "outputs", "description")
 
@@ -66,11 +73,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    try:
-        check_name(args.name)
-    except ValueError as exc:
-        raise CommandError(f"--name: {exc}", USAGE) from None
     languages = args.language or list(DEFAULT_LANGUAGES)
+    for language in dict.fromkeys(languages):  # every language's rule, before anything is written
+        try:
+            _NAME_CHECKS[language](args.name)
+        except ValueError as exc:
+            raise CommandError(f"--name: {exc} (for --language {language})", USAGE) from None
     if ("c-fixed" in languages) != (args.calibration is not None):
         raise CommandError("--language c-fixed needs --calibration DATA.csv" if args.calibration is None else
                            "--calibration applies to --language c-fixed", USAGE)
@@ -105,10 +113,32 @@ def run(args: argparse.Namespace) -> int:
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
     if report is not None:
         print(report)
-    if agreement is not None:
-        print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
+        if agreement is not None:
+            print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
         for warning in report.warnings:
             warn("export", warning)
+        return _judge_fixed_point_error(report, args.headroom)
+    return 0
+
+
+USELESS_ERROR = 1.0  # integer code whose largest error exceeds the output range is refused (exit 1)
+POOR_ERROR = 0.1  # above a tenth of the output range: a warning
+
+
+def _judge_fixed_point_error(report: Any, headroom: float) -> int:
+    """Exit status 1 when the integer code's error on the calibration rows exceeds the output range; warn above 10 %."""
+    relative = np.nan_to_num(report.max_rel_error, nan=0.0)
+    worst = int(np.argmax(relative))
+    share = float(relative[worst])
+    if share <= POOR_ERROR:
+        return 0
+    text = (f"the integer code's largest error on the calibration rows is {100 * share:.3g}% of output {worst}'s "
+            f"range; its formats keep too few fractional bits: lower --headroom (now {headroom:g})")
+    if share > USELESS_ERROR:
+        print(f"tinyprop export: error: {text}; the files were written for inspection but are not usable",
+              file=sys.stderr)
+        return 1
+    warn("export", text)
     return 0
 
 

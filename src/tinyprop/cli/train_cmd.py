@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import argparse
-import hashlib
 import os
 import sys
 import textwrap
 import time
 from pathlib import Path
 from typing import Any
+
+import numpy as np
 
 from .._words import count
 from ..csvdata import CsvTable
@@ -34,6 +35,7 @@ from ._common import (
     USAGE,
     CommandError,
     describe_os_error,
+    files_together,
     numeric_columns,
     output_folder,
     read_table_and_units,
@@ -156,6 +158,7 @@ def run(args: argparse.Namespace) -> int:
     data = _dataset(args, table, units, targets, inputs)
     read_seconds = time.perf_counter() - started
     split = split_for_command(data.X.shape[0], settings)
+    _refuse_a_network_too_large(data.X.shape[1], settings.hidden, data.y.shape[1], settings.dtype)
     recipe = settings.method in RECIPE_METHODS
     net = None if recipe else build_network(data, split, settings)
     try:  # the recipe's methods build their network during the fit: no parameter count yet
@@ -193,19 +196,21 @@ def run(args: argparse.Namespace) -> int:
         extra["uncertainty"] = least_squares_uncertainty(net, data, split)
     evaluate_seconds = time.perf_counter() - started
     _print_metrics(metrics, data)
+    _refuse_a_fit_worse_than_the_mean(metrics, data, split)
     if "uncertainty" in extra:
         print(_uncertainty_line(extra["uncertainty"]))
 
     started = time.perf_counter()
     metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome)
-    try:
-        digest = save(net, model_path, metadata=metadata)
-    except OSError as exc:
-        raise CommandError(f"cannot write the model file: {describe_os_error(exc)}") from None
-    save_seconds = time.perf_counter() - started
     extra["model_file"] = os.fspath(model_path)
-    timings = {"read": read_seconds, "evaluate": evaluate_seconds, "save": save_seconds}
-    write_json(report_path, report("train", net, data, split, settings, outcome, metrics, timings, extra))
+    with files_together(model_path.parent):  # the report on disk always describes the model on disk
+        try:
+            digest = save(net, model_path, metadata=metadata)
+        except OSError as exc:
+            raise CommandError(f"cannot write the model file: {describe_os_error(exc)}") from None
+        save_seconds = time.perf_counter() - started
+        timings = {"read": read_seconds, "evaluate": evaluate_seconds, "save": save_seconds}
+        write_json(report_path, report("train", net, data, split, settings, outcome, metrics, timings, extra))
     print(f"wrote {model_path} (fingerprint {digest})")
     print(f"wrote {report_path}")
     if plots is not None:
@@ -269,11 +274,10 @@ def _flag(option: str) -> str:
 
 def _dataset(args: argparse.Namespace, table: CsvTable, units: dict[str, str], targets: list[str],
              inputs: list[str]) -> Dataset:
-    X, y = numeric_columns(table, inputs, targets)
-    with open(args.data, "rb") as handle:
-        digest = hashlib.sha256(handle.read()).hexdigest()
+    X, y = numeric_columns(table, inputs, targets, default_inputs=args.inputs is None)
+    # the digest of the bytes parsed (read once: a pipe such as /dev/stdin gives the same digest)
     used = {name: unit for name, unit in units.items() if name in inputs or name in targets}
-    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": digest}, used)
+    return Dataset(X, y, tuple(inputs), tuple(targets), {"path": os.fspath(args.data), "sha256": table.sha256}, used)
 
 
 def _columns(table: CsvTable, targets: list[str], inputs: list[str] | None) -> tuple[list[str], list[str]]:
@@ -322,6 +326,58 @@ def _uncertainty_line(uncertainty: dict[str, Any]) -> str:
     return (f"parameter uncertainty: residual sd {parameters['residual_sd']:.4g}, condition number "
             f"{parameters['condition_number']:.2g}; {100 * interval['level']:g}% prediction interval on the training "
             f"rows {widths} (per-parameter standard errors and input sensitivities in the report)")
+
+
+def _refuse_a_network_too_large(n_in: int, hidden: Any, n_out: int, dtype: str) -> None:
+    """Refuse ``--hidden`` widths whose weights alone would not fit in this machine's memory.
+
+    ``hidden`` is ``None`` when the recipe chooses the widths itself.
+    """
+    if hidden is None:
+        return
+    widths = [n_in, *hidden, n_out]
+    n_params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
+    needed = n_params * np.dtype(dtype).itemsize
+    available = _physical_memory()
+    if available is not None and needed > available:
+        raise CommandError(
+            f"--hidden {','.join(map(str, hidden))}: the network would have {n_params} parameters, "
+            f"{needed / 2**30:.3g} GiB for the weights alone, more than this machine's memory "
+            f"({available / 2**30:.3g} GiB); use narrower layers", USAGE
+        )
+
+
+def _physical_memory() -> int | None:
+    try:
+        return os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (AttributeError, ValueError, OSError):  # not available on this platform
+        return None
+
+
+FAR_ABOVE_THE_MEAN = 10.0
+"""A fit whose RMSE exceeds this multiple of the RMSE of predicting the training mean has failed (our choice)."""
+
+
+def _refuse_a_fit_worse_than_the_mean(metrics: dict[str, Any], data: Dataset, split: Any) -> None:
+    """Fail the command when the fit ended far worse than predicting the mean of the training targets.
+
+    Only non-finite losses count as divergence in the training loop; a run
+    whose weights blew up to large but finite values (a learning rate far too
+    high) ends here instead. Compared on the validation rows, or the training
+    rows without them.
+    """
+    part = "validation" if metrics.get("validation") else "training"
+    rows = getattr(split, part)
+    mean = data.y[split.training].mean(axis=0)
+    baseline = np.sqrt(np.mean((data.y[rows] - mean) ** 2, axis=0))
+    for j, name in enumerate(data.target_names):
+        rmse = metrics[part]["targets"][name]["rmse"]
+        if baseline[j] > 0 and not rmse <= FAR_ABOVE_THE_MEAN * baseline[j]:
+            raise CommandError(
+                f"fitting failed: the {part} RMSE of {name!r} is {rmse:.4g}, {rmse / baseline[j]:.3g} times the RMSE "
+                f"of predicting the training mean ({baseline[j]:.4g}); the weights ran away without overflowing, "
+                "usually from a learning rate far too high: lower --learning-rate (nothing was written)"
+            )
 
 
 def _print_metrics(metrics: dict[str, Any], data: Dataset) -> None:

@@ -204,6 +204,11 @@ def vector_bits(largest: float, headroom: float) -> int:
     """The largest ``f`` in ``[F_MIN, F_MAX]`` with ``headroom * largest * 2**f <= 32767`` (15 for 0)."""
     if largest == 0.0:
         return 15
+    if not math.isfinite(headroom * largest):
+        raise ValueError(
+            f"a calibrated magnitude of {largest:.3g} times headroom {headroom:g} overflows float64; no fixed-point "
+            "format can hold it: calibrate on the operating range or lower the headroom"
+        )
     return _fit(headroom * largest, INT16_MAX)
 
 
@@ -257,14 +262,20 @@ def calibration_ranges(plan: Plan, X: np.ndarray) -> list[np.ndarray]:
     v = np.asarray(X, dtype=np.float64)
     ranges = [np.max(np.abs(v), axis=0)]
     for step in plan.steps:
-        if isinstance(step, AffineStep):
-            v = v @ step.weight.T.astype(np.float64)
-            if step.bias is not None:
-                v = v + step.bias.astype(np.float64)
-        elif isinstance(step, ScalingStep):
-            v = v * step.gain.astype(np.float64) + step.offset.astype(np.float64)
-        else:
-            v = step.activation.value(v)
+        with np.errstate(all="ignore"):  # an overflow is reported below, naming the step
+            if isinstance(step, AffineStep):
+                v = v @ step.weight.T.astype(np.float64)
+                if step.bias is not None:
+                    v = v + step.bias.astype(np.float64)
+            elif isinstance(step, ScalingStep):
+                v = v * step.gain.astype(np.float64) + step.offset.astype(np.float64)
+            else:
+                v = step.activation.value(v)
+        if not np.isfinite(v).all():
+            raise ValueError(
+                f"the calibration rows overflow float64 at layer {step.layer} (largest input magnitude "
+                f"{float(ranges[0].max()):.3g}): no fixed-point format can hold them; calibrate on the operating range"
+            )
         ranges.append(np.max(np.abs(v), axis=0))
     return ranges
 
