@@ -249,8 +249,8 @@ def test_a_column_of_plus_minus_1e308_trains(tmp_path, capsys):
     rows = ["a,b,y"] + [f"{float(a) * 1e308!r},{float(b)!r},{float(a + b)!r}" for a, b in x]
     (tmp_path / "huge.csv").write_text("\n".join(rows) + "\n")
     with np.errstate(over="raise", invalid="raise", divide="raise"):
-        status, _, err = _run(tmp_path, ["train", "{f}/huge.csv", "--targets", "y", MB, "--hidden", "4", "--epochs", "5",
-                                         "--quiet",
-                                         "--out", "{f}/huge.npz"], capsys)
+        arguments = ["train", "{f}/huge.csv", "--targets", "y", MB, "--hidden", "4", "--epochs", "5", "--quiet",
+                     "--out", "{f}/huge.npz"]
+        status, _, err = _run(tmp_path, arguments, capsys)
     assert status == 0 and err == ""
     assert np.isfinite(tp.load(tmp_path / "huge.npz").predict(x * [1e308, 1])).all()
