@@ -124,3 +124,16 @@ def test_result_of_another_network_is_refused():
     plain = solve(fitted, X, Y, method="blocked-levenberg-marquardt")
     with pytest.raises(ValueError, match="keeps no Jacobian"):
         tp.parameter_uncertainty(fitted, result=plain)
+
+
+def test_three_rows_drive_the_weights_to_zero_without_overflow():
+    # synthetic: y = sin(3x) at x = -1, 0, 1. With 61 parameters the evidence keeps almost none
+    # (the fit tends to the mean); alpha = gamma / ||theta||^2 used to run to ~1e304 and overflow
+    # in the step ("overflow encountered in multiply"); it is now kept within 1e12 of the data term
+    X = np.array([[-1.0], [0.0], [1.0]])
+    y = np.sin(3 * X)
+    with np.errstate(all="raise"):
+        net, result = tp.fit_tabular_regression(X, y, seed=0)
+    fit = result.solved
+    assert np.isfinite(fit.penalty) and fit.effective_parameters < 1
+    assert np.all(np.isfinite(net.predict(X)))

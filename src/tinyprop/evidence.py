@@ -83,6 +83,9 @@ class Hyperparameters:
         return float(self.beta @ half_squares + 0.5 * self.alpha * (theta @ theta))
 
 
+_ALPHA_ROOM = 1e12  # largest ratio of alpha to the mean diagonal of sum_k beta_k A_k (see reestimate)
+
+
 def initial(normal: NormalEquations, theta: np.ndarray, penalty: float | None) -> Hyperparameters:
     """Starting values: ``beta_k = n / (2 E_k)`` (noise = the starting residuals' rms) and
     ``alpha = p / ||theta||^2`` (prior variance = the starting weights' mean square), or the fixed ``penalty``.
@@ -108,7 +111,9 @@ def reestimate(normal: NormalEquations, theta: np.ndarray, hyper: Hyperparameter
     ``H^-1`` comes from the Cholesky factor of ``H`` (positive definite when
     ``alpha > 0``). ``beta_k`` is kept below ``n / (2 E_k) * 1e12`` and
     ``n - gamma_k`` at least ``1e-3 n`` so that a fit through every point
-    (``E_k -> 0``) cannot make it infinite.
+    (``E_k -> 0``) cannot make it infinite; likewise ``alpha`` is kept below
+    ``1e12`` times the mean diagonal of ``sum_k beta_k A_k``, so that weights
+    driven to zero (``||theta|| -> 0``, a few rows) cannot make it overflow.
     """
     from scipy import linalg  # imported where used: `import tinyprop` stays numpy-only
 
@@ -124,6 +129,11 @@ def reestimate(normal: NormalEquations, theta: np.ndarray, hyper: Hyperparameter
     if not hyper.fixed_alpha:
         gamma = p - hyper.alpha * float(np.trace(inverse))
         alpha = max(gamma, 1e-3) / max(float(theta @ theta), tiny)
+        # at most _ALPHA_ROOM times the data term's mean curvature: beyond that the weights are zero to
+        # working precision, and alpha = gamma / ||theta||^2 would run to overflow as theta -> 0 (tiny data)
+        data_curvature = float(np.einsum("k,kii->", beta, normal.matrices)) / p
+        if data_curvature > 0:
+            alpha = min(alpha, _ALPHA_ROOM * data_curvature)
     return replace(hyper, alpha=alpha, beta=beta, gamma_per_target=gamma_k)
 
 
