@@ -18,7 +18,7 @@ after every successful step). Each iteration:
 
    with Marquardt's diagonal scaling ``D = diag(d_j)``, ``d_j`` the largest
    ``H_jj`` seen so far (Moré (1978), "The Levenberg-Marquardt algorithm:
-   implementation and theory", Lecture Notes in Mathematics 630, eq. 6.4: the
+   implementation and theory", in G. A. Watson (ed.), Numerical Analysis, Springer, eq. 6.4: the
    running maximum keeps the scaling from shrinking), which makes the step
    independent of the units of the parameters;
 
