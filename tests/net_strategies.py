@@ -48,6 +48,7 @@ LOSSES = (
     tp.MeanSquaredError(),
     tp.HuberError(0.5),
     tp.CrossEntropyOnSigmoid(),
+    tp.CrossEntropyOnSigmoid(target_weights=(0.5, 3.0)),
     tp.CrossEntropyOnSoftmax(),
 )
 

@@ -38,12 +38,14 @@ def test_softmax_cross_entropy_gradient_on_class_targets_at_every_depth(depth, w
 
 
 @pytest.mark.parametrize("depth", [1, 2, 3, 4, 5, 6])
-def test_sigmoid_cross_entropy_gradient_on_yes_no_targets_at_every_depth(depth):
+@pytest.mark.parametrize("weights", [(1.0, 1.0), (0.4, 3.0)])
+def test_sigmoid_cross_entropy_gradient_on_yes_no_targets_at_every_depth(depth, weights):
+    """Backprop of the yes/no loss (plain and with class weights for targets 0 and 1) vs scipy.differentiate."""
     rng = np.random.default_rng(10 + depth)
     net = tp.build_mlp([2] + [4] * (depth - 1) + [1], activation=tp.Tanh(), seed=depth)
     X = rng.normal(size=(6, 2))
     y = rng.integers(0, 2, size=(6, 1)).astype(float)
-    report = tp.check_gradient(net, X, y, tp.CrossEntropyOnSigmoid())
+    report = tp.check_gradient(net, X, y, tp.CrossEntropyOnSigmoid(target_weights=weights))
     assert report.passed and report.max_rel_error <= 1e-6, str(report)
 
 
@@ -51,10 +53,9 @@ def test_sigmoid_cross_entropy_gradient_on_yes_no_targets_at_every_depth(depth):
 @settings(max_examples=60, deadline=None)
 @given(networks(max_depth=4, max_width=6), st.integers(1, 6), st.integers(0, 999), st.floats(0.1, 300.0))
 def test_predicted_probabilities_are_in_0_1_and_sum_to_one(net, n, seed, spread):
-    """Softmax with the maximum subtracted: finite, in [0, 1], rows summing to 1 even for huge logits."""
-    if net.n_out < 2:
-        reject()
-    labels = tuple(f"c{k}" for k in range(net.n_out))
+    """Softmax with the maximum subtracted, or the two-branch sigmoid for one output (two classes): finite,
+    in [0, 1], rows summing to 1 even for huge logits; the decision is the largest logit, or z > 0."""
+    labels = tuple(f"c{k}" for k in range(max(net.n_out, 2)))
     classifier = tp.Classifier(net, labels)
     X = np.random.default_rng(seed).normal(scale=spread, size=(n, net.n_in))
     with np.errstate(over="ignore"):
@@ -64,12 +65,20 @@ def test_predicted_probabilities_are_in_0_1_and_sum_to_one(net, n, seed, spread)
     p = classifier.probabilities(X)
     assert p.dtype == net.dtype and np.all(p >= 0) and np.all(p <= 1)
     tol = 1e-12 if net.dtype == np.float64 else 1e-5
-    np.testing.assert_allclose(p.sum(axis=1), 1.0, rtol=0, atol=tol * net.n_out)
+    np.testing.assert_allclose(p.sum(axis=1), 1.0, rtol=0, atol=tol * len(labels))
     decided = classifier.predict_indices(X)
-    assert np.array_equal(decided, np.argmax(logits, axis=1))
+    expected = (logits[:, 0] > 0).astype(int) if net.n_out == 1 else np.argmax(logits, axis=1)
+    assert np.array_equal(decided, expected)
+    assert classifier.decision == ("sigmoid" if net.n_out == 1 else "softmax")
     # the decided class has a largest probability (logits a few ulp apart may round to equal probabilities)
     assert np.array_equal(p[np.arange(n), decided], p.max(axis=1))
-    assert list(classifier.predict_labels(X)) == [labels[k] for k in np.argmax(logits, axis=1)]
+    assert list(classifier.predict_labels(X)) == [labels[k] for k in expected]
+    if net.n_out == 1:  # handbook logistic, p1 = 1 / (1 + exp(-z)), in float64 where it does not overflow
+        z = logits[:, 0].astype(np.float64)
+        safe = np.abs(z) < 700
+        tiny = float(np.finfo(net.dtype).tiny)  # below it (subnormal) the dtype keeps no relative precision
+        np.testing.assert_allclose(p[safe, 1], 1 / (1 + np.exp(-z[safe])), rtol=10 * tol, atol=tiny)
+        np.testing.assert_allclose(p[safe, 0], 1 / (1 + np.exp(z[safe])), rtol=10 * tol, atol=tiny)
 
 
 def test_softmax_of_two_logits_is_the_sigmoid_of_their_difference():
@@ -211,6 +220,22 @@ def test_softmax_curvature_is_the_numerical_hessian_of_the_cross_entropy(k, seed
     np.testing.assert_allclose(softmax_curvature(z[None, :])[0], reference, rtol=0, atol=1e-6)
 
 
+@settings(max_examples=30, deadline=None)
+@given(st.integers(0, 999), st.floats(0.1, 8.0), st.sampled_from([0.0, 1.0]))
+def test_one_logit_curvature_is_the_numerical_second_derivative_of_the_sigmoid_cross_entropy(seed, spread, y):
+    """p (1 - p) against scipy.differentiate.derivative of the first derivative sigmoid(z) - y (external reference)."""
+    from scipy import differentiate
+
+    from tinyprop.classify import logit_curvature
+
+    z = np.random.default_rng(seed).normal(scale=spread, size=3)
+    loss = tp.CrossEntropyOnSigmoid()
+    reference = differentiate.derivative(
+        lambda v: np.array([loss.gradient(t.reshape(1, 1), np.array([[y]]))[0, 0] for t in np.ravel(v)]).reshape(
+            np.shape(v)), z, initial_step=0.5).df
+    np.testing.assert_allclose(logit_curvature(z[:, None])[:, 0, 0], reference, rtol=0, atol=1e-8)
+
+
 def test_recipe_refuses_bad_arguments_with_what_arrived():
     X, states = machine_states(40, seed=0)
     with pytest.raises(ValueError, match="one entry per row"):
@@ -234,15 +259,77 @@ def test_classifier_labels_survive_a_model_file(tmp_path):
         tp.Classifier.from_metadata(model.network, {})
     with pytest.raises(ValueError, match="3 outputs but 2 labels"):
         tp.Classifier(net, ("a", "b"))
+    with pytest.raises(ValueError, match="1 output but 3 labels"):
+        tp.Classifier(tp.build_mlp([4, 1], seed=0), ("a", "b", "c"))
 
 
-def test_a_yes_no_column_is_two_classes_whose_probability_is_the_sigmoid_of_the_logit_difference():
-    """Synthetic pump readings, 'is it cavitating?': two logits, p(yes) = 1 / (1 + exp(-(z_yes - z_no)))."""
+def test_a_model_file_without_a_recorded_decision_is_a_two_logit_softmax(tmp_path):
+    """A yes/no model file as written before the decision was recorded ("classes" has target and labels only,
+    two logits) loads and decides as before; a recorded decision that contradicts the network is refused."""
+    net = tp.build_mlp([3, 4, 2], seed=1)
+    old = {"classes": {"target": "cavitating", "labels": ["no", "yes"]}}
+    tp.save(net, tmp_path / "old.npz", metadata={"description": "synthetic", **old})
+    model = tp.load_model_file(tmp_path / "old.npz")
+    classifier = tp.Classifier.from_metadata(model.network, model.metadata)
+    X = np.random.default_rng(0).normal(size=(20, 3))
+    z = net.predict(X)
+    assert classifier.decision == "softmax"
+    assert list(classifier.predict_labels(X)) == [("no", "yes")[k] for k in np.argmax(z, axis=1)]
+    np.testing.assert_allclose(classifier.probabilities(X), softmax(z), rtol=1e-15)
+    with pytest.raises(ValueError, match="records the class decision 'sigmoid'"):
+        tp.Classifier.from_metadata(net, {"classes": {"labels": ["no", "yes"], "decision": "sigmoid"}})
+    one = tp.build_mlp([3, 1], seed=1)
+    again = tp.Classifier.from_metadata(one, tp.Classifier(one, ("no", "yes")).metadata())
+    assert again.decision == "sigmoid"
+
+
+def test_a_yes_no_column_gets_one_sigmoid_output_and_the_two_logit_softmax_stays_selectable():
+    """Synthetic pump readings, 'is it cavitating?': one logit z, p(yes) = 1 / (1 + exp(-z)) (handbook logistic);
+    with two_class_output='softmax' two logits, p(yes) = 1 / (1 + exp(-(z_yes - z_no))). Both decide well."""
     X, states = machine_states(200, seed=8)
     answers = np.where(states == "cavitation", "yes", "no")
-    fitted = tp.fit_tabular_classification(X, answers, hidden=6, epochs=40, penalty=1e-3)
-    classifier = fitted.classifier
-    assert classifier.labels == ("no", "yes") and classifier.net.n_out == 2
-    z = classifier.logits(X)
-    np.testing.assert_allclose(classifier.probabilities(X)[:, 1], 1 / (1 + np.exp(-(z[:, 1] - z[:, 0]))), rtol=1e-12)
-    assert np.mean(classifier.predict_labels(X) == answers) > 0.85
+    for output, n_out in (("sigmoid", 1), ("softmax", 2)):
+        fitted = tp.fit_tabular_classification(X, answers, hidden=6, epochs=40, penalty=1e-3, two_class_output=output)
+        classifier = fitted.classifier
+        assert classifier.labels == ("no", "yes") and classifier.net.n_out == n_out
+        assert classifier.decision == output and classifier.metadata()["classes"]["decision"] == output
+        z = classifier.logits(X)
+        difference = z[:, 0] if n_out == 1 else z[:, 1] - z[:, 0]
+        p = classifier.probabilities(X)
+        np.testing.assert_allclose(p[:, 1], 1 / (1 + np.exp(-difference)), rtol=1e-12)
+        np.testing.assert_allclose(p[:, 0], 1 - p[:, 1], rtol=0, atol=1e-15)
+        assert np.mean(classifier.predict_labels(X) == answers) > 0.85
+    with pytest.raises(ValueError, match="two_class_output must be one of"):
+        tp.fit_tabular_classification(X, answers, two_class_output="logistic")
+
+
+def test_four_classes_ignore_the_two_class_output():
+    X, states = machine_states(60, seed=1)
+    fitted = tp.fit_tabular_classification(X, states, hidden=3, epochs=2, penalty=1e-3, two_class_output="sigmoid")
+    assert fitted.classifier.net.n_out == 4 and fitted.classifier.decision == "softmax"
+
+
+@pytest.mark.parametrize("class_weights", [None, "balanced"])
+def test_evidence_rounds_work_for_one_sigmoid_output(class_weights):
+    """MacKay (1992) on a yes/no column (synthetic pump, 'cavitating?'): the update alpha = gamma / sum ||W||^2,
+    with the curvature p (1 - p) of the one logit times the row's class weight."""
+    X, states = machine_states(120, seed=7)
+    answers = np.where(states == "cavitation", "yes", "no")
+    fitted = tp.fit_tabular_classification(X, answers, hidden=5, epochs=30, seed=2, class_weights=class_weights)
+    net = fitted.classifier.net
+    assert net.n_out == 1 and 1 <= len(fitted.evidence) <= 6
+    for (_, gamma, squares), following in zip(fitted.evidence, [*fitted.evidence[1:], (fitted.penalty,)]):
+        assert 0 < gamma < 4 * 5 + 5 * 1
+        assert following[0] == pytest.approx(gamma / squares / 120, rel=1e-12)
+    # gamma against its definition, with the Gauss-Newton Hessian assembled row by row from the logit's gradient
+    from tinyprop.recipes import _well_determined
+
+    row_weights = np.asarray(fitted.class_weights)[(answers == "yes").astype(int)]
+    mask = np.concatenate([np.full(p.size, p.ndim == 2) for p in net.params])
+    z = net.predict(X)[:, 0]
+    p = 1 / (1 + np.exp(-z))
+    H = sum(w * q * (1 - q) * np.outer(g[mask], g[mask]) for w, q, g in zip(row_weights, p, net.jacobian(X)))
+    lam = np.clip(np.linalg.eigvalsh(H), 0, None)
+    gamma, squares = _well_determined(net, X, row_weights, 0.3)
+    assert gamma == pytest.approx(np.sum(lam / (lam + 0.3)), rel=1e-9)
+    assert squares == pytest.approx(np.sum(net.get_vector()[mask] ** 2), rel=1e-12)

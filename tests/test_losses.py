@@ -48,6 +48,8 @@ def test_values_against_defining_formulas():
     z = special.logit(p)
     bce = -np.sum(p * np.log(special.expit(z)) + (1 - p) * np.log(1 - special.expit(z))) / 5
     assert tp.CrossEntropyOnSigmoid().value(z, p) == pytest.approx(bce, rel=1e-12)
+    weighted = -np.sum(3.0 * p * np.log(special.expit(z)) + 0.5 * (1 - p) * np.log(1 - special.expit(z))) / 5
+    assert tp.CrossEntropyOnSigmoid(target_weights=(0.5, 3.0)).value(z, p) == pytest.approx(weighted, rel=1e-12)
     onehot = np.eye(3)[[0, 2, 1, 1, 0]]
     cce = -np.sum(onehot * special.log_softmax(z, axis=1)) / 5  # scipy.special.log_softmax
     assert tp.CrossEntropyOnSoftmax().value(z, onehot) == pytest.approx(cce, rel=1e-12)
@@ -85,6 +87,14 @@ def test_softmax_cross_entropy_delta_is_p_minus_y_for_one_hot_rows():
 def test_shape_mismatch_is_refused_with_both_shapes():
     with pytest.raises(ValueError, match=r"\(3, 2\).*\(3,\)"):
         tp.SquaredError().value(np.zeros((3, 2)), np.zeros(3))
+
+
+def test_sigmoid_target_weights_are_checked_and_kept_in_the_settings():
+    assert tp.CrossEntropyOnSigmoid(target_weights=(1, 1)) == tp.CrossEntropyOnSigmoid()
+    assert repr(tp.CrossEntropyOnSigmoid((0.5, 2))) == "CrossEntropyOnSigmoid(target_weights=(0.5, 2.0))"
+    for bad in ((1.0,), (1.0, 0.0), (1.0, float("nan")), "ab", 3):
+        with pytest.raises(ValueError, match="two finite numbers > 0"):
+            tp.CrossEntropyOnSigmoid(target_weights=bad)
 
 
 def test_huber_threshold_must_be_positive():

@@ -1,25 +1,39 @@
 """Class labels for networks that decide a state: coding, probabilities, stratified splits.
 
 A classifier in tinyprop is an ordinary :class:`~tinyprop.network.Network`
-whose outputs are *logits* ``z`` (it ends in an affine layer), one per class,
-together with the list of class labels, sorted. The probabilities are the
-softmax of the logits, computed with each row's maximum subtracted so that no
-exponential overflows:
+whose outputs are *logits* ``z`` (it ends in an affine layer), together with
+the list of class labels, sorted. How the logits decide is the classifier's
+*decision*, given by the number of outputs:
 
-``p_k = exp(z_k - max_j z_j) / sum_i exp(z_i - max_j z_j)``,
+- ``"softmax"``: one logit per class (``K >= 2`` outputs for ``K`` labels).
+  The probabilities are the softmax of the logits, computed with each row's
+  maximum subtracted so that no exponential overflows:
+  ``p_k = exp(z_k - max_j z_j) / sum_i exp(z_i - max_j z_j)``,
+  and the decided class is the index of the largest logit (the first one on a
+  tie), whose probability is the largest (logits a few ulp apart can round to
+  equal probabilities, so decide from the logits, not from rounded
+  probabilities). Trained with :class:`~tinyprop.losses.CrossEntropyOnSoftmax`
+  on one-hot target rows (:func:`one_hot`).
+- ``"sigmoid"``: two labels and ONE output, the log-odds of the *positive*
+  class, which is the second label in sorted order (``labels[1]``):
+  ``p_1 = sigmoid(z)``, ``p_0 = sigmoid(-z) = 1 - p_1``, each evaluated in the
+  two-branch form ``1 / (1 + e)`` or ``e / (1 + e)`` with ``e = exp(-|z|)``,
+  so nothing overflows for any finite ``z`` and the small one of the two keeps
+  its relative precision. The decided class is 1 when ``z > 0`` and 0
+  otherwise (``z = 0``, where ``p_0 = p_1 = 1/2``, decides the first class, as
+  a tie does for the softmax). Trained with
+  :class:`~tinyprop.losses.CrossEntropyOnSigmoid` on the target column
+  ``[label == labels[1]]``. The two-logit softmax on a yes/no column is the
+  same model (``softmax(z_0, z_1)_1 = sigmoid(z_1 - z_0)``) with one redundant
+  output; the default recipe gives a yes/no column one sigmoid output.
 
-and the decided class is the index of the largest logit (the first one on a
-tie), whose probability is the largest (logits a few ulp apart can round to
-equal probabilities, so decide from the logits, not from rounded probabilities). The network is
-trained with :class:`~tinyprop.losses.CrossEntropyOnSoftmax` on one-hot target
-rows (:func:`one_hot`). A yes/no column is two classes, so two logits: the
-softmax of two logits is the sigmoid of their difference,
-``p_1 = 1 / (1 + exp(-(z_1 - z_0)))``, the same model as one sigmoid output.
-
+:func:`class_probabilities`, :func:`decided_classes` and
+:func:`logit_curvature` apply either decision to a block of logits.
 :class:`Classifier` keeps the network and its labels; in a model file the
-labels are stored in the metadata under ``"classes"`` (see
+labels and the decision are stored in the metadata under ``"classes"`` (see
 :meth:`Classifier.metadata`), so ``tinyprop predict`` and the exporters find
-them again.
+them again. Model files written before the decision was recorded hold one
+logit per class, which is what a missing ``"decision"`` means.
 """
 
 from __future__ import annotations
@@ -30,11 +44,16 @@ from typing import Any
 
 import numpy as np
 
+from .activations import Sigmoid
 from .network import Network
 
 __all__ = [
     "Classifier",
+    "class_probabilities",
+    "decided_classes",
+    "decision_for",
     "encode_labels",
+    "logit_curvature",
     "one_hot",
     "softmax",
     "softmax_curvature",
@@ -43,17 +62,22 @@ __all__ = [
 ]
 
 
+def _logits(z: Any) -> np.ndarray:
+    z = np.asarray(z)
+    if z.dtype.kind != "f":
+        z = z.astype(np.float64)
+    if z.ndim != 2:
+        raise ValueError(f"logits must have shape (n_samples, n_outputs), got shape {z.shape}")
+    return z
+
+
 def softmax(z: Any) -> np.ndarray:
     """Row-wise ``softmax(z)`` with each row's maximum subtracted first (no overflow for finite ``z``).
 
     >>> softmax([[0.0, 0.0], [1000.0, 0.0]]).round(6).tolist()
     [[0.5, 0.5], [1.0, 0.0]]
     """
-    z = np.asarray(z)
-    if z.dtype.kind != "f":
-        z = z.astype(np.float64)
-    if z.ndim != 2:
-        raise ValueError(f"logits must have shape (n_samples, n_classes), got shape {z.shape}")
+    z = _logits(z)
     e = np.exp(z - z.max(axis=1, keepdims=True))
     return e / e.sum(axis=1, keepdims=True)
 
@@ -71,6 +95,69 @@ def softmax_curvature(z: Any) -> np.ndarray:
     """
     p = softmax(z)
     return p[:, :, None] * np.eye(p.shape[1]) - p[:, :, None] * p[:, None, :]
+
+
+DECISIONS = ("softmax", "sigmoid")
+_logistic = Sigmoid().value  # the two-branch form, no overflow
+
+
+def decision_for(n_outputs: int, n_labels: int) -> str:
+    """``"sigmoid"`` for one output and two labels, ``"softmax"`` for one output per label; else ``ValueError``.
+
+    >>> decision_for(1, 2), decision_for(3, 3)
+    ('sigmoid', 'softmax')
+    """
+    if n_outputs == 1 and n_labels == 2:
+        return "sigmoid"
+    if n_outputs == n_labels and n_labels >= 2:
+        return "softmax"
+    raise ValueError(f"the network has {n_outputs} output{'s' * (n_outputs != 1)} but {n_labels} "
+                     f"label{'s' * (n_labels != 1)} were given; a classifier needs one output per label "
+                     "(softmax) or one output for two labels (sigmoid)")
+
+
+def class_probabilities(z: Any) -> np.ndarray:
+    """Class probabilities ``(n, K)`` from logits ``(n, K)`` (softmax) or ``(n, 1)`` (sigmoid, ``K = 2``).
+
+    One column: ``[sigmoid(-z), sigmoid(z)]``, both in the two-branch form
+    (see the module docstring). Several: :func:`softmax`.
+
+    >>> class_probabilities([[0.0], [800.0], [-800.0]]).tolist()
+    [[0.5, 0.5], [0.0, 1.0], [1.0, 0.0]]
+    """
+    z = _logits(z)
+    if z.shape[1] == 1:
+        return np.concatenate([_logistic(-z), _logistic(z)], axis=1)
+    return softmax(z)
+
+
+def decided_classes(z: Any) -> np.ndarray:
+    """The decided class index of every row: ``z > 0`` for one column (sigmoid), else the largest logit's index.
+
+    >>> decided_classes([[0.0], [1e-300], [-2.0]]).tolist(), decided_classes([[1.0, 1.0, 0.0]]).tolist()
+    ([0, 1, 0], [0])
+    """
+    z = _logits(z)
+    if z.shape[1] == 1:
+        return (z[:, 0] > 0).astype(np.intp)
+    return np.argmax(z, axis=1)
+
+
+def logit_curvature(z: Any) -> np.ndarray:
+    """Per row, the Hessian of the row's cross-entropy with respect to the logits, ``(n, m, m)``.
+
+    ``m`` logits (``m >= 2``): :func:`softmax_curvature`. One logit (sigmoid):
+    ``d2/dz2 [softplus(z) - y z] = p (1 - p)`` with ``p = sigmoid(z)``, for
+    every target ``y`` (a class weight ``w`` multiplies it by ``w``).
+
+    >>> logit_curvature([[0.0]]).tolist()
+    [[[0.25]]]
+    """
+    z = _logits(z)
+    if z.shape[1] == 1:
+        p = _logistic(z)
+        return (p * _logistic(-z))[:, :, None]
+    return softmax_curvature(z)
 
 
 def encode_labels(labels: Any) -> tuple[tuple[str, ...], np.ndarray]:
@@ -156,9 +243,11 @@ def stratified_folds(indices: Any, k: int, seed: int) -> list[np.ndarray]:
 
 @dataclass(frozen=True)
 class Classifier:
-    """A network giving one logit per class, and the class labels in output order.
+    """A network giving logits, and the class labels in order.
 
-    ``net`` maps inputs ``(n, n_in)`` to logits ``(n, len(labels))``.
+    ``net`` maps inputs ``(n, n_in)`` to logits: one per class (decision
+    ``"softmax"``), or one for two labels (``"sigmoid"``: the log-odds of
+    ``labels[1]``); see the module docstring.
     """
 
     net: Network
@@ -171,21 +260,25 @@ class Classifier:
         labels = tuple(self.labels)
         if len(labels) < 2 or not all(isinstance(label, str) for label in labels) or len(set(labels)) != len(labels):
             raise ValueError(f"labels must be at least 2 distinct strings, got {self.labels!r}")
-        if self.net.n_out != len(labels):
-            raise ValueError(f"the network has {self.net.n_out} outputs but {len(labels)} labels were given")
+        decision_for(self.net.n_out, len(labels))
         object.__setattr__(self, "labels", labels)
 
+    @property
+    def decision(self) -> str:
+        """``"softmax"`` (one logit per class) or ``"sigmoid"`` (one logit for two classes)."""
+        return decision_for(self.net.n_out, len(self.labels))
+
     def logits(self, X: Any) -> np.ndarray:
-        """``net.predict(X)``: one logit per class, ``(n, n_classes)``."""
+        """``net.predict(X)``: the logits, ``(n, n_outputs)``."""
         return self.net.predict(X)
 
     def probabilities(self, X: Any) -> np.ndarray:
-        """Class probabilities ``softmax(logits)``, ``(n, n_classes)``; every row sums to 1."""
-        return softmax(self.logits(X))
+        """Class probabilities ``(n, n_classes)`` (:func:`class_probabilities`); every row sums to 1."""
+        return class_probabilities(self.logits(X))
 
     def predict_indices(self, X: Any) -> np.ndarray:
-        """The decided class of every row: the index of the largest logit (first on a tie)."""
-        return np.argmax(self.logits(X), axis=1)
+        """The decided class of every row (:func:`decided_classes`): largest logit (first on a tie), or ``z > 0``."""
+        return decided_classes(self.logits(X))
 
     def predict_labels(self, X: Any) -> np.ndarray:
         """The decided class of every row as its label (an array of strings)."""
@@ -194,17 +287,23 @@ class Classifier:
     def metadata(self) -> dict[str, Any]:
         """What a model file keeps so that the labels come back: ``{"classes": {...}}``.
 
-        Merge it into the ``metadata`` of :func:`~tinyprop.modelfile.save`;
+        ``{"classes": {"target": ..., "labels": [...], "decision": "softmax" or "sigmoid"}}``;
+        merge it into the ``metadata`` of :func:`~tinyprop.modelfile.save`;
         :meth:`from_metadata` reads it back.
         """
-        return {"classes": {"target": self.target, "labels": list(self.labels)}}
+        return {"classes": {"target": self.target, "labels": list(self.labels), "decision": self.decision}}
 
     @classmethod
     def from_metadata(cls, net: Network, metadata: Mapping[str, Any]) -> "Classifier":
-        """The classifier described by a model file's ``metadata`` (``ValueError`` if it holds no labels)."""
+        """The classifier described by a model file's ``metadata`` (``ValueError`` if it holds no labels).
+
+        A recorded ``"decision"`` must be the one the network's outputs give; files without one
+        (written before it was recorded) hold one logit per class.
+        """
         entry = metadata.get("classes") if isinstance(metadata, Mapping) else None
         if not isinstance(entry, Mapping) or not isinstance(entry.get("labels"), Sequence):
             raise ValueError("the model file holds no class labels (metadata 'classes'); it is not a classifier")
+        check_decision(entry, net.n_out)
         return cls(net, tuple(entry["labels"]), str(entry.get("target", "class")))
 
 
@@ -213,3 +312,14 @@ def class_entry(metadata: Any) -> Mapping[str, Any] | None:
     entry = metadata.get("classes") if isinstance(metadata, Mapping) else None
     return entry if isinstance(entry, Mapping) else None
 
+
+def check_decision(entry: Mapping[str, Any], n_outputs: int) -> str:
+    """The decision of a ``"classes"`` entry for a network with ``n_outputs`` (``ValueError`` if inconsistent)."""
+    labels = entry.get("labels")
+    n_labels = len(labels) if isinstance(labels, Sequence) and not isinstance(labels, str) else 0
+    decision = decision_for(n_outputs, n_labels)
+    recorded = entry.get("decision", "softmax")
+    if recorded != decision:
+        raise ValueError(f"the model file records the class decision {recorded!r}, but its network has "
+                         f"{n_outputs} output{'s' * (n_outputs != 1)} for {n_labels} labels ({decision!r})")
+    return decision

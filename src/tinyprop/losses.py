@@ -126,15 +126,43 @@ class CrossEntropyOnSigmoid(Loss):
     The second form is evaluated; ``softplus(z) = max(z, 0) + log1p(exp(-|z|))``
     is finite for every finite ``z``. Each output column is an independent
     yes/no probability.
+
+    ``target_weights = (w0, w1)`` (default ``(1, 1)``) weighs the term of
+    target 0 by ``w0`` and that of target 1 by ``w1`` (class weights for a
+    yes/no column): with ``-log p = softplus(-z)`` and
+    ``-log(1 - p) = softplus(z)``,
+    ``E = (1/n) sum_{i,k} [w1 y softplus(-z) + w0 (1 - y) softplus(z)]``,
+    ``dE/dz = (w0 (1 - y) p - w1 y (1 - p)) / n``,
+    which is the unweighted loss and gradient when ``w0 = w1 = 1``.
     """
+
+    def __init__(self, target_weights: tuple[float, float] = (1.0, 1.0)) -> None:
+        try:
+            weights = tuple(float(w) for w in target_weights)
+        except (TypeError, ValueError):
+            weights = ()
+        if len(weights) != 2 or not all(np.isfinite(w) and w > 0 for w in weights):
+            raise ValueError(f"target_weights must be two finite numbers > 0 (for targets 0 and 1), "
+                             f"got {target_weights!r}")
+        self.target_weights = weights
+
+    def settings(self) -> dict[str, tuple[float, ...]]:
+        return {} if self.target_weights == (1.0, 1.0) else {"target_weights": self.target_weights}
 
     def value(self, y_hat: np.ndarray, y: np.ndarray) -> float:
         z, y = _pair(y_hat, y)
-        return float(np.sum(_softplus(z) - y * z)) / z.shape[0]
+        if self.target_weights == (1.0, 1.0):
+            return float(np.sum(_softplus(z) - y * z)) / z.shape[0]
+        w0, w1 = self.target_weights
+        return float(np.sum(w1 * y * _softplus(-z) + w0 * (1.0 - y) * _softplus(z))) / z.shape[0]
 
     def gradient(self, y_hat: np.ndarray, y: np.ndarray) -> np.ndarray:
         z, y = _pair(y_hat, y)
-        return (_sigmoid(z) - y) * z.dtype.type(1.0 / z.shape[0])
+        p = _sigmoid(z)
+        if self.target_weights == (1.0, 1.0):
+            return (p - y) * z.dtype.type(1.0 / z.shape[0])
+        w0, w1 = (z.dtype.type(w) for w in self.target_weights)
+        return (w0 * (1 - y) * p - w1 * y * (1 - p)) * z.dtype.type(1.0 / z.shape[0])
 
     def probabilities(self, y_hat: np.ndarray) -> np.ndarray:
         """``sigmoid(z)``: the probability of each output being 1."""

@@ -6,8 +6,8 @@ tanh network and trains it with Adam and early stopping; its settings and their
 measured results are in ``docs/training.md``.
 
 **The default classification recipe** (:func:`fit_tabular_classification`, at the
-end of this module) builds a scaled tanh network giving one logit per class and
-chooses its L2 penalty by the evidence framework; ``docs/classification.md``
+end of this module) builds a scaled tanh network giving one logit per class (one sigmoid
+output for two classes) and chooses its L2 penalty by the evidence framework; ``docs/classification.md``
 gives its settings and measured results.
 
 **The command line's recipe** (:class:`FitSettings`; the steps :func:`split_rows`,
@@ -58,9 +58,17 @@ import numpy as np
 from ._validate import as_float_array, positive_int, real_in_range, seed_value
 from ._words import count
 from .activations import BUILT_IN_ACTIVATIONS, Activation, Identity, Tanh, built_in_name
-from .classify import Classifier, encode_labels, one_hot, softmax, softmax_curvature, stratified_folds
+from .classify import (
+    DECISIONS,
+    Classifier,
+    class_probabilities,
+    encode_labels,
+    logit_curvature,
+    one_hot,
+    stratified_folds,
+)
 from .layers import Affine, Standardize, Unstandardize
-from .losses import CrossEntropyOnSoftmax, MeanSquaredError
+from .losses import CrossEntropyOnSigmoid, CrossEntropyOnSoftmax, MeanSquaredError
 from .mlp import build_mlp
 from .network import Layer, Network
 from .optim import SGD, Adam, Optimizer, RMSProp
@@ -852,6 +860,7 @@ def fit_tabular_classification(
     class_weights: Any = None,
     seed: int = 0,
     target: str = "class",
+    two_class_output: str = "sigmoid",
 ) -> ClassificationFit:
     """tinyprop's default recipe for small tabular classification.
 
@@ -859,11 +868,18 @@ def fit_tabular_classification(
     at least two distinct ones). The recipe:
 
     - classes: the distinct labels, sorted (:func:`~tinyprop.classify.encode_labels`);
-    - network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine(., K)``
-      giving one logit per class, scaling fitted on all rows given, Glorot
-      initialisation;
+    - network ``Standardize -> [Affine -> Tanh] per entry of hidden -> Affine(., m)``
+      giving one logit per class (``m = K``), scaling fitted on all rows
+      given, Glorot initialisation; for two classes, with
+      ``two_class_output="sigmoid"`` (the default), ``m = 1``: one logit,
+      the log-odds of the second label (:mod:`tinyprop.classify`);
+      ``two_class_output="softmax"`` keeps two logits (the same model with
+      one redundant output);
     - loss :class:`~tinyprop.losses.CrossEntropyOnSoftmax` on one-hot rows,
       each multiplied by its class weight (:func:`~tinyprop.classify.one_hot`);
+      for one sigmoid output :class:`~tinyprop.losses.CrossEntropyOnSigmoid`
+      on the column ``[label == labels[1]]`` with ``target_weights`` the two
+      class weights;
     - ``Adam(lr=1e-2)`` with the learning rate falling along a cosine to 0,
       mini-batches of 32, ``epochs`` epochs (no early stopping), plus the L2
       penalty ``l2/2 * sum ||W||^2`` on the weight matrices of :func:`~tinyprop.train.train`.
@@ -878,7 +894,8 @@ def fit_tabular_classification(
       Gauss-Newton Hessian of the summed loss,
       ``H = sum_i s_i J_i^T (diag(p_i) - p_i p_i^T) J_i`` (``J_i`` the
       logits' Jacobian with respect to the weights, ``s_i`` the row's class
-      weight; :func:`~tinyprop.classify.softmax_curvature`), and set
+      weight; ``p_i (1 - p_i)`` in place of the matrix for one sigmoid
+      output; :func:`~tinyprop.classify.logit_curvature`), and set
       ``alpha = gamma / sum ||W||^2``; from ``l2 = 1e-3``, at most 6 rounds,
       stopping when ``alpha`` changes by less than 5 %; then train once more
       with the last ``alpha``. ``gamma`` is the number of well-determined
@@ -912,17 +929,24 @@ def fit_tabular_classification(
     if seed_value(seed) is None:
         raise TypeError("seed must be an integer >= 0, got None")
     weights = _class_weights(class_weights, classes, indices)
-    targets = one_hot(indices, len(classes), weights=weights)
+    if two_class_output not in DECISIONS:
+        raise ValueError(f"two_class_output must be one of {DECISIONS}, got {two_class_output!r}")
+    if len(classes) == 2 and two_class_output == "sigmoid":
+        n_logits, loss = 1, CrossEntropyOnSigmoid(target_weights=(float(weights[0]), float(weights[1])))
+        targets = (indices == 1).astype(np.float64)[:, None]
+    else:
+        n_logits, loss = len(classes), CrossEntropyOnSoftmax()
+        targets = one_hot(indices, len(classes), weights=weights)
     fold_seed, init_seed, shuffle_seed = (int(s) for s in np.random.SeedSequence(int(seed)).generate_state(3))
 
     def trained(rows: np.ndarray, l2: float) -> tuple[Network, TrainingResult]:
         layers: list[Layer] = [Standardize.from_data(X[rows])]
         for n_in, n_out in zip((X.shape[1], *widths[:-1]), widths):
             layers += [Affine(n_in, n_out), Tanh()]
-        layers.append(Affine(widths[-1], len(classes)))
+        layers.append(Affine(widths[-1], n_logits))
         net = Network(layers, seed=init_seed)
         schedule = CosineSchedule(epochs * math.ceil(rows.size / CLASSIFICATION_BATCH_SIZE))
-        result = train(net, X[rows], targets[rows], loss=CrossEntropyOnSoftmax(),
+        result = train(net, X[rows], targets[rows], loss=loss,
                        optimizer=Adam(lr=CLASSIFICATION_LR, schedule=schedule), epochs=epochs,
                        batch_size=CLASSIFICATION_BATCH_SIZE, seed=shuffle_seed, l2=l2)
         return net, result
@@ -934,7 +958,7 @@ def fit_tabular_classification(
         chosen = EVIDENCE_START
         for _ in range(EVIDENCE_ROUNDS):
             net, _ = trained(every_row, chosen)
-            gamma, squares = _well_determined(net, X, targets, indices.size * chosen)
+            gamma, squares = _well_determined(net, X, weights[indices], indices.size * chosen)
             rounds.append((chosen, gamma, squares))
             update = gamma / squares / indices.size
             converged = abs(math.log(update / chosen)) < 0.05
@@ -954,7 +978,7 @@ def fit_tabular_classification(
             losses = []
             for held in stratified_folds(indices, folds, fold_seed):
                 net, _ = trained(np.setdiff1d(every_row, held), l2)
-                p = softmax(net.predict(X[held]))
+                p = class_probabilities(net.predict(X[held]))
                 losses.append(-np.log(np.maximum(p[np.arange(held.size), indices[held]], 1e-300)))
             scores.append((l2, float(np.mean(np.concatenate(losses)))))
         chosen = min(scores, key=lambda entry: entry[1])[0]
@@ -967,23 +991,24 @@ def fit_tabular_classification(
                              tuple(float(w) for w in weights), tuple(rounds))
 
 
-def _well_determined(net: Network, X: np.ndarray, targets: np.ndarray, alpha: float) -> tuple[float, float]:
+def _well_determined(net: Network, X: np.ndarray, row_weights: np.ndarray, alpha: float) -> tuple[float, float]:
     """``(gamma, sum ||W||^2)`` of the evidence framework at the prior weight ``alpha``.
 
     ``gamma = sum_j lambda_j / (lambda_j + alpha)`` over the eigenvalues of the
     weight block of ``H = sum_i s_i J_i^T C_i J_i``: ``J_i`` the logits'
     Jacobian of row ``i`` with respect to the weight-matrix entries,
-    ``C_i = diag(p_i) - p_i p_i^T`` (:func:`~tinyprop.classify.softmax_curvature`),
-    ``s_i = sum_k targets[i, k]`` (the row's class weight). Rows are taken in
+    ``C_i`` the loss's curvature in the logits (``diag(p_i) - p_i p_i^T``, or
+    ``p_i (1 - p_i)`` for one sigmoid output; :func:`~tinyprop.classify.logit_curvature`),
+    ``s_i = row_weights[i]`` (the row's class weight). Rows are taken in
     blocks of 256, so the memory is that of ``H`` plus one block's Jacobian.
     """
     mask = np.concatenate([np.full(p.size, p.ndim == 2) for p in net.params])
-    n_classes, size = targets.shape[1], int(mask.sum())
+    n_logits, size = net.n_out, int(mask.sum())
     H = np.zeros((size, size))
     for start in range(0, X.shape[0], 256):
         rows = slice(start, start + 256)
-        J = net.jacobian(X[rows]).reshape(-1, n_classes, net.n_params)[:, :, mask]
-        C = softmax_curvature(net.predict(X[rows])) * targets[rows].sum(axis=1)[:, None, None]
+        J = net.jacobian(X[rows]).reshape(-1, n_logits, net.n_params)[:, :, mask]
+        C = logit_curvature(net.predict(X[rows])) * row_weights[rows][:, None, None]
         H += J.reshape(-1, size).T @ np.einsum("ikl,ilb->ikb", C, J).reshape(-1, size)
     eigenvalues = np.clip(np.linalg.eigvalsh(H), 0.0, None)
     return float(np.sum(eigenvalues / (eigenvalues + alpha))), float(np.sum(net.get_vector()[mask] ** 2))

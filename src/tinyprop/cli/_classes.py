@@ -145,9 +145,9 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     metadata = {
         "description": f"classifier of {target} fitted by tinyprop train to {Path(args.data).name}",
         "inputs": [{"name": name} for name in inputs],
-        "outputs": [{"name": f"logit of {label}"} for label in classes],
+        "outputs": _output_names(classifier),
         **classifier.metadata(),
-        "training": {"settings": _settings(args, hidden, epochs, weights), "data": _source(args.data)},
+        "training": {"settings": _settings(args, hidden, epochs, weights, classifier), "data": _source(args.data)},
     }
     started = time.perf_counter()
     try:
@@ -163,7 +163,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         "data": {**_source(args.data), "rows": int(X.shape[0]), "inputs": list(inputs), "targets": [target],
                  "classes": list(classes), "class_counts": counts,
                  "split": {"training": int(training.size), "validation": 0, "test": int(test.size)}},
-        "settings": _settings(args, hidden, epochs, weights),
+        "settings": _settings(args, hidden, epochs, weights, classifier),
         "network": {"fingerprint": digest, "n_params": net.n_params, "dtype": net.dtype.name,
                     "architecture": architecture(net)},
         "fit": {"method": "classification recipe", "penalty": fitted.penalty,
@@ -212,10 +212,19 @@ def _measure(
     return classification_metrics(indices[rows], classifier.probabilities(X[rows]), classifier.labels)
 
 
-def _settings(args: argparse.Namespace, hidden: tuple[int, ...], epochs: int, weights: Any) -> dict[str, Any]:
+def _output_names(classifier: Classifier) -> list[dict[str, str]]:
+    """The network outputs' names for the model file: one logit per class, or the log-odds of the second label."""
+    if classifier.decision == "sigmoid":
+        return [{"name": f"log-odds of {classifier.labels[1]}"}]
+    return [{"name": f"logit of {label}"} for label in classifier.labels]
+
+
+def _settings(args: argparse.Namespace, hidden: tuple[int, ...], epochs: int, weights: Any,
+              classifier: Classifier) -> dict[str, Any]:
+    loss = "CrossEntropyOnSigmoid" if classifier.decision == "sigmoid" else "CrossEntropyOnSoftmax"
     return {"recipe": "fit_tabular_classification", "hidden": list(hidden), "epochs": epochs, "seed": args.seed,
             "test_fraction": args.test_fraction, "class_weights": weights, "penalty": "evidence",
-            "evidence_start": EVIDENCE_START, "loss": "CrossEntropyOnSoftmax"}
+            "evidence_start": EVIDENCE_START, "loss": loss}
 
 
 def _source(path: str) -> dict[str, Any]:

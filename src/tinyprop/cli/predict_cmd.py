@@ -8,7 +8,8 @@ columns are ignored. The output CSV has one row per data row, in order:
   value (written with ``repr``, so it reads back as exactly the float the
   library computed);
 - classifier: a column named like the class target holding the decided label,
-  then one column ``probability_<label>`` per class.
+  then one column ``probability_<label>`` per class (also for a yes/no model
+  with one sigmoid output: both classes' probabilities).
 
 Ensemble files (:class:`tinyprop.Ensemble`) are applied the same way.
 A file that lacks an input column is refused with one line naming the
@@ -28,7 +29,7 @@ from typing import Any
 import numpy as np
 
 from ..archive import read_archive
-from ..classify import class_entry, softmax
+from ..classify import check_decision, class_entry, class_probabilities, decided_classes
 from ..ensemble import ENSEMBLE_FORMAT, Ensemble
 from . import _args
 from ._common import CommandError, describe_os_error, numeric_columns, read_model, read_table, stored_names
@@ -83,12 +84,14 @@ def prediction_columns(output: np.ndarray, metadata: dict[str, Any], n_out: int)
     entry = class_entry(metadata)
     if entry is not None:
         labels = [str(label) for label in entry.get("labels", [])]
-        if len(labels) != n_out:
-            raise CommandError(f"the model file lists {len(labels)} class labels for {n_out} outputs")
-        p = softmax(output.astype(np.float64))
-        decided = np.argmax(output, axis=1)
+        try:
+            check_decision(entry, n_out)
+        except ValueError as exc:
+            raise CommandError(f"the model file's class labels do not fit its network: {exc}") from None
+        p = class_probabilities(output.astype(np.float64))
+        decided = decided_classes(output)
         header = [str(entry.get("target", "class"))] + [f"probability_{label}" for label in labels]
-        return header, [[labels[k] for k in decided]] + [[repr(float(v)) for v in p[:, k]] for k in range(n_out)]
+        return header, [[labels[k] for k in decided]] + [[repr(float(v)) for v in p[:, k]] for k in range(len(labels))]
     names = stored_names(metadata, "outputs") or [f"output_{k}" for k in range(n_out)]
     return list(names), [[repr(float(v)) for v in output[:, k]] for k in range(n_out)]
 

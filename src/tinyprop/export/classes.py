@@ -1,8 +1,10 @@
 """Class decisions in generated code: label tables, the decided class index and probabilities.
 
-A classifier's network gives one logit per class (:mod:`tinyprop.classify`).
-The exporters write that network as usual (``<name>_predict`` returns the
-logits); with ``labels`` they add:
+A classifier's network gives one logit per class, or one logit for two
+classes (the *decision* ``"softmax"`` or ``"sigmoid"`` of
+:mod:`tinyprop.classify`, told apart by the number of outputs). The exporters
+write that network as usual (``<name>_predict`` returns the logits); with
+``labels`` they add:
 
 - **C** (:func:`~tinyprop.export.export_c`): ``<name>_classes.h`` /
   ``<name>_classes.c`` with ``<NAME>_N_CLASSES``, one ``<NAME>_LABEL_<k>`` string
@@ -10,7 +12,10 @@ logits); with ``labels`` they add:
   ``int <name>_classify(const T *x, T *p)``: the index of the largest logit
   (the first one on a tie) and, when ``p`` is not a null pointer, the
   probabilities ``p[k] = exp(z[k] - max z) / sum_j exp(z[j] - max z)`` (the
-  maximum subtracted, so no exponential overflows);
+  maximum subtracted, so no exponential overflows). For one sigmoid output:
+  index ``z > 0 ? 1 : 0`` and, with ``e = exp(-|z|)``, ``1 / (1 + e)`` for the
+  class the sign of ``z`` favours (class 1 when ``z >= 0``) and ``e / (1 + e)``
+  for the other (the two-branch logistic: nothing overflows);
 - **Python** (:func:`~tinyprop.export.export_python`): ``LABELS``,
   ``N_CLASSES`` and ``classify(x) -> (index, probabilities)`` appended to
   ``<name>.py``, the same operations in binary64;
@@ -18,7 +23,8 @@ logits); with ``labels`` they add:
   ``<name>_classes.h`` / ``<name>_classes.c`` with the label table and
   ``int <name>_classify_q(const int16_t *x_q)``: the index of the largest logit,
   the logits compared exactly in ``int64_t`` after bringing them to one format
-  (``y_q[k] * 2^(G - g_k)``, ``G`` the largest output format). No
+  (``y_q[k] * 2^(G - g_k)``, ``G`` the largest output format); for one
+  sigmoid output, ``y_q[0] > 0 ? 1 : 0`` (the sign is exact in any format). No
   probabilities: they would need ``exp`` or a table.
 
 :func:`fixed_point_class_agreement` measures on rows ``X`` how often the
@@ -37,6 +43,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from ..classify import decided_classes, decision_for
 from ..network import Network
 from ._header import CAUTION
 from ._source import c_block_comment, c_header, python_literal, write_source
@@ -47,16 +54,29 @@ _SAFE = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789 _-.,
 _MAX_SHIFT = 47  # int16 * 2^47 < 2^63: the aligned logits fit in int64_t
 
 
-def check_labels(labels: Any, n_out: int) -> tuple[str, ...]:
-    """``labels`` as a tuple of ``n_out`` distinct strings (one per network output)."""
+class ClassLabels(tuple):
+    """The class labels (a tuple of strings, in class order) and ``decision``, how the network's outputs decide."""
+
+    decision: str
+
+    def __new__(cls, labels: Sequence[str], decision: str) -> "ClassLabels":
+        made = super().__new__(cls, labels)
+        made.decision = decision
+        return made
+
+
+def check_labels(labels: Any, n_out: int) -> ClassLabels:
+    """``labels`` as distinct strings: one per network output, or two for one (sigmoid) output."""
     if isinstance(labels, (str, bytes)) or not isinstance(labels, Sequence):
         raise TypeError(f"labels must be a sequence of strings, one per output, got {type(labels).__name__}")
     labels = tuple(labels)
     if not all(isinstance(label, str) for label in labels) or len(set(labels)) != len(labels):
         raise ValueError(f"labels must be distinct strings, got {labels!r}")
-    if len(labels) != n_out or n_out < 2:
-        raise ValueError(f"labels must name the network's {n_out} outputs (at least 2), got {len(labels)}")
-    return labels
+    try:
+        decision = decision_for(n_out, len(labels))
+    except ValueError as exc:
+        raise ValueError(f"labels must name the network's classes: {exc}") from None
+    return ClassLabels(labels, decision)
 
 
 def c_string(text: str) -> str:
@@ -87,8 +107,10 @@ def _files(folder: Path, name: str, labels: tuple[str, ...], include: str, decla
             write_source(folder, f"{stem}.c", "\n".join(source) + "\n"))
 
 
-def write_c_classes(folder: Path, name: str, labels: tuple[str, ...], ctype: str) -> tuple[Path, Path]:
+def write_c_classes(folder: Path, name: str, labels: ClassLabels, ctype: str) -> tuple[Path, Path]:
     """``<name>_classes.h`` / ``.c`` for the float C export (``ctype`` ``float`` or ``double``)."""
+    if labels.decision == "sigmoid":
+        return _write_c_sigmoid(folder, name, labels, ctype)
     macro, f = name.upper(), "f" if ctype == "float" else ""
     declaration = f"int {name}_classify(const {ctype} *x, {ctype} *p)"
     about = [f"{declaration};",
@@ -121,18 +143,48 @@ def write_c_classes(folder: Path, name: str, labels: tuple[str, ...], ctype: str
     return _files(folder, name, labels, f"{name}.h", declaration, about, body)
 
 
-def python_classes(labels: tuple[str, ...]) -> str:
+def _write_c_sigmoid(folder: Path, name: str, labels: ClassLabels, ctype: str) -> tuple[Path, Path]:
+    """The float C class decision for one sigmoid output (two classes)."""
+    macro, f = name.upper(), "f" if ctype == "float" else ""
+    one = f"1.0{f}"
+    declaration = f"int {name}_classify(const {ctype} *x, {ctype} *p)"
+    about = [f"{declaration};",
+             f"  {name}_predict(x) gives one logit z, the log-odds of class 1 ({name}_labels[1]); returns 1 when",
+             f"  z > 0, else 0; the label is {name}_labels[index]. When p is not a null pointer it receives the",
+             f"  {macro}_N_CLASSES = 2 class probabilities p[1] = 1 / (1 + exp(-z)) and p[0] = 1 - p[1], computed",
+             "  with e = exp(-|z|) as 1 / (1 + e) for the class the sign of z favours and e / (1 + e) for the",
+             f"  other, so nothing overflows. Arithmetic: {ctype}; needs <math.h> (exp{f}, fabs{f}) and {name}.c."]
+    body = ["#include <math.h>",
+            f"    {ctype} z[{macro}_N_OUTPUTS];",
+            f"    {ctype} e;",
+            "    int favoured;",
+            f"    {name}_predict(x, z);",
+            "    if (p != 0) {",
+            f"        e = exp{f}(-fabs{f}(z[0]));",
+            f"        favoured = z[0] >= 0.0{f} ? 1 : 0;",
+            f"        p[favoured] = {one} / ({one} + e);",
+            f"        p[1 - favoured] = e / ({one} + e);",
+            "    }",
+            f"    return z[0] > 0.0{f} ? 1 : 0;"]
+    return _files(folder, name, labels, f"{name}.h", declaration, about, body)
+
+
+def python_classes(labels: ClassLabels) -> str:
     """The text appended to the generated Python module: ``LABELS``, ``N_CLASSES``, ``classify``."""
     table = "".join(f"\n    {python_literal(label)}," for label in labels)
+    decide = _PYTHON_SIGMOID if labels.decision == "sigmoid" else _PYTHON_SOFTMAX
     return f'''
 
-# Class decision (generated by tinyprop for a classifier): LABELS[k] names output k.
+# Class decision (generated by tinyprop for a classifier): LABELS[k] names class k.
 LABELS = ({table}
 )
 N_CLASSES = {len(labels)}
 
 
-def classify(x: "list[float]") -> "tuple[int, list[float]]":
+{decide}'''
+
+
+_PYTHON_SOFTMAX = '''def classify(x: "list[float]") -> "tuple[int, list[float]]":
     """(index of the decided class, class probabilities) for one sample x; LABELS[index] is its label.
 
     The index is that of the largest logit predict(x) (the first on a tie); the probabilities are
@@ -150,6 +202,19 @@ def classify(x: "list[float]") -> "tuple[int, list[float]]":
     return best, [v / total for v in e]
 '''
 
+_PYTHON_SIGMOID = '''def classify(x: "list[float]") -> "tuple[int, list[float]]":
+    """(index of the decided class, class probabilities) for one sample x; LABELS[index] is its label.
+
+    predict(x) gives one logit z, the log-odds of class 1 (LABELS[1]); the index is 1 when z > 0, else 0.
+    The probabilities are [1 - p1, p1] with p1 = 1 / (1 + exp(-z)), computed with e = exp(-|z|) as
+    1 / (1 + e) for the class the sign of z favours and e / (1 + e) for the other (nothing overflows).
+    """
+    z = predict(x)[0]
+    e = math.exp(-abs(z))
+    favoured, other = 1.0 / (1.0 + e), e / (1.0 + e)
+    return (1 if z > 0.0 else 0), ([other, favoured] if z >= 0.0 else [favoured, other])
+'''
+
 
 def output_multipliers(output_bits: Sequence[int]) -> list[int]:
     """``2^(G - g_k)``: brings int16 logits in formats ``g_k`` to the largest format ``G`` (exact in int64)."""
@@ -161,10 +226,22 @@ def output_multipliers(output_bits: Sequence[int]) -> list[int]:
 
 
 def write_fixed_classes(
-    folder: Path, name: str, labels: tuple[str, ...], output_bits: Sequence[int]
+    folder: Path, name: str, labels: ClassLabels, output_bits: Sequence[int]
 ) -> tuple[Path, Path]:
     """``<name>_classes.h`` / ``.c`` for the integer-only C export."""
     macro = name.upper()
+    if labels.decision == "sigmoid":
+        declaration = f"int {name}_classify_q(const int16_t *x_q)"
+        about = [f"{declaration};",
+                 f"  {name}_predict_q(x_q) gives one logit, the log-odds of class 1 ({name}_labels[1]); returns 1",
+                 "  when it is > 0, else 0 (its sign does not depend on its format); the label is",
+                 f"  {name}_labels[index].",
+                 f"  Integers only; needs <stdint.h> and {name}.c."]
+        body = ["#include <stdint.h>",
+                f"    int16_t y_q[{macro}_N_OUTPUTS];",
+                f"    {name}_predict_q(x_q, y_q);",
+                "    return y_q[0] > 0 ? 1 : 0;"]
+        return _files(folder, name, labels, f"{name}.h", declaration, about, body)
     multipliers = output_multipliers(output_bits)
     declaration = f"int {name}_classify_q(const int16_t *x_q)"
     about = [f"{declaration};",
@@ -195,7 +272,7 @@ def write_fixed_classes(
 def fixed_point_decisions(report: Any, x_q: Any) -> np.ndarray:
     """What ``<name>_classify_q`` returns for int16 inputs ``x_q`` ``(n, n_in)``, computed in Python."""
     y_q = report.predict_q(x_q).astype(np.int64) * np.array(output_multipliers(report.output_bits), dtype=np.int64)
-    return np.argmax(y_q, axis=1)
+    return decided_classes(y_q)
 
 
 @dataclass(frozen=True)
@@ -204,7 +281,9 @@ class ClassAgreement:
 
     ``differing`` rows (their indices in ``differing_rows``) are decided
     differently; ``margins`` gives, for each, how far apart the network's two
-    largest logits were (float64), the size of the disagreement.
+    largest logits were (float64), the size of the disagreement; for one
+    sigmoid output, ``|z|``, the logit's distance from the decision at 0
+    (the gap of the equivalent two logits ``0`` and ``z``).
     """
 
     rows: int
@@ -231,11 +310,16 @@ def fixed_point_class_agreement(report: Any, net: Network, X: Any) -> ClassAgree
     """Compare ``<name>_classify_q`` (via ``report``) with ``argmax net.predict(X)`` in float64 on the rows ``X``."""
     reference = (net if net.dtype == np.float64 else net.copy(dtype=np.float64)).predict(X)
     decided_q = fixed_point_decisions(report, report.to_integers(X))
-    decided = np.argmax(reference, axis=1)
+    decided = decided_classes(reference)
     rows = np.flatnonzero(decided_q != decided)
-    ordered = np.sort(reference[rows], axis=1)
+    ordered = np.sort(_as_logit_per_class(reference[rows]), axis=1)
     margins = ordered[:, -1] - ordered[:, -2] if rows.size else np.array([])
     return ClassAgreement(int(reference.shape[0]), tuple(int(r) for r in rows), tuple(float(m) for m in margins))
+
+
+def _as_logit_per_class(z: np.ndarray) -> np.ndarray:
+    """One sigmoid logit ``z`` as the equivalent two logits ``(0, z)``; several logits unchanged."""
+    return np.concatenate([np.zeros_like(z), z], axis=1) if z.shape[1] == 1 else z
 
 
 def probability_bound(logit_bound: Any, n_classes: int, dtype: Any) -> np.ndarray:
@@ -246,6 +330,10 @@ def probability_bound(logit_bound: Any, n_classes: int, dtype: Any) -> np.ndarra
     each probability by at most ``max_k b_k / 2``; the rounding of the two
     softmax evaluations (each ``exp`` within 4 ulp, a sum of ``K`` terms and a
     division, in ``dtype``) adds ``2 (K + 6) eps`` relative to ``p <= 1``.
+    For one sigmoid output (``K = 2``) the same bound holds: it is the softmax
+    of the logits ``(0, z)`` with only ``z`` perturbed (the sigmoid's slope is
+    at most 1/4), and its two-branch evaluation (``exp``, one addition, one
+    division) rounds less than the softmax's.
     """
     b = np.asarray(logit_bound, dtype=np.float64)
     largest = b.max(axis=1) if b.ndim == 2 else b
