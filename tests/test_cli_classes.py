@@ -10,6 +10,7 @@ tinyprop.datasets.machine_states, or a formula of our own).
 from __future__ import annotations
 
 import csv
+import importlib.util
 import json
 import subprocess
 import sys
@@ -21,7 +22,7 @@ import pytest
 import tinyprop as tp
 from tinyprop.classify import encode_labels, stratified_split
 from tinyprop.cli import main
-from tinyprop.datasets import machine_states, write_machine_csv
+from tinyprop.datasets import load_iris, machine_states, write_machine_csv
 
 FAST = ["--epochs", "15", "--hidden", "6"]
 
@@ -62,7 +63,8 @@ def test_train_on_a_text_column_fits_the_library_recipe_bit_for_bit(classifier_r
                                            target="state")
     model = tp.load_model_file(folder / "pump.npz")
     assert np.array_equal(model.network.get_vector(), fitted.classifier.net.get_vector())
-    assert model.metadata["classes"] == {"target": "state", "labels": ["blocked", "cavitation", "normal", "off"]}
+    assert model.metadata["classes"] == {"target": "state", "labels": ["blocked", "cavitation", "normal", "off"],
+                                         "decision": "softmax"}
     report = json.loads((folder / "pump.report.json").read_text())
     assert report["data"]["split"] == {"training": int(training.size), "validation": 0, "test": int(test.size)}
     test_metrics = tp.classification_metrics(indices[test], fitted.classifier.probabilities(X[test]),
@@ -189,3 +191,121 @@ def test_predict_needs_inputs_for_a_model_without_names_and_uses_them_in_order(t
     assert rows[0] == ["output_0", "output_1"]
     expected = net.predict(np.array([[-1.0, 0.5], [0.25, 2.0]]))
     assert np.array_equal(np.array([[float(v) for v in r] for r in rows[1:]]), expected)
+
+
+# ------------------------------------------------------------------ yes/no columns: one sigmoid output
+def cavitation_csv(path: Path, n: int, seed: int) -> tuple[Path, np.ndarray, np.ndarray]:
+    """Synthetic pump test rig of our own: suction pressure (bar) and flow (m3/h); the pump cavitates ("yes") when
+    the suction pressure falls below what the flow needs (0.4 + 0.004 flow^2 bar, plus noise)."""
+    rng = np.random.default_rng(seed)
+    pressure = rng.uniform(0.2, 2.5, n)
+    flow = rng.uniform(2.0, 20.0, n)
+    cavitating = np.where(pressure + rng.normal(0, 0.08, n) < 0.4 + 0.004 * flow**2, "yes", "no")
+    path.write_text("# synthetic pump rig: is the pump cavitating?\nsuction_pressure [bar],flow [m3/h],cavitating\n"
+                    + "".join(f"{p!r},{q!r},{c}\n" for p, q, c in zip(pressure.tolist(), flow.tolist(), cavitating)))
+    return path, np.column_stack([pressure, flow]), cavitating
+
+
+def _key_shape(value, labels):
+    """The nesting of dict keys (the report's form, without its values; a dict keyed by the labels as one mark)."""
+    if not isinstance(value, dict):
+        return None
+    if set(value) == set(labels):
+        return "one entry per label"
+    return {k: _key_shape(v, labels) for k, v in value.items()}
+
+
+def test_yes_no_round_trip_train_then_predict_uses_one_sigmoid_output(classifier_run, tmp_path, capsys):
+    """Train on a yes/no column, then predict on the same CSV: one logit, labels and both probabilities equal to
+    the library's, the report and the printed lines of the same form as for a four-class target."""
+    data, X, answers = cavitation_csv(tmp_path / "rig.csv", 160, seed=5)
+    code, out, err = run_main(capsys, "train", str(data), "--targets", "cavitating", "--out", str(tmp_path / "c.npz"),
+                              "--quiet", *FAST)
+    assert code == 0, err
+    _, indices = encode_labels(answers)
+    training, _ = stratified_split(indices, 0.15, 0)  # the default --test-fraction
+    fitted = tp.fit_tabular_classification(X[training], answers[training], hidden=6, epochs=15, seed=0,
+                                           target="cavitating")
+    model = tp.load_model_file(tmp_path / "c.npz")
+    assert model.network.n_out == 1 and np.array_equal(model.network.get_vector(), fitted.classifier.net.get_vector())
+    assert model.metadata["classes"] == {"target": "cavitating", "labels": ["no", "yes"], "decision": "sigmoid"}
+    assert model.metadata["outputs"] == [{"name": "log-odds of yes"}]
+    report = json.loads((tmp_path / "c.report.json").read_text())
+    four = json.loads((classifier_run[0] / "pump.report.json").read_text())
+    assert _key_shape(report, report["data"]["classes"]) == _key_shape(four, four["data"]["classes"])
+    assert report["settings"]["loss"] == "CrossEntropyOnSigmoid"
+    assert [line.split(":")[0] for line in out.splitlines()][:6] == \
+        [line.split(":")[0] for line in classifier_run[2].stdout.splitlines()][:6]
+    code, out, err = run_main(capsys, "predict", str(tmp_path / "c.npz"), str(data))
+    assert code == 0, err
+    rows = read_rows_text(out)
+    assert rows[0] == ["cavitating", "probability_no", "probability_yes"]
+    classifier = tp.Classifier.from_metadata(model.network, model.metadata)
+    assert [r[0] for r in rows[1:]] == classifier.predict_labels(X).tolist()
+    p = np.array([[float(v) for v in r[1:]] for r in rows[1:]])
+    assert np.array_equal(p, classifier.probabilities(X))
+    z = model.network.predict(X)[:, 0]
+    np.testing.assert_allclose(p[:, 1], 1 / (1 + np.exp(-z)), rtol=1e-14)  # handbook logistic
+    assert np.mean(classifier.predict_labels(X) == answers) > 0.8
+
+
+def test_an_old_two_logit_yes_no_model_file_still_predicts_and_exports_the_same(tmp_path, capsys):
+    """A yes/no model file as tinyprop train wrote it before one sigmoid output (two logits; "classes" without
+    "decision"; outputs "logit of ..."): predict gives the softmax of its two logits and their argmax."""
+    data, X, answers = cavitation_csv(tmp_path / "rig.csv", 80, seed=6)
+    fitted = tp.fit_tabular_classification(X, answers, hidden=4, epochs=5, penalty=1e-3, two_class_output="softmax",
+                                           target="cavitating")
+    net = fitted.classifier.net
+    metadata = {"description": "classifier of cavitating (synthetic rig)",
+                "inputs": [{"name": "suction_pressure"}, {"name": "flow"}],
+                "outputs": [{"name": "logit of no"}, {"name": "logit of yes"}],
+                "classes": {"target": "cavitating", "labels": ["no", "yes"]}}
+    tp.save(net, tmp_path / "old.npz", metadata=metadata)
+    code, out, err = run_main(capsys, "predict", str(tmp_path / "old.npz"), str(data))
+    assert code == 0, err
+    rows = read_rows_text(out)
+    z = net.predict(X)
+    assert rows[0] == ["cavitating", "probability_no", "probability_yes"]
+    assert [r[0] for r in rows[1:]] == [("no", "yes")[k] for k in np.argmax(z, axis=1)]
+    expected = np.exp(z - z.max(axis=1, keepdims=True))
+    np.testing.assert_allclose(np.array([[float(v) for v in r[1:]] for r in rows[1:]]),
+                               expected / expected.sum(axis=1, keepdims=True), rtol=1e-15)
+    code, _, err = run_main(capsys, "export", str(tmp_path / "old.npz"), "--language", "python", "--out",
+                            str(tmp_path / "code"), "--name", "rig")
+    assert code == 0, err
+    spec = importlib.util.spec_from_file_location("rig_generated", tmp_path / "code" / "rig.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    assert [module.classify(list(map(float, row)))[0] for row in X] == np.argmax(z, axis=1).tolist()
+
+
+def test_train_reads_the_shipped_iris_file_whose_first_column_is_unnamed_row_labels(tmp_path, capsys):
+    """The shipped iris.csv (Anderson 1935, public domain; R's row-name column with an empty header cell): default
+    options train on the four measurements, never on the row numbers, with one note line; the weights are the
+    library recipe's on the same training rows (the 10-fold figure of test_classification_bars is that recipe's)."""
+    path = Path(tp.datasets.__file__).parent / "classification" / "iris.csv"
+    assert path.read_text().startswith('"",')
+    code, out, err = run_main(capsys, "train", str(path), "--targets", "Species", "--out", str(tmp_path / "i.npz"),
+                              "--quiet")
+    assert code == 0, err
+    assert err.count("\n") == 1 and "first column has no name" in err and "row labels" in err
+    data = load_iris()
+    model = tp.load_model_file(tmp_path / "i.npz")
+    assert [e["name"] for e in model.metadata["inputs"]] == list(data.input_names)
+    _, indices = encode_labels(data.labels)
+    training, _ = stratified_split(indices, 0.15, 0)  # the default --test-fraction
+    fitted = tp.fit_tabular_classification(data.X[training], data.labels[training], seed=0, target="Species")
+    assert np.array_equal(model.network.get_vector(), fitted.classifier.net.get_vector())
+    report = json.loads((tmp_path / "i.report.json").read_text())
+    assert report["metrics"]["test"]["errors"] <= 1  # seed 0: 1 of 24 test rows, as measured
+    code, out, err = run_main(capsys, "predict", str(tmp_path / "i.npz"), str(path))
+    assert code == 0 and [r[0] for r in read_rows_text(out)[1:]] == fitted.classifier.predict_labels(data.X).tolist()
+
+
+def test_an_empty_header_cell_other_than_the_first_is_refused_in_one_line(tmp_path, capsys):
+    for header, fields in (("a,,b", "field 2 is"), (",a,,b", "fields 1 and 3 are")):
+        data = tmp_path / "gap.csv"
+        data.write_text(header + "\n" + ",".join(["1"] * len(header.split(","))) + "\n")
+        code, _, err = run_main(capsys, "train", str(data), "--targets", "b", "--quiet")
+        assert code == 1 and err.count("\n") == 1 and f"header {fields} empty" in err, err
+        assert "the first may be unnamed" in err

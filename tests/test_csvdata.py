@@ -132,6 +132,26 @@ def _peak_ratio(path, size):
     return peak / size
 
 
+def test_an_unnamed_first_column_is_row_labels_and_left_out_of_the_columns(tmp_path):
+    """R's write.csv header (an empty first cell over row names; synthetic rows): the columns are the named ones,
+    the cells come from the right fields, subsets and renaming keep it so."""
+    path = tmp_path / "r.csv"
+    path.write_text('"","a","b"\n"1",0.5,x\n"2",1.5,y\n')
+    table = read_csv(path)
+    assert table.columns == ("a", "b") and table.row_labels
+    assert table.numeric(["a"]).tolist() == [[0.5], [1.5]]
+    assert [cells for _, cells in table.cells(["b", "a"])] == [("x", "0.5"), ("y", "1.5")]
+    assert [cells for _, cells in table.subset([1]).renamed(["p", "q"]).cells(["q"])] == [("y",)]
+    plain = tmp_path / "plain.csv"
+    plain.write_text("a,b\n1,2\n")
+    assert not read_csv(plain).row_labels
+    for header, what in (("a,,b", "header field 2 is empty"), (",a, ", "header fields 1 and 3 are empty"),
+                         (",", "header fields 1 and 2 are empty")):
+        path.write_text(header + "\n" + ",".join("1" * len(header.split(","))) + "\n")
+        with pytest.raises(CsvError, match=what + "; every column needs a name, except that the first may be"):
+            read_csv(path)
+
+
 def test_reading_peaks_below_three_times_the_file_size(tmp_path):
     size = _synthetic_csv(tmp_path / "m.csv", 1 << 20)
     ratio = _peak_ratio(tmp_path / "m.csv", size)

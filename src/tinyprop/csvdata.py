@@ -6,7 +6,12 @@ The accepted format:
   (default ``","``), quoted the usual CSV way when needed;
 - lines whose first non-blank character is ``#`` are comments, blank lines are
   skipped (both anywhere in the file);
-- the first other line is the header: one unique, non-empty name per column;
+- the first other line is the header: one unique, non-empty name per column,
+  except that the *first* header cell may be empty: that column holds row
+  labels (the row-name column R's ``write.csv`` writes, say); it is kept out
+  of :attr:`CsvTable.columns`, so it is never used, and
+  :attr:`CsvTable.row_labels` says it was there. Any other empty header cell
+  is refused;
 - every further line is a data row with exactly as many fields as the header.
 
 Numbers are decimal numbers as a spreadsheet writes them: an optional sign,
@@ -109,18 +114,22 @@ class CsvTable:
     """A CSV file read into memory: ``columns`` (header names), ``len(table)`` data rows.
 
     ``path`` is the name it was read from and ``sha256`` the SHA-256 of the
-    bytes read. Build it with :func:`read_csv`.
+    bytes read; ``row_labels`` is true when the file's first column has no
+    name (row labels, left out of ``columns``). Build it with :func:`read_csv`.
     """
 
     def __init__(
-        self, path: str, data: bytes, columns: tuple[str, ...], starts: np.ndarray, delimiter: str, sha256: str
+        self, path: str, data: bytes, columns: tuple[str, ...], starts: np.ndarray, delimiter: str, sha256: str,
+        row_labels: bool = False,
     ) -> None:
         self.path = path
         self.columns = columns
         self.sha256 = sha256
+        self.row_labels = row_labels
         self._data = data
         self._starts = starts  # byte offset of each data row's first character
         self._delimiter = delimiter
+        self._skip = int(row_labels)  # field index of columns[0]
 
     def __len__(self) -> int:
         return int(self._starts.shape[0])
@@ -145,18 +154,19 @@ class CsvTable:
         """The same table with the header names ``columns`` (one per column, in order)."""
         if len(columns) != len(self.columns):
             raise ValueError(f"renamed needs {len(self.columns)} column names, got {len(columns)}")
-        return CsvTable(self.path, self._data, tuple(columns), self._starts, self._delimiter, self.sha256)
+        return CsvTable(self.path, self._data, tuple(columns), self._starts, self._delimiter, self.sha256,
+                        self.row_labels)
 
     def subset(self, indices: Sequence[int]) -> "CsvTable":
         """The same table with only the data rows at ``indices`` (in that order)."""
         return CsvTable(self.path, self._data, self.columns, self._starts[np.asarray(indices, dtype=np.intp)],
-                        self._delimiter, self.sha256)
+                        self._delimiter, self.sha256, self.row_labels)
 
     # ------------------------------------------------------------ layer 1: splitting
     def cells(self, names: Sequence[str]) -> Iterator[tuple[int, tuple[str, ...]]]:
         """For each data row in order: ``(row index, the text of the columns names, in that order)``."""
         self.require_columns(names, "a column")
-        pick = _picker([self.columns.index(name) for name in names])
+        pick = _picker([self._skip + self.columns.index(name) for name in names])
         data, delimiter = self._data, self._delimiter
         for first in range(0, len(self), _CHUNK):  # offsets as Python ints a chunk at a time: little memory
             for row, start in enumerate(self._starts[first:first + _CHUNK].tolist(), first):
@@ -280,7 +290,9 @@ def _parse(name: str, data: bytes, delimiter: str) -> CsvTable:
     if not starts:
         raise CsvError(f"{name}: a header (line {header_line}) but no data rows")
     offsets = np.frombuffer(starts, dtype=np.int64)
-    return CsvTable(name, data, header, offsets, delimiter, hashlib.sha256(data).hexdigest())
+    row_labels = header[0] == ""
+    return CsvTable(name, data, header[int(row_labels):], offsets, delimiter, hashlib.sha256(data).hexdigest(),
+                    row_labels)
 
 
 def _picker(indices: list[int]) -> Callable[[list[str]], tuple[str, ...]]:
@@ -341,8 +353,12 @@ def _header(name: str, line: int, fields: list[str], delimiter: str) -> tuple[st
             "the file seems to separate fields with ';': read it with delimiter ';' (command line: --delimiter ';')"
         )
     empty = [i + 1 for i, n in enumerate(names) if not n]
-    if empty:
-        raise CsvError(f"{name}, line {line}: header field {empty[0]} is empty; every column needs a name")
+    unnamed = [i for i in empty if i > 1]  # an empty first cell names the row-label column
+    if unnamed or len(names) == len(empty):
+        listed = f"fields {', '.join(map(str, empty[:-1]))} and {empty[-1]} are" if len(empty) > 1 else (
+            f"field {empty[0]} is")
+        raise CsvError(f"{name}, line {line}: header {listed} empty; every column needs a name, except that "
+                       "the first may be unnamed (it is then read as row labels and never used)")
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise CsvError(f"{name}, line {line}: the header names {', '.join(map(repr, repeated))} more than once")

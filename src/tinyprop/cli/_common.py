@@ -151,15 +151,22 @@ def split_header(cells: Sequence[str]) -> tuple[tuple[str, ...], dict[str, str]]
 
 
 def _read_csv(path: str, delimiter: str) -> CsvTable:
-    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`); every problem becomes a one-line :class:`CommandError`."""
+    """Read a CSV file (:func:`tinyprop.csvdata.read_csv`); every problem becomes a one-line :class:`CommandError`.
+
+    A first column without a name (row labels) is left out, with one note line on stderr saying so.
+    """
     try:
-        return read_csv(path, delimiter=delimiter)
+        table = read_csv(path, delimiter=delimiter)
     except OSError as exc:
         raise CommandError(describe_os_error(exc)) from None
     except CsvError as exc:
         raise CommandError(str(exc)) from None
     except ValueError as exc:  # a --delimiter that cannot be used
         raise CommandError(f"--delimiter: {exc}", USAGE) from None
+    if table.row_labels:
+        print(f"note: {path}: the first column has no name in the header; it is read as row labels, never as an "
+              "input", file=sys.stderr)
+    return table
 
 
 def require_columns(table: CsvTable, names: list[str], what: str) -> None:
