@@ -333,3 +333,12 @@ def test_evidence_rounds_work_for_one_sigmoid_output(class_weights):
     gamma, squares = _well_determined(net, X, row_weights, 0.3)
     assert gamma == pytest.approx(np.sum(lam / (lam + 0.3)), rel=1e-9)
     assert squares == pytest.approx(np.sum(net.get_vector()[mask] ** 2), rel=1e-12)
+
+
+def test_integer_logits_are_decided_exactly_without_a_float_conversion():
+    """The integer code's aligned logits reach 2^62 in int64; float64 would round 2^62 and 2^62 + 1 together."""
+    from tinyprop.classify import decided_classes
+
+    aligned = np.array([[2**62, 2**62 + 1], [-(2**62) - 1, -(2**62)]], dtype=np.int64)
+    assert decided_classes(aligned).tolist() == [1, 1]
+    assert decided_classes(np.array([[1], [0], [-1]], dtype=np.int64)).tolist() == [1, 0, 0]

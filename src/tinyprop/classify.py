@@ -62,9 +62,10 @@ __all__ = [
 ]
 
 
-def _logits(z: Any) -> np.ndarray:
+def _logits(z: Any, *, exact: bool = False) -> np.ndarray:
+    """``z`` as a 2-D array: floats as they are, other numbers as float64 (kept as they are when ``exact``)."""
     z = np.asarray(z)
-    if z.dtype.kind != "f":
+    if z.dtype.kind != "f" and not exact:
         z = z.astype(np.float64)
     if z.ndim != 2:
         raise ValueError(f"logits must have shape (n_samples, n_outputs), got shape {z.shape}")
@@ -134,10 +135,12 @@ def class_probabilities(z: Any) -> np.ndarray:
 def decided_classes(z: Any) -> np.ndarray:
     """The decided class index of every row: ``z > 0`` for one column (sigmoid), else the largest logit's index.
 
+    Integer logits (the integer code's, aligned in ``int64``) are compared exactly, not converted.
+
     >>> decided_classes([[0.0], [1e-300], [-2.0]]).tolist(), decided_classes([[1.0, 1.0, 0.0]]).tolist()
     ([0, 1, 0], [0])
     """
-    z = _logits(z)
+    z = _logits(z, exact=True)
     if z.shape[1] == 1:
         return (z[:, 0] > 0).astype(np.intp)
     return np.argmax(z, axis=1)
