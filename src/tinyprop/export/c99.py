@@ -88,7 +88,7 @@ def export_c(
     literals:
         ``"decimal"`` (default) or ``"hex"`` (C99 hexadecimal constants).
     labels:
-        For a classifier (one logit per output): the class labels in output
+        For a classifier (one logit per output, or one for two labels): the labels in class
         order. Then ``<name>_classes.h`` / ``<name>_classes.c`` are written too,
         with the label table and ``int <name>_classify(const T *x, T *p)``
         (:mod:`tinyprop.export.classes`).

@@ -217,7 +217,7 @@ def export_c_fixed_point(
         Names and units of inputs and outputs and a description, written into
         the header comment (escaped), as for :func:`~tinyprop.export.export_c`.
     labels:
-        For a classifier (one logit per output): the class labels in output
+        For a classifier (one logit per output, or one for two labels): the labels in class
         order. Then ``<name>_classes.h`` / ``<name>_classes.c`` are written too,
         with the label table and ``int <name>_classify_q(const int16_t *x_q)``
         (:mod:`tinyprop.export.classes`); ``report.class_files`` lists them.

@@ -80,7 +80,7 @@ def export_python(
         :func:`tinyprop.export._metadata.check_metadata`); written into the
         header comment and into the module's constants, escaped.
     labels:
-        For a classifier (one logit per output): the class labels in output
+        For a classifier (one logit per output, or one for two labels): the labels in class
         order. Then the module also defines ``LABELS``, ``N_CLASSES`` and
         ``classify(x) -> (index, probabilities)`` (:mod:`tinyprop.export.classes`).
 
