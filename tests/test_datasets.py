@@ -365,6 +365,10 @@ def test_penguins_and_iris_loaders_match_the_published_row_counts():
     text = DATA.joinpath("classification", "penguins.csv").read_text().splitlines()
     assert len(text) - 1 == 344 and sum("NA" not in line for line in text[1:]) == 333
     assert np.all(np.isfinite(penguins.X)) and penguins.X[:, 3].min() > 2000  # body mass in grams
+    sexes = load_penguins(target="sex")  # from memory: 168 male, 165 female, 11 NA in the published data
+    assert Counter(sexes.labels.tolist()) == {"female": 165, "male": 168} and len(sexes.dropped_lines) == 11
+    with pytest.raises(ValueError, match="'species' or 'sex'"):
+        load_penguins(target="island")
     iris = load_iris()
     assert iris.X.shape == (150, 4) and iris.dropped_lines == ()
     assert Counter(iris.labels.tolist()) == {"setosa": 50, "versicolor": 50, "virginica": 50}

@@ -13,7 +13,9 @@ Bundled unchanged in ``classification/`` (see ``PROVENANCE.md``):
 :func:`load_penguins` returns the species and the four body measurements; the
 two rows whose measurements are all ``NA`` are left out (and listed in
 ``dropped_lines``), so 342 rows remain. ``sex`` is not used and its 9 further
-``NA`` cells do not matter. :func:`load_iris` returns all 150 rows.
+``NA`` cells do not matter. ``load_penguins(target="sex")`` returns the sex
+instead (a yes/no task: ``female`` or ``male``) on the 333 rows where it and
+the measurements are recorded. :func:`load_iris` returns all 150 rows.
 
 Only numpy and the standard library are used.
 """
@@ -86,18 +88,24 @@ def _load(name: str, filename: str, inputs: tuple[str, ...], target: str, citati
     )
 
 
-def load_penguins() -> ClassificationDataset:
-    """Penguin species (Adelie, Chinstrap, Gentoo) from bill length and depth, flipper length and body mass.
+def load_penguins(target: str = "species") -> ClassificationDataset:
+    """Penguin species (Adelie, Chinstrap, Gentoo), or sex, from bill length and depth, flipper length and body mass.
 
-    342 rows: the 2 rows (file lines 5 and 273) whose four measurements are all
-    ``NA`` are left out. Units: millimetres and grams.
+    ``target="species"``: 342 rows: the 2 rows (file lines 5 and 273) whose
+    four measurements are all ``NA`` are left out. ``target="sex"``
+    (``female``, ``male``): 333 rows, also leaving out the 9 rows whose sex
+    is ``NA``. Units: millimetres and grams.
 
     >>> data = load_penguins()
     >>> data.X.shape, data.classes, data.dropped_lines
     ((342, 4), ('Adelie', 'Chinstrap', 'Gentoo'), (5, 273))
+    >>> load_penguins(target="sex").classes
+    ('female', 'male')
     """
+    if target not in ("species", "sex"):
+        raise ValueError(f"target must be 'species' or 'sex', got {target!r}")
     inputs = ("bill_length_mm", "bill_depth_mm", "flipper_length_mm", "body_mass_g")
-    return _load("penguins", "penguins.csv", inputs, "species", PENGUINS_CITATION)
+    return _load("penguins", "penguins.csv", inputs, target, PENGUINS_CITATION)
 
 
 def load_iris() -> ClassificationDataset:
