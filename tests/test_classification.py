@@ -342,3 +342,24 @@ def test_integer_logits_are_decided_exactly_without_a_float_conversion():
     aligned = np.array([[2**62, 2**62 + 1], [-(2**62) - 1, -(2**62)]], dtype=np.int64)
     assert decided_classes(aligned).tolist() == [1, 1]
     assert decided_classes(np.array([[1], [0], [-1]], dtype=np.int64)).tolist() == [1, 0, 0]
+
+
+def test_cross_validated_penalty_for_one_sigmoid_output_is_the_held_out_log_loss_minimum():
+    """Synthetic pump, 'cavitating?': every candidate's score is the mean held-out log loss of -log p(true class)
+    from the sigmoid probabilities, recomputed here by fitting each fold with the fixed penalty (same seeds)."""
+    X, states = machine_states(90, seed=11)
+    answers = np.where(states == "cavitation", "yes", "no")
+    kwargs = dict(hidden=4, epochs=8, folds=3, seed=5)
+    fitted = tp.fit_tabular_classification(X, answers, penalty="cross-validation", penalties=(1e-4, 3e-1), **kwargs)
+    assert fitted.classifier.decision == "sigmoid"
+    _, indices = encode_labels(answers)
+    fold_seed = int(np.random.SeedSequence(5).generate_state(3)[0])  # the recipe's first stream
+    for l2, score in fitted.cross_validation:
+        losses = []
+        for held in stratified_folds(indices, 3, fold_seed):
+            kept = np.setdiff1d(np.arange(90), held)
+            fold = tp.fit_tabular_classification(X[kept], answers[kept], penalty=l2, hidden=4, epochs=8, seed=5)
+            p = fold.classifier.probabilities(X[held])
+            losses.append(-np.log(p[np.arange(held.size), indices[held]]))
+        assert score == pytest.approx(float(np.mean(np.concatenate(losses))), rel=1e-12)
+    assert fitted.penalty == min(fitted.cross_validation, key=lambda e: e[1])[0]
