@@ -31,6 +31,7 @@ LAYERS = (
     "tinyprop._words",
     "tinyprop._progress",
     "tinyprop._settings_equality",
+    "tinyprop.envelope",
     "tinyprop.activations",
     "tinyprop.registry",
     "tinyprop.layers",
