@@ -108,6 +108,7 @@ LAYERS = (
     "tinyprop.cli.check_cmd",
     "tinyprop.cli.demo_cmd",
     "tinyprop.cli.docs_cmd",
+    "tinyprop.cli.envelope_cmd",
     "tinyprop.cli.export_cmd",
     "tinyprop.cli.inspect_cmd",
     "tinyprop.cli.predict_cmd",

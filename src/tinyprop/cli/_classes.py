@@ -37,7 +37,7 @@ from ..recipes import (
     fit_tabular_classification,
 )
 from ._common import SAFETY, USAGE, CommandError, describe_os_error, numeric_columns, write_json
-from ._fit_report import architecture
+from ._fit_report import architecture, training_envelope
 
 # options of tinyprop train that belong to the regression recipe: refused with a class target
 _REGRESSION_ONLY = ("activation", "method", "optimizer", "lr", "schedule", "momentum", "batch_size",
@@ -147,6 +147,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         "inputs": [{"name": name} for name in inputs],
         "outputs": [{"name": f"logit of {label}"} for label in classes],
         **classifier.metadata(),
+        **training_envelope(X[training], inputs, args.envelope_margin).to_metadata(),
         "training": {"settings": _settings(args, hidden, epochs, weights), "data": _source(args.data)},
     }
     started = time.perf_counter()
