@@ -75,6 +75,7 @@ LAYERS = (
     "tinyprop.export._plan",
     "tinyprop.export._activations",
     "tinyprop.export._header",
+    "tinyprop.export._envelope",
     "tinyprop.export.classes",
     "tinyprop.export.bound",
     "tinyprop.export.c99",

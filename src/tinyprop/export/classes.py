@@ -121,8 +121,11 @@ def write_c_classes(folder: Path, name: str, labels: tuple[str, ...], ctype: str
     return _files(folder, name, labels, f"{name}.h", declaration, about, body)
 
 
-def python_classes(labels: tuple[str, ...]) -> str:
-    """The text appended to the generated Python module: ``LABELS``, ``N_CLASSES``, ``classify``."""
+def python_classes(labels: tuple[str, ...], checks_envelope: bool = False) -> str:
+    """The text appended to the generated Python module: ``LABELS``, ``N_CLASSES``, ``classify``.
+
+    ``checks_envelope``: the module's ``predict`` returns ``(y, outside)``; ``classify`` takes ``y``.
+    """
     table = "".join(f"\n    {python_literal(label)}," for label in labels)
     return f'''
 
@@ -138,7 +141,7 @@ def classify(x: "list[float]") -> "tuple[int, list[float]]":
     The index is that of the largest logit predict(x) (the first on a tie); the probabilities are
     p[k] = exp(z[k] - max z) / sum_j exp(z[j] - max z), the maximum subtracted so nothing overflows.
     """
-    z = predict(x)
+    z = predict(x){"[0]" if checks_envelope else ""}
     best = 0
     for k in range(1, len(z)):
         if z[k] > z[best]:
