@@ -83,7 +83,7 @@ class Envelope:
         reversed_ = np.flatnonzero(low > high)
         if reversed_.size:
             j = int(reversed_[0])
-            raise ValueError(f"low must not exceed high; input {j} has low {low[j]!r} > high {high[j]!r}"
+            raise ValueError(f"low must not exceed high; input {j} has low {float(low[j])!r} > high {float(high[j])!r}"
                              + (f" (and {reversed_.size - 1} more inputs)" if reversed_.size > 1 else ""))
         names = self.names
         if names is not None:
