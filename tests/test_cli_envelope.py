@@ -42,7 +42,8 @@ def exchanger_rows(n: int = 80, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
 
 
 def write_csv(path: Path, X: np.ndarray, y: np.ndarray, header: str) -> Path:
-    lines = ["# synthetic heat exchanger", header] + [f"{float(a)!r},{float(b)!r},{float(c)!r}" for (a, b), c in zip(X, y)]
+    rows = [",".join(repr(float(v)) for v in (a, b, c)) for (a, b), c in zip(X, y)]
+    lines = ["# synthetic heat exchanger", header] + rows
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
     return path
 

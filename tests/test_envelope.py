@@ -214,3 +214,12 @@ def test_the_classification_recipe_records_the_envelope_of_its_rows_and_puts_it_
     metadata = fitted.metadata()
     assert tp.Envelope.from_metadata(metadata) == fitted.envelope
     assert {key: metadata[key] for key in fitted.classifier.metadata()} == fitted.classifier.metadata()
+
+
+def test_extreme_limits_give_an_infinite_width_and_a_clear_refusal_to_widen_beyond_float64():
+    env = tp.Envelope([-1e308], [1e308])
+    assert env.width.tolist() == [math.inf] and env.contains([[0.0]])
+    with pytest.raises(ValueError, match="widening by 0.5 of each width leaves the float64 range"):
+        env.widened(0.5)
+    far = tp.Envelope([-1e308], [-1e308 + 1e292]).check([[1e308]])
+    assert far.inputs[0].largest == math.inf

@@ -119,8 +119,9 @@ class Envelope:
 
     @property
     def width(self) -> np.ndarray:
-        """``high - low`` per input."""
-        return self.high - self.low
+        """``high - low`` per input (``inf`` where the difference exceeds the float64 range)."""
+        with np.errstate(over="ignore"):
+            return self.high - self.low
 
     def label(self, j: int) -> str:
         """``"input 'name'"`` when the envelope has names, else ``"input j"``."""
@@ -140,6 +141,8 @@ class Envelope:
         grow = fraction * np.where(self.width > 0, self.width, np.maximum(np.abs(self.low), 1.0))
         with np.errstate(over="ignore"):
             low, high = self.low - grow, self.high + grow
+        if not (np.isfinite(low).all() and np.isfinite(high).all()):
+            raise ValueError(f"widening by {fraction:g} of each width leaves the float64 range; use a smaller fraction")
         return Envelope(low, high, self.names, f"{self.source}, widened by {fraction:g} of each width on both sides")
 
     def with_limits(self, which: int | str, low: float, high: float) -> "Envelope":
@@ -176,7 +179,8 @@ class Envelope:
         if rows.ndim != 2 or rows.shape[1] != self.n_in:
             raise ValueError(f"X must have shape (n_rows, {self.n_in}) for an envelope of {self.n_in} inputs, "
                              f"got shape {rows.shape}")
-        distance = np.maximum(np.maximum(self.low - rows, rows - self.high), 0.0)
+        with np.errstate(over="ignore"):  # a distance beyond the float64 range is reported as inf
+            distance = np.maximum(np.maximum(self.low - rows, rows - self.high), 0.0)
         outside = distance > 0
         found = []
         for j in np.flatnonzero(outside.any(axis=0)):
