@@ -68,6 +68,8 @@ def test_train_stores_the_envelope_of_the_training_rows_widened_by_the_margin(ex
     expected = tp.Envelope.of_rows(X[split.training], names=list(INPUTS)).widened(0.1)
     stored = tp.Envelope.from_metadata(tp.load_model_file(model).metadata)
     assert stored == expected
+    report = json.loads(model.with_name("exchanger.report.json").read_text(encoding="utf-8"))
+    assert tp.Envelope.from_metadata(report) == expected
     assert stored.source == "training data, widened by 0.1 of each width on both sides"
 
 
@@ -80,6 +82,8 @@ def test_train_on_a_class_column_stores_the_envelope_of_its_training_rows(tmp_pa
     training, _ = stratified_split(encode_labels(states)[1], 0.2, 0)
     stored = tp.Envelope.from_metadata(tp.load_model_file(tmp_path / "machine.npz").metadata)
     assert stored == tp.Envelope.of_rows(X[training], names=list(MACHINE_INPUTS))
+    report = json.loads((tmp_path / "machine.report.json").read_text(encoding="utf-8"))
+    assert tp.Envelope.from_metadata(report) == stored
 
 
 def test_check_data_with_swapped_columns_warns_that_the_rows_lie_outside_the_envelope(exchanger, capsys):

@@ -142,12 +142,13 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     integer = _integer_code_agreement(net, X[training], X[test if test.size else training])
     print(f"integer-only C (formats from the training rows), on the {'test' if test.size else 'training'} rows: "
           f"{integer['agreement'] if 'agreement' in integer else integer['unavailable']}")
+    envelope = training_envelope(X[training], inputs, args.envelope_margin).to_metadata()
     metadata = {
         "description": f"classifier of {target} fitted by tinyprop train to {Path(args.data).name}",
         "inputs": [{"name": name} for name in inputs],
         "outputs": [{"name": f"logit of {label}"} for label in classes],
         **classifier.metadata(),
-        **training_envelope(X[training], inputs, args.envelope_margin).to_metadata(),
+        **envelope,
         "training": {"settings": _settings(args, hidden, epochs, weights), "data": _source(args.data)},
     }
     started = time.perf_counter()
@@ -176,6 +177,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         "metrics": {part: None if m is None else m.to_dict() for part, m in metrics.items()},
         "integer_code": integer,
         "timings_s": {"read": read_seconds, "fit": fit_seconds, "evaluate": evaluate_seconds, "save": save_seconds},
+        **envelope,
         "model_file": os.fspath(model_path),
         "safety": SAFETY,
     }
