@@ -27,6 +27,7 @@ from .checkpoint import CheckpointError, TrainingState, load_checkpoint, save_ch
 from .classify import Classifier
 from .classmetrics import ClassificationMetrics, classification_metrics
 from .ensemble import Ensemble
+from .envelope import Envelope, EnvelopeCheck, EnvelopeError, OutsideEnvelope
 from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from .layers import Affine, Standardize, Unstandardize
 from .losses import (
@@ -105,6 +106,8 @@ __all__ = [
     # guarantees over an input box
     "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
     "UndeclaredActivation",
+    # the operating envelope
+    "Envelope", "EnvelopeCheck", "EnvelopeError", "OutsideEnvelope",
     # how far to trust a fit
     "parameter_uncertainty", "ParameterUncertainty", "PosteriorUncertainty", "PredictionIntervals",
     "RankDeficientError", "parameter_labels",

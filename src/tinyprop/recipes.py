@@ -67,6 +67,7 @@ from .classify import (
     one_hot,
     stratified_folds,
 )
+from .envelope import Envelope
 from .layers import Affine, Standardize, Unstandardize
 from .losses import CrossEntropyOnSigmoid, CrossEntropyOnSoftmax, MeanSquaredError
 from .mlp import build_mlp
@@ -131,6 +132,8 @@ class RecipeResult:
     (evidence-lm; its ``noise_sd``, ``effective_parameters`` and ``penalty``,
     and ``parameter_uncertainty(net, result=solved)`` for intervals);
     ``training``: the :class:`~tinyprop.train.TrainingResult` (adam-early-stopping).
+    ``envelope``: the :class:`~tinyprop.envelope.Envelope` of the training
+    inputs (raw units); :meth:`metadata` puts it into a model file's metadata.
     """
 
     method: str
@@ -140,6 +143,11 @@ class RecipeResult:
     chosen: int
     solved: SolveResult | None = field(default=None, repr=False)
     training: TrainingResult | None = field(default=None, repr=False)
+    envelope: Envelope | None = field(default=None, repr=False)
+
+    def metadata(self) -> dict[str, Any]:
+        """What a model file of the fitted network should keep: ``{"envelope": ...}`` of the training inputs."""
+        return {} if self.envelope is None else self.envelope.to_metadata()
 
     def summary(self) -> dict[str, Any]:
         """JSON-able facts for reports and model metadata."""
@@ -233,7 +241,7 @@ def fit_tabular_regression(
         )
         _, init_seed, _ = _streams(seed)
         return net, RecipeResult(method=branch, reason=reason, seeds=(init_seed,), log_evidence=(), chosen=0,
-                                 training=training)
+                                 training=training, envelope=Envelope.of_rows(X64))
     restarts = positive_int(RECIPE_RESTARTS if restarts is None else restarts, "restarts")
     seeds = tuple(int(s) for s in np.random.SeedSequence(seed).generate_state(restarts))
     best: tuple[Network, SolveResult] | None = None
@@ -248,7 +256,7 @@ def fit_tabular_regression(
     assert best is not None
     return best[0], RecipeResult(
         method=branch, reason=reason, seeds=seeds, log_evidence=tuple(evidences),
-        chosen=evidences.index(float(best[1].log_evidence)), solved=best[1],
+        chosen=evidences.index(float(best[1].log_evidence)), solved=best[1], envelope=Envelope.of_rows(X64),
     )
 
 
@@ -837,7 +845,8 @@ class ClassificationFit:
     tried; empty unless the penalty was cross-validated), ``evidence``
     (``(l2, gamma, sum of squared weights)`` per evidence round; empty unless
     the evidence framework chose the penalty) and ``class_weights`` (one per
-    label, all 1 unless asked for).
+    label, all 1 unless asked for), ``envelope`` (the
+    :class:`~tinyprop.envelope.Envelope` of the training inputs, raw units).
     """
 
     classifier: Classifier
@@ -846,6 +855,11 @@ class ClassificationFit:
     cross_validation: tuple[tuple[float, float], ...]
     class_weights: tuple[float, ...]
     evidence: tuple[tuple[float, float, float], ...] = ()
+    envelope: Envelope | None = None
+
+    def metadata(self) -> dict[str, Any]:
+        """What a model file of the classifier should keep: its labels and target, and the envelope."""
+        return {**self.classifier.metadata(), **({} if self.envelope is None else self.envelope.to_metadata())}
 
 
 def fit_tabular_classification(
@@ -988,7 +1002,7 @@ def fit_tabular_classification(
         chosen = real_in_range(penalty, "penalty", low=0.0)
     net, result = trained(every_row, chosen)
     return ClassificationFit(Classifier(net, classes, str(target)), result, chosen, tuple(scores),
-                             tuple(float(w) for w in weights), tuple(rounds))
+                             tuple(float(w) for w in weights), tuple(rounds), Envelope.of_rows(X))
 
 
 def _well_determined(net: Network, X: np.ndarray, row_weights: np.ndarray, alpha: float) -> tuple[float, float]:

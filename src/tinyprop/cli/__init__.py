@@ -29,7 +29,18 @@ import warnings
 from typing import NoReturn, Sequence
 
 from .._version import __version__
-from . import bench_cmd, certify_cmd, check_cmd, demo_cmd, docs_cmd, export_cmd, inspect_cmd, predict_cmd, train_cmd
+from . import (
+    bench_cmd,
+    certify_cmd,
+    check_cmd,
+    demo_cmd,
+    docs_cmd,
+    envelope_cmd,
+    export_cmd,
+    inspect_cmd,
+    predict_cmd,
+    train_cmd,
+)
 from ._common import USAGE, CommandError, describe_os_error, option_words
 
 __all__ = ["main"]
@@ -43,6 +54,7 @@ COMMANDS = {
     "predict": predict_cmd,
     "bench": bench_cmd,
     "certify": certify_cmd,
+    "envelope": envelope_cmd,
     "docs": docs_cmd,
 }
 

@@ -23,6 +23,18 @@ def positive_float(text: str) -> float:
     return value
 
 
+def non_negative_float(text: str) -> float:
+    value = _float(text)
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {text!r}")
+    return value
+
+
+def numbers(text: str) -> list[float]:
+    """Comma-separated finite numbers."""
+    return [_float(part.strip()) for part in text.split(",")]
+
+
 def fraction(text: str) -> float:
     """A number in ``[0, 1)``."""
     return _below_one(text, "a fraction")

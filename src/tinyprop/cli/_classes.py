@@ -37,7 +37,7 @@ from ..recipes import (
     fit_tabular_classification,
 )
 from ._common import SAFETY, USAGE, CommandError, describe_os_error, numeric_columns, write_json
-from ._fit_report import architecture
+from ._fit_report import architecture, training_envelope
 
 # options of tinyprop train that belong to the regression recipe: refused with a class target
 _REGRESSION_ONLY = ("activation", "method", "optimizer", "lr", "schedule", "momentum", "batch_size",
@@ -142,11 +142,13 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     integer = _integer_code_agreement(net, X[training], X[test if test.size else training])
     print(f"integer-only C (formats from the training rows), on the {'test' if test.size else 'training'} rows: "
           f"{integer['agreement'] if 'agreement' in integer else integer['unavailable']}")
+    envelope = training_envelope(X[training], inputs, args.envelope_margin).to_metadata()
     metadata = {
         "description": f"classifier of {target} fitted by tinyprop train to {Path(args.data).name}",
         "inputs": [{"name": name} for name in inputs],
         "outputs": _output_names(classifier),
         **classifier.metadata(),
+        **envelope,
         "training": {"settings": _settings(args, hidden, epochs, weights, classifier), "data": _source(args.data)},
     }
     started = time.perf_counter()
@@ -175,6 +177,7 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
         "metrics": {part: None if m is None else m.to_dict() for part, m in metrics.items()},
         "integer_code": integer,
         "timings_s": {"read": read_seconds, "fit": fit_seconds, "evaluate": evaluate_seconds, "save": save_seconds},
+        **envelope,
         "model_file": os.fspath(model_path),
         "safety": SAFETY,
     }

@@ -14,6 +14,7 @@ import numpy as np
 
 from ..archive import read_archive, write_bytes_atomically
 from ..csvdata import CsvError, CsvTable, read_csv
+from ..envelope import Envelope, EnvelopeError
 from ..modelfile import ModelFile, load_model_file
 from ..plots import PLOT_HINT, PlotsUnavailable, learning_curves, parity_plot
 from ..registry import activation_class
@@ -213,6 +214,36 @@ def stored_names(metadata: dict, key: str) -> list[str] | None:
     if not named:
         return None
     return [e["name"] for e in entries]
+
+
+def warn_outside_envelope(command: str, metadata: dict, X: np.ndarray, rows: str) -> None:
+    """Warn on stderr when rows of ``X`` lie outside the model's stored envelope: a summary, then a line per input.
+
+    ``rows`` names the rows in the summary (``"the 40 rows of data.csv"``).
+    Distances are given in the input's unit when the metadata has one. A
+    model without an envelope gets no warning; a malformed one gets one line.
+    """
+    try:
+        envelope = Envelope.from_metadata(metadata, n_in=X.shape[1])
+    except EnvelopeError as exc:
+        warn(command, f"the model's stored envelope cannot be used, rows were not compared with it: {exc}")
+        return
+    if envelope is None or X.shape[0] == 0:
+        return
+    result = envelope.check(X)
+    if result.inside:
+        return
+    warn(command, f"{int(result.outside_rows.sum())} of {rows} lie outside the model's operating envelope "
+                  f"({envelope.source}); no error measured or bound proven for the model holds there:")
+    for line in result.lines(_input_units(metadata, envelope.n_in)):
+        warn(command, f"  {line}")
+
+
+def _input_units(metadata: dict, n_in: int) -> list[str] | None:
+    entries = metadata.get("inputs")
+    if not isinstance(entries, list) or len(entries) != n_in:
+        return None
+    return [e.get("unit", "") if isinstance(e, dict) and isinstance(e.get("unit", ""), str) else "" for e in entries]
 
 
 def output_folder(path: str | os.PathLike[str]) -> Path:

@@ -8,10 +8,14 @@ keep: the model file's metadata and the JSON training report.
 from __future__ import annotations
 
 import time
+from collections.abc import Sequence
 from typing import Any
+
+import numpy as np
 
 from .._json import finite_or_none
 from .._version import __version__
+from ..envelope import Envelope
 from ..layers import Affine, ColumnScaling
 from ..modelfile import fingerprint
 from ..network import Network
@@ -40,12 +44,19 @@ def architecture(net: Network) -> str:
     return " -> ".join(parts)
 
 
+def training_envelope(X_train: np.ndarray, names: Sequence[str], margin: float) -> Envelope:
+    """The envelope of the training rows, widened by ``margin`` (``--envelope-margin``) of each input's width."""
+    return Envelope.of_rows(X_train, names=list(names)).widened(margin)
+
+
 def model_metadata(
-    data: Dataset, settings: FitSettings, description: str, outcome: FitOutcome | None = None
+    data: Dataset, settings: FitSettings, description: str, outcome: FitOutcome | None = None,
+    envelope: Envelope | None = None,
 ) -> dict[str, Any]:
     """What the model file keeps: input and output names and units (used by ``export``), a description, the recipe.
 
-    For the default recipe's methods also the branch it chose and why (``training.fit``).
+    For the default recipe's methods also the branch it chose and why (``training.fit``); the operating
+    ``envelope`` when given.
     """
     training: dict[str, Any] = {"settings": settings.to_dict(), "data": data.source}
     if outcome is not None and outcome.recipe is not None:
@@ -54,6 +65,7 @@ def model_metadata(
         "description": description,
         **data.ports(),
         "training": training,
+        **({} if envelope is None else envelope.to_metadata()),
     }
 
 

@@ -2,7 +2,8 @@
 
 The command is :func:`tinyprop.certificate` written out: it loads the model
 (verifying every hash), takes the box from ``--low`` and ``--high`` (one number
-per input, in the model's input order), prints the certificate's text and, with
+per input, in the model's input order; without them, the operating envelope
+stored in the model's metadata), prints the certificate's text and, with
 ``--json``, writes its record. Input and output names come from the model's
 metadata when it stores them. Exit status 0 when the certificate is written,
 whether or not the tolerances were met (the text says which).
@@ -16,6 +17,7 @@ from typing import Any
 
 from .._json import finite_or_none
 from ..bounds import UndeclaredActivation, certificate
+from ..envelope import Envelope, EnvelopeError
 from . import _args
 from ._common import SAFETY, USAGE, CommandError, read_model, stored_names, write_json
 from ._imports import add_import_option, import_modules
@@ -27,11 +29,13 @@ EPILOG = f"""the method, its sources and what is guaranteed: docs/guarantees.md 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL.npz", help="model file written by tinyprop")
-    parser.add_argument("--low", type=_numbers, required=True, metavar="NUMBERS",
+    parser.add_argument("--low", type=_args.numbers, metavar="NUMBERS",
                         help="lower end of the box, one number per input, comma-separated (e.g. 40,2; "
-                             "a value that starts with '-' needs '=': --low=-1,-2)")
-    parser.add_argument("--high", type=_numbers, required=True, metavar="NUMBERS",
-                        help="upper end of the box, one number per input, comma-separated (e.g. 90,20)")
+                             "a value that starts with '-' needs '=': --low=-1,-2); default: the low limits of the "
+                             "operating envelope stored in the model")
+    parser.add_argument("--high", type=_args.numbers, metavar="NUMBERS",
+                        help="upper end of the box, one number per input, comma-separated (e.g. 90,20); default: the "
+                             "high limits of the stored envelope")
     parser.add_argument("--json", metavar="PATH", help="also write the certificate as JSON to PATH")
     parser.add_argument("--tolerance", type=_args.positive_float, default=1e-6,
                         help="output bounds: gap allowed, relative to the output's range (default 1e-6)")
@@ -49,13 +53,14 @@ def run(args: argparse.Namespace) -> int:
     import_modules(args.imports)
     model = read_model(args.model)
     net = model.network
-    for option, values in (("--low", args.low), ("--high", args.high)):
+    low, high = _box(args, model.metadata, net.n_in)
+    for option, values in (("--low", low), ("--high", high)):
         if len(values) != net.n_in:
             raise CommandError(f"{option} must give one number per model input ({net.n_in}), got {len(values)}", USAGE)
     inputs = stored_names(model.metadata, "inputs")
     outputs = stored_names(model.metadata, "outputs")
     try:
-        cert = certificate(net, args.low, args.high, tolerance=args.tolerance, slope_tolerance=args.slope_tolerance,
+        cert = certificate(net, low, high, tolerance=args.tolerance, slope_tolerance=args.slope_tolerance,
                            max_seconds=args.max_seconds, max_splits=args.max_splits,
                            input_names=inputs if inputs and len(inputs) == net.n_in else None,
                            output_names=outputs if outputs and len(outputs) == net.n_out else None)
@@ -71,9 +76,22 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _numbers(text: str) -> list[float]:
-    """Comma-separated finite numbers."""
-    return [_args.number(part.strip()) for part in text.split(",")]
+def _box(args: argparse.Namespace, metadata: dict[str, Any], n_in: int) -> tuple[list[float], list[float]]:
+    """``--low`` and ``--high``, or without them the operating envelope stored in the model."""
+    if (args.low is None) != (args.high is None):
+        raise CommandError("give both --low and --high, or neither (then the model's stored envelope is the box)",
+                           USAGE)
+    if args.low is not None:
+        return args.low, args.high
+    try:
+        envelope = Envelope.from_metadata(metadata, n_in=n_in)
+    except EnvelopeError as exc:
+        raise CommandError(f"cannot use the model's stored envelope: {exc}; give --low and --high") from None
+    if envelope is None:
+        raise CommandError("the model stores no operating envelope; give the box with --low and --high "
+                           "(or store an envelope with 'tinyprop envelope')", USAGE)
+    print(f"box: the model's operating envelope ({envelope.source})")
+    return envelope.low.tolist(), envelope.high.tolist()
 
 
 def _strict(value: Any) -> Any:

@@ -28,7 +28,16 @@ from ..layers import Standardize, Unstandardize
 from ..losses import MeanSquaredError
 from ..network import Network
 from . import _args
-from ._common import USAGE, CommandError, numeric_columns, read_model, read_table, require_columns, stored_names
+from ._common import (
+    USAGE,
+    CommandError,
+    numeric_columns,
+    read_model,
+    read_table,
+    require_columns,
+    stored_names,
+    warn_outside_envelope,
+)
 from ._imports import add_import_option, import_modules
 
 HELP = "check a saved model's gradient against numerical differentiation (exit 1 if it fails)"
@@ -71,6 +80,7 @@ def run(args: argparse.Namespace) -> int:
     if args.data:
         X, y = _rows_from_csv(args, model.metadata, net, rng)
         source = f"{count(X.shape[0], 'row')} of {args.data}"
+        warn_outside_envelope("check", model.metadata, X, f"the {source}")
     else:
         X, y = _generated_rows(net, args.rows, rng)
         source = f"{X.shape[0]} generated rows (seed {args.seed})"

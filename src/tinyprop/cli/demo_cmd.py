@@ -21,13 +21,14 @@ import numpy as np
 
 from ..check import check_gradient
 from ..datasets.battery import BATTERY_TARGET, battery_pack, write_battery_csv
+from ..envelope import Envelope
 from ..export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
 from ..losses import MeanSquaredError
 from ..modelfile import save
 from ..network import Network
 from ..recipes import Dataset, FitOutcome, FitSettings, evaluate_all, fit, split_rows
 from ._common import SAFETY, CommandError, output_folder, write_json, write_plots
-from ._fit_report import architecture, model_metadata, report
+from ._fit_report import architecture, model_metadata, report, training_envelope
 
 HELP = "the whole job on a synthetic battery state-of-charge scenario: check, train, test, save, export"
 
@@ -90,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
                      f"largest error {test['max_abs_error']:.4f}, on {sizes['test']} synthetic test rows")
 
     clock = time.perf_counter()
-    files = _save_and_export(out, net, data, outcome)
+    files = _save_and_export(out, net, data, outcome, training_envelope(data.X[split.training], data.input_names, 0.0))
     agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
     fixed = _export_fixed_point(out, net, data, split.training, split.test)
     files["integer C"] = [fixed.header, fixed.source]
@@ -134,10 +135,12 @@ def _step(number: int, label: str, text: str, flush: bool = False) -> None:
     print(f"{number}/6 {label:<9}{text}", flush=flush)
 
 
-def _save_and_export(out: Path, net: Network, data: Dataset, outcome: FitOutcome) -> dict[str, list[Path]]:
-    """The model file (with names, units and a description), C and Python code, and the data as CSV."""
+def _save_and_export(
+    out: Path, net: Network, data: Dataset, outcome: FitOutcome, envelope: Envelope
+) -> dict[str, list[Path]]:
+    """The model file (with names, units, a description and the envelope), C and Python code, and the data as CSV."""
     description = f"tinyprop demo: battery state of charge. {SYNTHETIC}."
-    metadata = model_metadata(data, DEMO_SETTINGS, description, outcome)
+    metadata = model_metadata(data, DEMO_SETTINGS, description, outcome, envelope)
     export_metadata = {**data.ports(), "description": description}
     model = out / f"{NAME}.npz"
     save(net, model, metadata=metadata)

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..classify import class_entry
+from ..envelope import Envelope, EnvelopeError
 from ..export import export_c, export_c_fixed_point, export_python
 from ..export._identifiers import check_c_name, check_module_name
 from ..export.classes import fixed_point_class_agreement
@@ -61,6 +62,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="number type of the C code (default float)")
     parser.add_argument("--no-metadata", action="store_true",
                         help="leave the model's names, units and description out of the code")
+    parser.add_argument("--check-envelope", action="store_true",
+                        help="c and python: the generated predict also reports the inputs outside the operating "
+                             "envelope stored in the model (C: int <name>_predict returns their count; Python: "
+                             "predict returns (y, outside)); an error if the model stores none")
     fixed = parser.add_argument_group("c-fixed", "number formats of the integer-only C code")
     fixed.add_argument("--calibration", metavar="DATA.csv",
                        help="rows whose input columns set the formats (cover the whole operating range)")
@@ -88,15 +93,18 @@ def run(args: argparse.Namespace) -> int:
     model = read_model(args.model)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
+    envelope = _stored_envelope(model) if args.check_envelope else None
     entry = class_entry(model.metadata)
     labels = None if entry is None else entry.get("labels")  # a classifier: add the class decision
     written, report, agreement = [], None, None
     try:
         if "c" in languages:
             dtype = "float32" if args.c_type == "float" else "float64"
-            written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata, labels=labels)
+            written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata, labels=labels,
+                                envelope=envelope)
         if "python" in languages:
-            written.append(export_python(model.network, folder, name=args.name, metadata=metadata, labels=labels))
+            written.append(export_python(model.network, folder, name=args.name, metadata=metadata, labels=labels,
+                                         envelope=envelope))
         if "c-fixed" in languages:
             calibration = _calibration_rows(args, model)
             report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
@@ -156,6 +164,18 @@ def _calibration_rows(args: argparse.Namespace, model: ModelFile) -> np.ndarray:
     if X.shape[0] == 0:
         raise CommandError(f"{args.calibration}: no data rows to calibrate on")
     return X
+
+
+def _stored_envelope(model: ModelFile) -> Envelope:
+    """The operating envelope stored in the model, for ``--check-envelope``."""
+    try:
+        envelope = Envelope.from_metadata(model.metadata, n_in=model.network.n_in)
+    except EnvelopeError as exc:
+        raise CommandError(f"--check-envelope: {exc}") from None
+    if envelope is None:
+        raise CommandError("--check-envelope: the model stores no operating envelope; store one with "
+                           "'tinyprop envelope MODEL.npz --low ... --high ... --out NEW.npz'", USAGE)
+    return envelope
 
 
 def _export_metadata(metadata: dict[str, Any]) -> dict[str, Any] | None:

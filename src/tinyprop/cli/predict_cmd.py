@@ -12,7 +12,9 @@ columns are ignored. The output CSV has one row per data row, in order:
   with one sigmoid output: both classes' probabilities).
 
 Ensemble files (:class:`tinyprop.Ensemble`) are applied the same way.
-A file that lacks an input column is refused with one line naming the
+Rows outside the operating envelope stored in the model are
+predicted all the same, with a warning on stderr per input outside (how many
+rows, how far). A file that lacks an input column is refused with one line naming the
 column(s); a cell of an input column that is not a number is refused with its
 line and column (exit status 1).
 """
@@ -28,11 +30,20 @@ from typing import Any
 
 import numpy as np
 
+from .._words import count
 from ..archive import read_archive
 from ..classify import check_decision, class_entry, class_probabilities, decided_classes
 from ..ensemble import ENSEMBLE_FORMAT, Ensemble
 from . import _args
-from ._common import CommandError, describe_os_error, numeric_columns, read_model, read_table, stored_names
+from ._common import (
+    CommandError,
+    describe_os_error,
+    numeric_columns,
+    read_model,
+    read_table,
+    stored_names,
+    warn_outside_envelope,
+)
 from ._imports import add_import_option, import_modules
 
 HELP = "apply a model file to the rows of a CSV file; write the predictions as CSV"
@@ -63,6 +74,7 @@ def run(args: argparse.Namespace) -> int:
         raise CommandError(f"{args.data}: no column named {', '.join(map(repr, missing))}, which the model needs as "
                            f"input{'s' * (len(missing) > 1)}; the header has {', '.join(map(repr, table.columns))}")
     X, _ = numeric_columns(table, list(inputs), [])
+    warn_outside_envelope("predict", metadata, X, f"the {count(X.shape[0], 'row')} of {args.data}")
     header, columns = prediction_columns(model.predict(X), metadata, n_out)
     text = io.StringIO()
     writer = csv.writer(text, lineterminator="\n")

@@ -44,7 +44,7 @@ from ._common import (
     write_json,
     write_plots,
 )
-from ._fit_report import architecture, model_metadata, report, split_for_command
+from ._fit_report import architecture, model_metadata, report, split_for_command, training_envelope
 
 HELP = "fit a network to columns of a CSV file; write the model file and a JSON report"
 EPILOG = "The CSV format, exactly what train does and the report's keys: 'tinyprop docs cli'."
@@ -126,6 +126,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="JSON training report to write (default: next to the model, <model>.report.json)")
     output.add_argument("--plots", metavar="DIR", help="also write learning_curves.png and parity.png into DIR "
                                                        "(needs matplotlib)")
+    output.add_argument("--envelope-margin", type=_args.non_negative_float, default=0.0, metavar="FRACTION",
+                        help="widen the stored operating envelope (the range of every input in the training rows) "
+                             "by FRACTION of each input's width on both sides (default 0)")
     output.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
 
 
@@ -201,7 +204,10 @@ def run(args: argparse.Namespace) -> int:
         print(_uncertainty_line(extra["uncertainty"]))
 
     started = time.perf_counter()
-    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome)
+    envelope = training_envelope(data.X[split.training], data.input_names, args.envelope_margin)
+    metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome,
+                              envelope)
+    extra["envelope"] = metadata["envelope"]
     extra["model_file"] = os.fspath(model_path)
     with files_together(model_path.parent):  # the report on disk always describes the model on disk
         try:

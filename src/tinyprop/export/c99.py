@@ -4,6 +4,10 @@ The generated code:
 
 - declares ``void <name>_predict(const T *x, T *y)`` with ``T`` = ``float``
   (``dtype="float32"``, the default) or ``double`` (``dtype="float64"``);
+  with ``envelope=`` an :class:`~tinyprop.envelope.Envelope`,
+  ``int <name>_predict(const T *x, T *y)`` returning the number of inputs
+  outside the envelope (0: all inside; :mod:`tinyprop.export._envelope`),
+  the limits in ``<name>_ENVELOPE_LOW`` / ``<name>_ENVELOPE_HIGH``;
 - keeps every number in ``static const`` arrays, has no mutable global state,
   no dynamic allocation and no dependency beyond ``<math.h>``; its workspace
   is two local arrays sized at generation time, so it is reentrant;
@@ -36,11 +40,13 @@ from typing import Any, Callable, Mapping, Sequence
 import numpy as np
 
 from .._words import count
+from ..envelope import Envelope
 from ..network import Network
 from ._activations import activation_kind, c_body, c_input_limit, function_names
+from ._envelope import c_limits, check_envelope, envelope_lines
 from ._header import Provenance, header_lines, provenance
 from ._identifiers import check_c_name
-from ._metadata import check_metadata
+from ._metadata import Metadata, check_metadata
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep, Step, make_plan, route_work_arrays, work_array_widths
 from ._source import c_block_comment, c_header, comment_text, output_directory, write_source
 from .classes import check_labels, write_c_classes
@@ -63,6 +69,7 @@ def export_c(
     metadata: Mapping[str, Any] | None = None,
     literals: str = "decimal",
     labels: Sequence[str] | None = None,
+    envelope: Envelope | None = None,
 ) -> tuple[Path, ...]:
     """Write ``<name>.h`` and ``<name>.c`` into the directory ``path`` (created if missing).
 
@@ -92,6 +99,15 @@ def export_c(
         order. Then ``<name>_classes.h`` / ``<name>_classes.c`` are written too,
         with the label table and ``int <name>_classify(const T *x, T *p)``
         (:mod:`tinyprop.export.classes`).
+    envelope:
+        An :class:`~tinyprop.envelope.Envelope` with one range per input, or
+        ``None`` (default). When given, ``<name>_predict`` returns ``int``: the
+        number of inputs outside their range (below the low limit, above the
+        high limit, or NaN; 0 when all are inside), the outputs computed all
+        the same; the limits are the arrays ``<name>_ENVELOPE_LOW`` and
+        ``<name>_ENVELOPE_HIGH``, declared in the header, which lists them by
+        input name. ``float`` limits are rounded inward, so a ``float`` input
+        counts as outside exactly when its value lies outside the envelope.
 
     Returns
     -------
@@ -116,7 +132,9 @@ def export_c(
         raise ValueError(f"layers may be at most {_INT_MAX} wide for int loop indices, got width {widest}")
     meta = check_metadata(metadata, plan.n_in, plan.n_out)
     classes = None if labels is None else check_labels(labels, plan.n_out)
-    writer = _Writer(name, ctype, plan, lambda v: _literal(v, ctype, literals == "hex"))
+    checked = check_envelope(envelope, plan.n_in)
+    writer = _Writer(name, ctype, plan, lambda v: _literal(v, ctype, literals == "hex"),
+                     None if checked is None else (checked, meta))
     origin = provenance(net)
 
     def header(filename: str) -> list[str]:
@@ -158,10 +176,14 @@ def _literal(value: float, ctype: str, hexadecimal: bool) -> str:
 class _Writer:
     """Emits the two files for one plan; ``literal`` formats a number as a ``ctype`` constant."""
 
-    def __init__(self, name: str, ctype: str, plan: Plan, literal: Callable[[float], str]) -> None:
+    def __init__(self, name: str, ctype: str, plan: Plan, literal: Callable[[float], str],
+                 envelope: tuple[Envelope, Metadata] | None = None) -> None:
         self.name, self.ctype, self.plan, self.literal = name, ctype, plan, literal
         self.macro = name.upper()
-        self.signature = f"void {name}_predict(const {ctype} *x, {ctype} *y)"
+        self.envelope = envelope
+        self.limits = None if envelope is None else c_limits(envelope[0], ctype)
+        result = "void" if envelope is None else "int"
+        self.signature = f"{result} {name}_predict(const {ctype} *x, {ctype} *y)"
         coded = {
             step.layer: (kind, c_body(step.activation, ctype, literal))
             for step in plan.steps
@@ -180,14 +202,24 @@ class _Writer:
         widths = self._buffer_widths()
         buffers = " and ".join(f"{width}" for width in widths.values())
         stack = sum(widths.values()) * size
+        checks, limits = [], []
+        if self.envelope is not None and self.limits is not None:
+            checks = ["  Returns the number of inputs outside the operating envelope (0: all inside): x[j] is",
+                      f"  outside when below {self.name}_ENVELOPE_LOW[j], above {self.name}_ENVELOPE_HIGH[j] or NaN.",
+                      "  y is computed all the same." + (" The float limits are the envelope's rounded inward."
+                                                          if self.ctype == "float" else "")]
+            low, high = ([self.literal(v) for v in side] for side in self.limits)
+            limits = envelope_lines(self.envelope[0], self.envelope[1], low, high)
         return [
             f"Interface (declared in {self.name}.h):",
             f"  {self.signature};",
             f"  x holds {self.macro}_N_INPUTS = {count(self.plan.n_in, 'value')}, y receives "
             f"{self.macro}_N_OUTPUTS = {self.plan.n_out}; x and y may be the same array.",
+            *checks,
             f"Arithmetic: {self.ctype} (IEEE 754 binary{size * 8}) throughout. No dynamic allocation,",
             "no mutable global state (reentrant); the only dependency is <math.h>.",
             f"Stack: work arrays of {buffers} {self.ctype} ({stack} bytes) plus a few scalars.",
+            *limits,
         ]
 
     def header_file(self, comment: list[str], origin: Provenance) -> str:
@@ -196,7 +228,11 @@ class _Writer:
             f"#define {self.macro}_N_OUTPUTS {self.plan.n_out}",
             f'#define {self.macro}_FINGERPRINT "{origin.fingerprint}"',
         ]
-        return c_header(self.macro, comment, defines, self.signature)
+        declaration = self.signature
+        if self.envelope is not None:
+            declaration = "\n".join(f"extern const {self.ctype} {self.name}_ENVELOPE_{side}[{self.macro}_N_INPUTS];"
+                                     for side in ("LOW", "HIGH")) + "\n" + declaration
+        return c_header(self.macro, comment, defines, declaration)
 
     # ------------------------------------------------------------------ source file
     def source_file(self, comment: list[str]) -> str:
@@ -212,6 +248,7 @@ class _Writer:
             f"typedef char {self.name}_requires_{size}_byte_{self.ctype}"
             f"[sizeof({self.ctype}) == {size} ? 1 : -1];",
         ]
+        lines += self._envelope_constants()
         for step in self.plan.steps:
             lines += self._constants(step)
         for (_, body), function in self.functions.items():
@@ -219,6 +256,19 @@ class _Writer:
             lines += [f"    {statement}" for statement in body.split("\n")] + ["}"]
         lines += ["", self.signature, "{"] + self._function_body() + ["}"]
         return "\n".join(lines) + "\n"
+
+    def _envelope_constants(self) -> list[str]:
+        if self.envelope is None or self.limits is None:
+            return []
+        envelope, meta = self.envelope
+        lines = ["", f"/* operating envelope ({comment_text(envelope.source)}) */"]
+        for side, values in zip(("LOW", "HIGH"), self.limits):
+            lines.append(f"const {self.ctype} {self.name}_ENVELOPE_{side}[{self.macro}_N_INPUTS] = {{")
+            for j, value in enumerate(values):
+                name = f" {comment_text(meta.inputs[j].name)}" if meta.inputs else ""
+                lines.append(f"    {self.literal(value)}{',' if j < len(values) - 1 else ''} /* x[{j}]{name} */")
+            lines.append("};")
+        return lines
 
     def _constants(self, step: Step) -> list[str]:
         prefix, layer = self.name, step.layer
@@ -269,6 +319,10 @@ class _Writer:
                for group in _groups(step.weight.shape[1])):
             lines.append("    int j;")
         lines.append("    int k;")
+        if self.envelope is not None:
+            low, high = f"{self.name}_ENVELOPE_LOW[k]", f"{self.name}_ENVELOPE_HIGH[k]"
+            lines += ["    int outside = 0;", "", "    /* inputs outside the operating envelope (NaN included) */"]
+            lines += _loop(self.plan.n_in, [f"if (!(x[k] >= {low} && x[k] <= {high})) {{", "    ++outside;", "}"])
         for step, (source, target, width) in zip(self.steps, self._routing()):
             layer = step.layer
             lines += ["", f"    /* layer {layer}: {comment_text(step.describe())} */"]
@@ -286,6 +340,8 @@ class _Writer:
                 lines += _loop(width, [f"{target}[k] = {self.function_of_layer[layer]}({source}[k]);"])
         final = self._routing()[-1][1]
         lines += ["", "    /* result */"] + _loop(self.plan.n_out, [f"y[k] = {final}[k];"])
+        if self.envelope is not None:
+            lines.append("    return outside;")
         return lines
 
     def _affine(self, step: AffineStep, source: str, target: str) -> list[str]:
