@@ -137,3 +137,22 @@ def test_three_rows_drive_the_weights_to_zero_without_overflow():
     fit = result.solved
     assert np.isfinite(fit.penalty) and fit.effective_parameters < 1
     assert np.all(np.isfinite(net.predict(X)))
+
+
+def test_noise_free_targets_keep_the_hessian_factorable():
+    # synthetic: 30 rows, 50 parameters (A rank-deficient) and residuals of 1e-30, as in a fit through
+    # every point of a noise-free target. beta_k = (n - gamma_k) / (2 E_k) jumps to ~1e31 in one round;
+    # alpha used to stay near gamma / ||theta||^2 ~ 1, so the next H = beta A + alpha I, positive definite
+    # in exact arithmetic, failed its Cholesky factor in float64 ("leading minor not positive definite";
+    # seen with tp.fit_tabular_regression on an exact sigmoid of two inputs, 120 rows, 20 tanh units)
+    rng = np.random.default_rng(0)
+    J = rng.normal(size=(30, 50))
+    normal = NormalEquations(matrices=(J.T @ J)[None], gradients=np.zeros((1, 50)),
+                             half_squares=np.array([1e-30]), n_rows=30)
+    theta = rng.normal(size=50)
+    hyper = evidence.initial(normal, theta, None)
+    for _ in range(3):
+        hyper = evidence.reestimate(normal, theta, hyper)
+        assert np.isfinite(evidence.log_evidence(normal, theta, hyper))
+    data_curvature = hyper.beta[0] * np.trace(normal.matrices[0]) / 50
+    assert 1e-10 * data_curvature <= hyper.alpha <= 1e12 * data_curvature

@@ -84,6 +84,7 @@ class Hyperparameters:
 
 
 _ALPHA_ROOM = 1e12  # largest ratio of alpha to the mean diagonal of sum_k beta_k A_k (see reestimate)
+_ALPHA_FLOOR = 1e-10  # smallest ratio of alpha to that mean diagonal: keeps H's Cholesky factor computable
 
 
 def initial(normal: NormalEquations, theta: np.ndarray, penalty: float | None) -> Hyperparameters:
@@ -95,7 +96,32 @@ def initial(normal: NormalEquations, theta: np.ndarray, penalty: float | None) -
     beta = normal.n_rows / np.maximum(2.0 * normal.half_squares, tiny)
     alpha = float(penalty) if penalty is not None else p / max(float(theta @ theta), tiny)
     share = np.full(beta.size, p / beta.size)
+    alpha, beta = _conditioned(normal, alpha, beta, penalty is not None)
     return Hyperparameters(alpha, beta, share, penalty is not None)
+
+
+def _conditioned(
+    normal: NormalEquations, alpha: float, beta: np.ndarray, fixed_alpha: bool
+) -> tuple[float, np.ndarray]:
+    """``alpha`` within ``[1e-10, 1e12]`` times the mean diagonal ``c`` of ``sum_k beta_k A_k``.
+
+    Above: weights driven to zero (``||theta|| -> 0``, a few rows) would make
+    ``alpha = gamma / ||theta||^2`` overflow. Below: noise-free targets
+    (``E_k -> 0``, ``beta_k`` growing by orders of magnitude per round) would
+    leave ``H = sum_k beta_k A_k + alpha I``, positive definite in exact
+    arithmetic, not so in float64, and its Cholesky factor would fail; with
+    the floor its condition number is at most about ``p / 1e-10``. A fixed
+    ``alpha`` (the user's penalty) is kept and ``beta`` scaled down instead.
+    """
+    p = normal.matrices.shape[1]
+    data_curvature = float(np.einsum("k,kii->", beta, normal.matrices)) / p
+    if not data_curvature > 0:
+        return alpha, beta
+    if fixed_alpha:
+        if alpha > 0 and data_curvature * _ALPHA_FLOOR > alpha:
+            beta = beta * (alpha / (data_curvature * _ALPHA_FLOOR))
+        return alpha, beta
+    return min(max(alpha, _ALPHA_FLOOR * data_curvature), _ALPHA_ROOM * data_curvature), beta
 
 
 def hessian(normal: NormalEquations, hyper: Hyperparameters) -> np.ndarray:
@@ -109,11 +135,11 @@ def reestimate(normal: NormalEquations, theta: np.ndarray, hyper: Hyperparameter
     """One application of the re-estimation formulas of the module docstring at ``theta``.
 
     ``H^-1`` comes from the Cholesky factor of ``H`` (positive definite when
-    ``alpha > 0``). ``beta_k`` is kept below ``n / (2 E_k) * 1e12`` and
-    ``n - gamma_k`` at least ``1e-3 n`` so that a fit through every point
-    (``E_k -> 0``) cannot make it infinite; likewise ``alpha`` is kept below
-    ``1e12`` times the mean diagonal of ``sum_k beta_k A_k``, so that weights
-    driven to zero (``||theta|| -> 0``, a few rows) cannot make it overflow.
+    ``alpha > 0``). ``n - gamma_k`` is kept at least ``1e-3 n`` so that
+    ``beta_k`` stays positive when ``gamma_k`` reaches ``n``, and ``E_k`` at
+    least the smallest normal float so that it stays finite; ``alpha`` is
+    kept within ``[1e-10, 1e12]`` times the data term's mean curvature
+    (``_conditioned``), which keeps ``H`` factorable for noise-free targets.
     """
     from scipy import linalg  # imported where used: `import tinyprop` stays numpy-only
 
@@ -129,11 +155,7 @@ def reestimate(normal: NormalEquations, theta: np.ndarray, hyper: Hyperparameter
     if not hyper.fixed_alpha:
         gamma = p - hyper.alpha * float(np.trace(inverse))
         alpha = max(gamma, 1e-3) / max(float(theta @ theta), tiny)
-        # at most _ALPHA_ROOM times the data term's mean curvature: beyond that the weights are zero to
-        # working precision, and alpha = gamma / ||theta||^2 would run to overflow as theta -> 0 (tiny data)
-        data_curvature = float(np.einsum("k,kii->", beta, normal.matrices)) / p
-        if data_curvature > 0:
-            alpha = min(alpha, _ALPHA_ROOM * data_curvature)
+    alpha, beta = _conditioned(normal, alpha, beta, hyper.fixed_alpha)
     return replace(hyper, alpha=alpha, beta=beta, gamma_per_target=gamma_k)
 
 
