@@ -63,7 +63,7 @@ from ._plan import ActivationStep, AffineStep, Plan, ScalingStep
 
 __all__ = [
     "INT16_MIN", "INT16_MAX", "QAffine", "QScaling", "QRelu", "QLeaky", "QTable", "QStep",
-    "IntegerProgram", "build_program", "narrow", "vector_bits",
+    "IntegerProgram", "build_program", "calibration_ranges", "check_activations", "narrow", "vector_bits",
 ]
 
 INT16_MIN, INT16_MAX = -32768, 32767
@@ -181,6 +181,13 @@ class IntegerProgram:
             counts.append(count)
         return v, counts
 
+    def trace(self, x_q: np.ndarray) -> list[np.ndarray]:
+        """The integer input and every step's integer output (int64), for int16 inputs ``(n, n_in)``."""
+        values = [np.asarray(x_q, dtype=np.int64)]
+        for step in self.steps:
+            values.append(_run_step(step, values[-1])[0])
+        return values
+
 
 def _run_step(step: QStep, v: np.ndarray) -> tuple[np.ndarray, int]:
     if isinstance(step, QAffine):
@@ -280,10 +287,19 @@ def calibration_ranges(plan: Plan, X: np.ndarray) -> list[np.ndarray]:
     return ranges
 
 
-def build_program(plan: Plan, X: np.ndarray, headroom: float) -> IntegerProgram:
-    """Choose every format from the calibration rows ``X`` (float64) and quantise every constant."""
+def check_activations(plan: Plan) -> None:
+    """Refuse (``TypeError``) an activation without an integer form, before any range is computed."""
     _check_activations(plan)
-    ranges = calibration_ranges(plan, X)
+
+
+def build_program(plan: Plan, ranges: list[np.ndarray], headroom: float) -> IntegerProgram:
+    """Choose every format from ``ranges`` and quantise every constant.
+
+    ``ranges[0]`` is the largest ``|value|`` per input column, ``ranges[i + 1]``
+    that of step ``i``'s output (from :func:`calibration_ranges`, or guaranteed
+    over an envelope by :mod:`~tinyprop.export._envelope_error`).
+    """
+    _check_activations(plan)
     steps = plan.steps
     consumer = next((s for s in steps if not _preserves_format(s)), None)
     per_column = isinstance(consumer, (AffineStep, ScalingStep))
