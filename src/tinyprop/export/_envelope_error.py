@@ -82,13 +82,13 @@ def as_box(envelope: Any, n_in: int) -> tuple[np.ndarray, np.ndarray]:
         if array.shape != (n_in,):
             raise ValueError(f"envelope {label} must have {n_in} entries (one per input), got {array.size}")
         if not np.isfinite(array).all():
-            raise ValueError(f"envelope {label} must be finite, got {array[~np.isfinite(array)][0]!r} "
+            raise ValueError(f"envelope {label} must be finite, got {float(array[~np.isfinite(array)][0])!r} "
                              f"at input {int(np.flatnonzero(~np.isfinite(array))[0])}")
         ends.append(array)
     wrong = np.flatnonzero(ends[0] > ends[1])
     if wrong.size:
         j = int(wrong[0])
-        raise ValueError(f"envelope low must not exceed high; input {j} has low {ends[0][j]!r} > high {ends[1][j]!r}")
+        raise ValueError(f"envelope low must not exceed high; input {j} has low {float(ends[0][j])!r} > high {float(ends[1][j])!r}")
     return ends[0], ends[1]
 
 

@@ -192,7 +192,8 @@ class FixedPointReport:
                         f"{self.rms_rel_error[k]:>10.3g}")
         rows += [f"  {table}" for table in self.tables]
         if self.envelope_proof is not None:
-            rows += [f"  {line}" for line in envelope_lines(self.envelope_proof, self.tolerance, self.output_label)]
+            rows += [f"  {line}" for line in envelope_lines(self.envelope_proof, self.tolerance, self.output_label,
+                                                                 timed=True)]
         rows += [f"  WARNING: {warning}" for warning in self.warnings] or [
             f"  no saturation on the {self.measured_on}s"]
         return "\n".join(rows)
@@ -392,11 +393,11 @@ def _envelope_sample(low: np.ndarray, high: np.ndarray) -> np.ndarray:
     return np.concatenate([np.where(corners == 1, high, low), points])
 
 
-def envelope_lines(proof: EnvelopeProof, tolerance: np.ndarray | None, label) -> list[str]:
-    """The envelope, the no-saturation proof and the error bound, as lines of text (report and header)."""
+def envelope_lines(proof: EnvelopeProof, tolerance: np.ndarray | None, label, timed: bool = False) -> list[str]:
+    """The envelope, the no-saturation proof and the error bound, as lines of text (report; header untimed)."""
+    took = f", {proof.seconds:.3g} s" if timed else ""
     lines = [f"Envelope: low {_numbers(proof.low)}, high {_numbers(proof.high)}.",
-             "Ranges guaranteed over the whole envelope (interval bound propagation with linear relaxation, "
-             f"{proof.seconds:.3g} s),",
+             f"Ranges guaranteed over the whole envelope (interval bound propagation with linear relaxation{took}),",
              "widened by the proven rounding error of the integer code; per step the worst column:"]
     lines += [f"  {check.describe()}" for check in proof.checks]
     lines.append("Nothing saturates inside the envelope (proven)." if proof.saturation_free else
