@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import shutil
 import subprocess
+import sys
 import warnings
 from pathlib import Path
 
@@ -333,3 +334,50 @@ def test_range_beyond_int16_formats_is_reported_not_claimed(tmp_path):
         report = export_c_fixed_point(net, tmp_path, envelope=([-1e4], [1e4]))
     assert report.saturation_free is False
     assert "NOT PROVEN" in str(report)
+
+
+# ----------------------------------------------------------------------------- command line
+def _run_cli(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "tinyprop", *args], capture_output=True, text=True, timeout=300)
+
+
+@pytest.fixture(scope="module")
+def cooling_model(tmp_path_factory) -> tuple[Path, tp.Network, tuple]:
+    """The synthetic cooling loop saved with an envelope in its metadata (as the envelope branch stores it)."""
+    net, (low, high) = cooling_loop()
+    path = tmp_path_factory.mktemp("cli") / "cooling.npz"
+    tp.save(net, path, metadata={"envelope": {"low": low, "high": high, "source": "synthetic"}})
+    return path, net, (low, high)
+
+
+def test_cli_uses_the_stored_envelope(cooling_model, tmp_path):
+    path, net, envelope = cooling_model
+    result = _run_cli("export", str(path), "--language", "c-fixed", "--language", "c", "--out", str(tmp_path),
+                      "--check-envelope")
+    assert result.returncode == 0, result.stderr
+    expected = export_c_fixed_point(net, tmp_path / "lib", envelope=envelope, check_envelope=True, name="model_q")
+    assert f"{expected.error_bound[0]:.3g}" in result.stdout
+    assert "Nothing saturates inside the envelope (proven)." in result.stdout
+    assert f"over the envelope, per output: {tp.envelope_error_bound(net, envelope)[0]:.3g}" in result.stdout
+    assert "int model_q_predict_q(" in (tmp_path / "model_q.h").read_text()
+    assert result.stderr == ""
+
+
+def test_cli_explicit_envelope_and_tolerance(cooling_model, tmp_path):
+    path, net, _ = cooling_model
+    result = _run_cli("export", str(path), "--language", "c-fixed", "--out", str(tmp_path),
+                      "--envelope-low", "20,0.5,1000", "--envelope-high", "40,2,2500", "--tolerance", "1e-6")
+    assert result.returncode == 0, result.stderr
+    assert "Envelope: low [20, 0.5, 1000], high [40, 2, 2500]." in result.stdout
+    assert "tinyprop export: warning: the proven error bound over the envelope of output 0" in result.stderr
+    assert "exceeds the tolerance 1e-06" in result.stderr
+
+
+@pytest.mark.parametrize("arguments, message", [
+    (["--language", "c-fixed", "--envelope-low", "0,0,0"], "--envelope-low and --envelope-high go together"),
+    (["--language", "c", "--check-envelope"], "--check-envelope needs --language c-fixed and an envelope"),
+    (["--language", "c-fixed", "--envelope-low", "0,0", "--envelope-high", "1,1"], "must have 3 entries"),
+])
+def test_cli_envelope_mistakes(cooling_model, arguments, message, tmp_path):
+    result = _run_cli("export", str(cooling_model[0]), "--out", str(tmp_path), *arguments)
+    assert result.returncode != 0 and message in result.stderr

@@ -4,20 +4,23 @@ The names and units of inputs and outputs and the description stored in the
 model's metadata (as ``tinyprop train`` and ``tinyprop demo`` write them) go
 into the generated code's header comment and constants. ``--language c-fixed``
 writes integer-only C (:func:`tinyprop.export_c_fixed_point`) as
-``<name>_q.h`` / ``<name>_q.c``; its number formats come from the input
-columns of a ``--calibration`` CSV file.
+``<name>_q.h`` / ``<name>_q.c``; its number formats come from the envelope
+(``--envelope-low``/``--envelope-high``, else the one stored in the model),
+with a proof that nothing saturates in it and a proven error bound, or else
+from the input columns of a ``--calibration`` CSV file.
 """
 
 from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 from typing import Any
 
 import numpy as np
 
 from ..classify import class_entry
-from ..export import export_c, export_c_fixed_point, export_python
+from ..export import ErrorBoundWarning, envelope_error_bound, export_c, export_c_fixed_point, export_python
 from ..export._identifiers import check_c_name, check_module_name
 from ..export.classes import fixed_point_class_agreement
 from ..modelfile import ModelFile
@@ -67,8 +70,18 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fixed.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                        help="input columns of DATA.csv (default: the input names stored in the model)")
     fixed.add_argument("--delimiter", default=",", help="field separator of DATA.csv (default ',')")
-    fixed.add_argument("--headroom", type=_args.positive_float, default=2.0,
-                       help="margin above the largest calibrated magnitude, at least 1 (default 2)")
+    fixed.add_argument("--headroom", type=_args.positive_float, default=None,
+                       help="margin above the largest calibrated (or guaranteed) magnitude, at least 1 (default 2 "
+                            "with --calibration, 1 with an envelope)")
+    fixed.add_argument("--envelope-low", type=_numbers, metavar="NUMBERS",
+                       help="lowest value of each input, comma-separated (with --envelope-high; default: the "
+                            "envelope stored in the model)")
+    fixed.add_argument("--envelope-high", type=_numbers, metavar="NUMBERS",
+                       help="highest value of each input, comma-separated (with --envelope-low)")
+    fixed.add_argument("--tolerance", type=_args.positive_float, metavar="NUMBER",
+                       help="warn when the proven error bound over the envelope exceeds this (output units)")
+    fixed.add_argument("--check-envelope", action="store_true",
+                       help="NAME_q_predict_q returns the number of inputs outside the envelope")
     add_import_option(parser)
 
 
@@ -79,13 +92,20 @@ def run(args: argparse.Namespace) -> int:
             _NAME_CHECKS[language](args.name)
         except ValueError as exc:
             raise CommandError(f"--name: {exc} (for --language {language})", USAGE) from None
-    if ("c-fixed" in languages) != (args.calibration is not None):
-        raise CommandError("--language c-fixed needs --calibration DATA.csv" if args.calibration is None else
-                           "--calibration applies to --language c-fixed", USAGE)
-    if args.headroom < 1.0:
+    if args.calibration is not None and "c-fixed" not in languages:
+        raise CommandError("--calibration applies to --language c-fixed", USAGE)
+    if (args.envelope_low is None) != (args.envelope_high is None):
+        raise CommandError("--envelope-low and --envelope-high go together", USAGE)
+    if args.headroom is not None and args.headroom < 1.0:
         raise CommandError(f"--headroom must be at least 1, got {args.headroom:g}", USAGE)
     import_modules(args.imports)
     model = read_model(args.model)
+    envelope = _envelope(args, model)
+    if "c-fixed" in languages and args.calibration is None and envelope is None:
+        raise CommandError("--language c-fixed needs --calibration DATA.csv or an envelope (--envelope-low and "
+                           "--envelope-high, or one stored in the model)", USAGE)
+    if args.check_envelope and ("c-fixed" not in languages or envelope is None):
+        raise CommandError("--check-envelope needs --language c-fixed and an envelope", USAGE)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
     entry = class_entry(model.metadata)
@@ -98,12 +118,19 @@ def run(args: argparse.Namespace) -> int:
         if "python" in languages:
             written.append(export_python(model.network, folder, name=args.name, metadata=metadata, labels=labels))
         if "c-fixed" in languages:
-            calibration = _calibration_rows(args, model)
-            report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
-                                          headroom=args.headroom, metadata=metadata, labels=labels)
+            calibration = None if args.calibration is None else _calibration_rows(args, model)
+            with warnings.catch_warnings():  # the report's warnings are printed below, one line each
+                warnings.simplefilter("ignore", ErrorBoundWarning)
+                report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
+                                              headroom=args.headroom, metadata=metadata, labels=labels,
+                                              envelope=envelope, tolerance=args.tolerance,
+                                              check_envelope=args.check_envelope)
             written += [report.header, report.source, *report.class_files]
-            if labels is not None:
+            if labels is not None and calibration is not None:
                 agreement = fixed_point_class_agreement(report, model.network, calibration)
+        float_bound = None
+        if "c" in languages and envelope is not None:
+            float_bound = envelope_error_bound(model.network, envelope, dtype=dtype)
     except OSError as exc:
         raise CommandError(f"cannot write the code: {describe_os_error(exc)}") from None
     except (TypeError, ValueError) as exc:
@@ -111,13 +138,16 @@ def run(args: argparse.Namespace) -> int:
     for path in written:
         print(f"wrote {path}")
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
+    if float_bound is not None:
+        print(f"proven bound on |{args.c_type} C code - network (float64)| over the envelope, per output: "
+              + ", ".join(f"{b:.3g}" for b in float_bound))
     if report is not None:
         print(report)
         if agreement is not None:
             print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
         for warning in report.warnings:
             warn("export", warning)
-        return _judge_fixed_point_error(report, args.headroom)
+        return _judge_fixed_point_error(report, report.headroom)
     return 0
 
 
@@ -156,6 +186,26 @@ def _calibration_rows(args: argparse.Namespace, model: ModelFile) -> np.ndarray:
     if X.shape[0] == 0:
         raise CommandError(f"{args.calibration}: no data rows to calibrate on")
     return X
+
+
+def _numbers(text: str) -> list[float]:
+    """Comma-separated finite numbers (one per input)."""
+    return [_args.number(part) for part in text.split(",")]
+
+
+def _envelope(args: argparse.Namespace, model: ModelFile) -> Any:
+    """The box of ``--envelope-low``/``--envelope-high``, else the model's stored envelope, else ``None``."""
+    if args.envelope_low is not None:
+        return (args.envelope_low, args.envelope_high)
+    return _stored_envelope(model.metadata)
+
+
+def _stored_envelope(metadata: dict[str, Any]) -> Any:
+    """The metadata's ``"envelope"`` (``{"low": [...], "high": [...], ...}``) as a ``(low, high)`` pair, or ``None``."""
+    entry = metadata.get("envelope")
+    if not isinstance(entry, dict) or "low" not in entry or "high" not in entry:
+        return None
+    return (entry["low"], entry["high"])
 
 
 def _export_metadata(metadata: dict[str, Any]) -> dict[str, Any] | None:
