@@ -49,6 +49,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from .._words import count
 from ..activations import declared
 from ..bounds._arith import FLOAT64, magnitude, up
 from ..bounds._program import Program
@@ -80,7 +81,8 @@ def as_box(envelope: Any, n_in: int) -> tuple[np.ndarray, np.ndarray]:
         except (TypeError, ValueError):
             raise TypeError(f"envelope {label} must be a sequence of {n_in} numbers, got {values!r}") from None
         if array.shape != (n_in,):
-            raise ValueError(f"envelope {label} must have {n_in} entries (one per input), got {array.size}")
+            raise ValueError(f"envelope {label} must have {count(n_in, 'entry', 'entries')} (one per input), "
+                             f"got {array.size}")
         if not np.isfinite(array).all():
             raise ValueError(f"envelope {label} must be finite, got {float(array[~np.isfinite(array)][0])!r} "
                              f"at input {int(np.flatnonzero(~np.isfinite(array))[0])}")
