@@ -381,3 +381,9 @@ def test_cli_explicit_envelope_and_tolerance(cooling_model, tmp_path):
 def test_cli_envelope_mistakes(cooling_model, arguments, message, tmp_path):
     result = _run_cli("export", str(cooling_model[0]), "--out", str(tmp_path), *arguments)
     assert result.returncode != 0 and message in result.stderr
+
+
+def test_format_of_a_subnormal_range():
+    """A guaranteed range can be [0, 5e-324] (outward rounding of 0); its format was an OverflowError."""
+    from tinyprop.export._fixed_program import F_MAX, vector_bits
+    assert vector_bits(5e-324, 1.0) == F_MAX

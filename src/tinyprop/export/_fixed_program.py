@@ -233,7 +233,10 @@ def constant_bits(values: np.ndarray, what: str) -> int:
 
 def _fit(magnitude: float, limit: float) -> int:
     """The largest ``f`` in ``[F_MIN, F_MAX]`` with ``magnitude * 2**f`` below ``limit`` (``<=`` for int limits)."""
-    bits = min(F_MAX, max(F_MIN, math.floor(math.log2(limit / magnitude))))
+    ratio = limit / magnitude
+    if not math.isfinite(ratio):  # a magnitude near the smallest subnormal (a guaranteed range [0, 5e-324])
+        return F_MAX
+    bits = min(F_MAX, max(F_MIN, math.floor(math.log2(ratio))))
     while bits > F_MIN and _over(magnitude * 2.0**bits, limit):
         bits -= 1
     while bits < F_MAX and not _over(magnitude * 2.0 ** (bits + 1), limit):
