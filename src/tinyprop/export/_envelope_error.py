@@ -90,7 +90,8 @@ def as_box(envelope: Any, n_in: int) -> tuple[np.ndarray, np.ndarray]:
     wrong = np.flatnonzero(ends[0] > ends[1])
     if wrong.size:
         j = int(wrong[0])
-        raise ValueError(f"envelope low must not exceed high; input {j} has low {float(ends[0][j])!r} > high {float(ends[1][j])!r}")
+        raise ValueError(f"envelope low must not exceed high; input {j} has low {float(ends[0][j])!r} "
+                         f"> high {float(ends[1][j])!r}")
     return ends[0], ends[1]
 
 

@@ -50,7 +50,9 @@ import numpy as np
 from .._validate import as_samples
 from .._words import count
 from ..network import Network
+from ._envelope_error import as_box, reference_ranges
 from ._fixed_c import buffer_widths, describe_formats, header_file, integer_range, signature, source_file
+from ._fixed_envelope import EnvelopeProof, integer_box, prove_formats
 from ._fixed_program import (
     IntegerProgram,
     QAffine,
@@ -61,15 +63,13 @@ from ._fixed_program import (
     calibration_ranges,
     check_activations,
 )
-from ._envelope_error import as_box, reference_ranges
-from ._fixed_envelope import EnvelopeProof, integer_box, prove_formats
-from .envelope_bound import ErrorBoundWarning
 from ._header import header_lines, provenance
 from ._identifiers import check_c_name
 from ._metadata import check_metadata
 from ._plan import make_plan
 from ._source import c_block_comment, comment_text, output_directory, write_source
 from .classes import check_labels, write_fixed_classes
+from .envelope_bound import ErrorBoundWarning
 
 __all__ = ["export_c_fixed_point", "FixedPointReport", "StepFormat"]
 
