@@ -17,6 +17,13 @@ microcontrollers without a floating-point unit:
   results are rounded to nearest, ties away from zero, and saturated to int16,
   never wrapped.
 
+With ``envelope=(low, high)`` the formats are chosen from ranges guaranteed
+over the whole input box instead of calibration rows, the report proves per
+step that nothing saturates there, and ``report.error_bound`` bounds
+``|integer code - Network.predict|`` over the box
+(:mod:`~tinyprop.export._fixed_envelope`); ``check_envelope=True`` makes
+``predict_q`` return ``int``, the number of inputs outside the envelope.
+
 How formats are chosen and every step computed is stated in
 :mod:`tinyprop.export._fixed_program`; the lookup tables of Tanh and Sigmoid
 and their error bounds in :mod:`tinyprop.export._fixed_tables`. Scaling
