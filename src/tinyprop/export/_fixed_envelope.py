@@ -25,9 +25,10 @@ value an int16 ``q`` in format ``Qf`` stands for:
 E]``; a narrowing to ``Qf`` saturates only when ``round(v 2**f)`` leaves
 ``[-32768, 32767]``, so ``(hi + E) 2**f < 32767.5`` and ``(lo - E) 2**f >
 -32768.5`` prove that it never does (rounding is monotone). The input
-conversion is checked the same way on ``[low, high]``; the int64 accumulator
-of an affine step holds ``v 2**A`` before narrowing (``A`` its fractional
-bits), which is checked against ``2**63``. Table, ReLU, LeakyReLU and
+conversion is checked the same way on ``[low, high]``; every partial sum of
+the int64 accumulator of an affine step is at most ``(sum_j |W~| (m_j + E_j) +
+|b~|) 2**A`` in magnitude (``A`` its fractional bits), which is checked
+against ``2**62``. Table, ReLU, LeakyReLU and
 Identity outputs cannot saturate (their magnitudes do not exceed their input's
 or 1 in Q14); they are listed all the same.
 
@@ -62,7 +63,7 @@ from ._plan import Plan, ScalingStep
 __all__ = ["RangeCheck", "EnvelopeProof", "prove_formats", "integer_box"]
 
 _ROUNDS = 6
-_INT64_LIMIT = 2.0**63
+_ACCUMULATOR_LIMIT = 2.0**62  # int64 holds 2**63; half of it leaves room for the float64 rounding of the bound
 
 
 @dataclass(frozen=True)
@@ -85,7 +86,7 @@ class RangeCheck:
     def describe(self) -> str:
         where = "input" if self.layer is None else f"layer {self.layer}"
         verdict = "inside" if self.fits else "NOT PROVEN: may saturate"
-        return (f"{where} {self.what}: guaranteed [{self.low:.6g}, {self.high:.6g}] in representable "
+        return (f"{where} {self.what}: guaranteed [{self.low:.6g}, {self.high:.6g}] in "
                 f"[{self.low_limit:.6g}, {self.high_limit:.6g}]: {verdict}")
 
 
@@ -209,8 +210,9 @@ def _checks(plan: Plan, program: IntegerProgram, ranges: Ranges, errors: list[np
             if q.bias is not None:
                 partial = partial + np.abs(q.bias * 2.0**-q.bias_bits)
             largest = float(np.max(partial)) * 2.0**acc_bits
-            rows.append(RangeCheck(step.layer, f"{what}: int64 accumulator, partial sums in units of 2^-{acc_bits}",
-                                   -largest, largest, -_INT64_LIMIT, _INT64_LIMIT - 1, largest < 2.0**62))
+            rows.append(RangeCheck(step.layer, f"{what}: int64 accumulator (units of 2^-{acc_bits})",
+                                   -largest, largest, -_ACCUMULATOR_LIMIT, _ACCUMULATOR_LIMIT,
+                                   largest < _ACCUMULATOR_LIMIT))
         rows.append(_row(step.layer, f"{what}: result {_formats(bits[i + 1])}", lo, hi, bits[i + 1]))
     return rows
 

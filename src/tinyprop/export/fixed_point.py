@@ -405,7 +405,8 @@ def envelope_lines(proof: EnvelopeProof, tolerance: np.ndarray | None, label, ti
     took = f", {proof.seconds:.3g} s" if timed else ""
     lines = [f"Envelope: low {_numbers(proof.low)}, high {_numbers(proof.high)}.",
              f"Ranges guaranteed over the whole envelope (interval bound propagation with linear relaxation{took}),",
-             "widened by the proven rounding error of the integer code; per step the worst column:"]
+             "widened by the proven rounding error of the integer code, inside what each format holds",
+             "(rounding included); per step the worst column:"]
     lines += [f"  {check.describe()}" for check in proof.checks]
     lines.append("Nothing saturates inside the envelope (proven)." if proof.saturation_free else
                  "NOT PROVEN that nothing saturates inside the envelope: see the steps above.")
