@@ -48,6 +48,7 @@ import numpy as np
 from ..bounds._arith import FLOAT64, magnitude
 from ._envelope_error import Ranges, propagate_error, widest_magnitude
 from ._fixed_program import (
+    F_MAX,
     INT16_MAX,
     INT16_MIN,
     SLOPE_BITS,
@@ -114,7 +115,7 @@ def integer_box(program: IntegerProgram, low: np.ndarray, high: np.ndarray) -> t
 
 def prove_formats(plan: Plan, ranges: Ranges, headroom: float) -> tuple[IntegerProgram, EnvelopeProof]:
     """Formats from the guaranteed magnitudes, widened by the error bound until the proof holds."""
-    magnitudes = [ranges.magnitude(i) for i in range(len(plan.steps) + 1)]
+    magnitudes = [_negligible_as_zero(ranges.magnitude(i)) for i in range(len(plan.steps) + 1)]
     for _ in range(_ROUNDS):
         program = build_program(plan, magnitudes, headroom)
         bits = _bits_per_step(plan, program)
@@ -131,6 +132,17 @@ def prove_formats(plan: Plan, ranges: Ranges, headroom: float) -> tuple[IntegerP
     code_high = tuple(hi + e for hi, e in zip(ranges.hi, errors))
     proof = EnvelopeProof(ranges.lo[0], ranges.hi[0], tuple(checks), errors[-1], code_low, code_high, ranges.seconds)
     return program, proof
+
+
+def _negligible_as_zero(magnitude: np.ndarray) -> np.ndarray:
+    """Magnitudes that round to 0 even in the finest format (``< 2**-(F_MAX + 1)``) as 0, which gets Q15.
+
+    Outward rounding turns a vector that is exactly 0 over the box (a ReLU of
+    negative values) into ``[0, 5e-324]``; a format chosen from that would be
+    the finest, Q30, too fine for a scaling centre after it. The proof checks
+    the chosen format all the same.
+    """
+    return np.where(magnitude < 2.0 ** -(F_MAX + 1), 0.0, magnitude)
 
 
 def _bits_per_step(plan: Plan, program: IntegerProgram) -> list[tuple[int, ...]]:
