@@ -32,7 +32,13 @@ the generated code holds there. For every input ``x`` of the box
    Stability of Numerical Algorithms*, 2nd ed., section 3.1, eq. 3.4-3.5, and
    ``c u |a|`` per activation as in :func:`~tinyprop.export.agreement_bound`),
    so the final ``E`` bounds ``|code - Network.predict|`` in float64 directly.
-3. The bound is computed in float64 from non-negative terms: each ``E_out``
+3. **Through the slopes.** The bound on the outputs is the smaller of the
+   final ``E`` and ``sum_k S_k r_k``: each layer's local error ``r_k`` (the
+   ``R`` above) times bounds ``S_k`` on the slopes of the rest of the
+   network over ``[lo_k - E_k, hi_k + E_k]`` (a telescoping sum and the mean
+   value theorem, :func:`_through_slopes`), which keeps the signs of the
+   later weights together instead of multiplying ``|W|`` layer by layer.
+4. The bound is computed in float64 from non-negative terms: each ``E_out``
    is multiplied by ``1 + 2 gamma_(n+8)`` (the relative error of evaluating a
    sum of ``n + 8`` non-negative products) and rounded up with ``nextafter``.
 
@@ -43,6 +49,7 @@ against each number format.
 
 from __future__ import annotations
 
+import copy
 import time
 from dataclasses import dataclass
 from typing import Any, Callable, Sequence
@@ -51,9 +58,10 @@ import numpy as np
 
 from .._words import count
 from ..activations import declared
-from ..bounds._arith import FLOAT64, magnitude, up
-from ..bounds._program import Program
+from ..bounds._arith import FLOAT64, down, magnitude, up
+from ..bounds._program import Intervals, Program
 from ..bounds._relax import tight_intervals
+from ..bounds._slopes import gradient_intervals
 from ..network import Network
 from ._plan import ActivationStep, AffineStep, Plan, ScalingStep
 
@@ -121,8 +129,13 @@ Sources = Callable[[int, np.ndarray, np.ndarray], np.ndarray]
 
 
 def propagate_error(plan: Plan, ranges: Ranges, input_error: np.ndarray, sources: Sources) -> list[np.ndarray]:
-    """``E_0 = input_error`` and ``E_(i+1)`` after each step (see the module docstring); float64, rounded up."""
+    """``E_0 = input_error`` and ``E_(i+1)`` after each step (see the module docstring); float64, rounded up.
+
+    The last entry, the bound on the outputs, is the smaller of the recursion's
+    and the sum of slopes times local errors (:func:`_through_slopes`).
+    """
     errors = [np.asarray(input_error, dtype=np.float64)]
+    local = []
     for i, step in enumerate(plan.steps):
         e = errors[-1]
         m = ranges.magnitude(i)
@@ -137,9 +150,41 @@ def propagate_error(plan: Plan, ranges: Ranges, input_error: np.ndarray, sources
             d_lo, d_hi = rules.derivative_range(ranges.lo[i] - e, ranges.hi[i] + e)
             spread = magnitude(d_lo, d_hi) * e
             n = 1
-        total = spread + sources(i, m, e) + reference_rounding(plan, ranges, i)
-        errors.append(up(total * (1.0 + 2.0 * FLOAT64.gamma(n + 8))))
+        local.append(sources(i, m, e) + reference_rounding(plan, ranges, i))
+        errors.append(up((spread + local[-1]) * (1.0 + 2.0 * FLOAT64.gamma(n + 8))))
+    errors[-1] = np.minimum(errors[-1], _through_slopes(ranges, errors, local))
     return errors
+
+
+def _through_slopes(ranges: Ranges, errors: list[np.ndarray], local: list[np.ndarray]) -> np.ndarray:
+    """``sum_k S_k r_k``: each local error ``r_k`` carried to the outputs by the slopes of the layers after it.
+
+    With ``G_k`` the exact network from layer ``k`` on, ``F_k`` layer ``k``
+    and ``v~_k`` the code's values, ``v~_n - y = sum_k [G_k(v~_k) -
+    G_k(F_k(v~_(k-1)))] + [G_0(v~_0) - G_0(x)]`` (a telescoping sum), and
+    ``|G_k(a) - G_k(b)| <= S_k |a - b|`` by the mean value theorem (integral
+    form, also across ReLU kinks), with ``S_k >= |d G_k / d v|`` over the box
+    ``[lo_k - E_k, hi_k + E_k]``, which holds both ``a`` and ``b``. ``S_k``
+    comes from the delta recursion in interval arithmetic
+    (:func:`tinyprop.bounds._slopes.gradient_intervals`) on interval
+    propagation from that box; ``|a - b| <= r_k``, the local error.
+    """
+    program = ranges.program
+    n = len(program.steps)
+    perturbations = [errors[0]] + local  # the input's, then each step's, as seen at the next step's input
+    total = np.array(perturbations[n], dtype=np.float64)
+    terms = 1
+    for k in range(n):
+        found = Intervals([down(ranges.lo[k] - errors[k])[None, :]], [up(ranges.hi[k] + errors[k])[None, :]], {}, {})
+        for i in range(k, n):
+            program.advance(found, i)
+        later = copy.copy(program)
+        later.steps = program.steps[k:]
+        later.n_in = found.lo[0].shape[1]
+        slopes = np.stack([magnitude(*gradient_intervals(later, found, m))[0] for m in range(program.n_out)])
+        total = total + slopes @ perturbations[k]
+        terms += slopes.shape[1]
+    return up(total * (1.0 + 2.0 * FLOAT64.gamma(terms + 2)))
 
 
 def reference_rounding(plan: Plan, ranges: Ranges, i: int) -> np.ndarray:
