@@ -41,6 +41,9 @@ def folder(tmp_path_factory) -> Path:
     write_battery_csv(folder / "battery.csv", n=120, seed=1)
     assert main(["train", str(folder / "battery.csv"), "--targets", "soc", "--hidden", "4", MB, "--epochs", "3",
                  "--quiet", "--out", str(folder / "model.npz")]) == 0
+    stored = tp.load_model_file(folder / "model.npz")  # the same model without its operating envelope
+    tp.save(stored.network, folder / "bare.npz",
+            metadata={key: value for key, value in stored.metadata.items() if key != "envelope"})
     lines = (folder / "battery.csv").read_text().splitlines()
     header_at = next(i for i, line in enumerate(lines) if not line.startswith("#"))
     blank = lines[: header_at + 1] + lines[header_at + 1:]
@@ -89,11 +92,18 @@ CASES = [
     ("export-name-refused-by-one-language", ["export", "{f}/model.npz", "--name", "math", "--out", "{f}/code"], 2,
      r"tinyprop export: error: --name: name must not be a standard-library module name \(it would shadow it\), "
      r"got 'math' \(for --language python\)\n"),
-    ("export-fixed-point-overflowing-calibration", ["export", "{f}/model.npz", "--language", "c-fixed",
+    ("export-fixed-point-calibration-outside-envelope", ["export", "{f}/model.npz", "--language", "c-fixed",
+                                                        "--calibration", "{f}/extreme.csv", "--out", "{f}/q3"], 0,
+     r"tinyprop export: warning: 2 of the calibration rows of extreme\.csv lie outside the model's operating "
+     r"envelope \(training data\); no error measured or bound proven for the model holds there:\n"
+     r"(tinyprop export: warning: .*\n)*"
+     r"tinyprop export: warning: the integer code's largest error on the calibration rows is .*% of output 0's "
+     r"range; calibration rows lie outside the envelope its formats were proven over .*\n"),
+    ("export-fixed-point-overflowing-calibration", ["export", "{f}/bare.npz", "--language", "c-fixed",
                                                     "--calibration", "{f}/extreme.csv", "--out", "{f}/q"], 1,
      r"tinyprop export: error: cannot export: a calibrated magnitude of 1e\+308 times headroom 2 overflows "
      r"float64.*\n"),
-    ("export-fixed-point-headroom-far-too-large", ["export", "{f}/model.npz", "--language", "c-fixed",
+    ("export-fixed-point-headroom-far-too-large", ["export", "{f}/bare.npz", "--language", "c-fixed",
                                                    "--calibration", "{f}/battery.csv", "--headroom", "1e300",
                                                    "--out", "{f}/q2"], 1,
      r"tinyprop export: error: the integer code's largest error on the calibration rows is .*% of output 0's range; "

@@ -28,7 +28,15 @@ from .classify import Classifier
 from .classmetrics import ClassificationMetrics, classification_metrics
 from .ensemble import Ensemble
 from .envelope import Envelope, EnvelopeCheck, EnvelopeError, OutsideEnvelope
-from .export import FixedPointReport, agreement_bound, export_c, export_c_fixed_point, export_python
+from .export import (
+    ErrorBoundWarning,
+    FixedPointReport,
+    agreement_bound,
+    envelope_error_bound,
+    export_c,
+    export_c_fixed_point,
+    export_python,
+)
 from .layers import Affine, Standardize, Unstandardize
 from .losses import (
     CrossEntropyOnSigmoid,
@@ -103,6 +111,7 @@ __all__ = [
     "model_parts", "model_from_parts",
     # inference code
     "export_c", "export_python", "export_c_fixed_point", "FixedPointReport", "agreement_bound",
+    "envelope_error_bound", "ErrorBoundWarning",
     # guarantees over an input box
     "output_bounds", "OutputBounds", "gradient_bounds", "GradientBounds", "certificate", "Certificate",
     "UndeclaredActivation",

@@ -228,15 +228,23 @@ def warn_outside_envelope(command: str, metadata: dict, X: np.ndarray, rows: str
     except EnvelopeError as exc:
         warn(command, f"the model's stored envelope cannot be used, rows were not compared with it: {exc}")
         return
-    if envelope is None or X.shape[0] == 0:
-        return
+    if envelope is not None:
+        warn_rows_outside(command, envelope, X, rows, _input_units(metadata, envelope.n_in))
+
+
+def warn_rows_outside(command: str, envelope: Envelope, X: np.ndarray, rows: str,
+                      units: list[str] | None = None) -> bool:
+    """Warn on stderr when rows of ``X`` lie outside ``envelope`` (a summary, then a line per input); say whether."""
+    if X.shape[0] == 0:
+        return False
     result = envelope.check(X)
     if result.inside:
-        return
+        return False
     warn(command, f"{int(result.outside_rows.sum())} of {rows} lie outside the model's operating envelope "
                   f"({envelope.source}); no error measured or bound proven for the model holds there:")
-    for line in result.lines(_input_units(metadata, envelope.n_in)):
+    for line in result.lines(units):
         warn(command, f"  {line}")
+    return True
 
 
 def _input_units(metadata: dict, n_in: int) -> list[str] | None:

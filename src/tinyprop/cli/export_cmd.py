@@ -4,21 +4,24 @@ The names and units of inputs and outputs and the description stored in the
 model's metadata (as ``tinyprop train`` and ``tinyprop demo`` write them) go
 into the generated code's header comment and constants. ``--language c-fixed``
 writes integer-only C (:func:`tinyprop.export_c_fixed_point`) as
-``<name>_q.h`` / ``<name>_q.c``; its number formats come from the input
-columns of a ``--calibration`` CSV file.
+``<name>_q.h`` / ``<name>_q.c``; its number formats come from the envelope
+(``--envelope-low``/``--envelope-high``, else the one stored in the model),
+with a proof that nothing saturates in it and a proven error bound, or else
+from the input columns of a ``--calibration`` CSV file.
 """
 
 from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 from typing import Any
 
 import numpy as np
 
 from ..classify import class_entry
 from ..envelope import Envelope, EnvelopeError
-from ..export import export_c, export_c_fixed_point, export_python
+from ..export import ErrorBoundWarning, envelope_error_bound, export_c, export_c_fixed_point, export_python
 from ..export._identifiers import check_c_name, check_module_name
 from ..export.classes import fixed_point_class_agreement
 from ..modelfile import ModelFile
@@ -34,6 +37,7 @@ from ._common import (
     require_columns,
     stored_names,
     warn,
+    warn_rows_outside,
 )
 from ._imports import add_import_option, import_modules
 
@@ -63,17 +67,26 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-metadata", action="store_true",
                         help="leave the model's names, units and description out of the code")
     parser.add_argument("--check-envelope", action="store_true",
-                        help="c and python: the generated predict also reports the inputs outside the operating "
-                             "envelope stored in the model (C: int <name>_predict returns their count; Python: "
-                             "predict returns (y, outside)); an error if the model stores none")
+                        help="the generated predict also reports the inputs outside the operating envelope "
+                             "(--envelope-low/--envelope-high, else the one stored in the model; an error if there "
+                             "is none): C: int <name>_predict returns their count; Python: predict returns "
+                             "(y, outside); c-fixed: int <name>_q_predict_q returns their count")
     fixed = parser.add_argument_group("c-fixed", "number formats of the integer-only C code")
     fixed.add_argument("--calibration", metavar="DATA.csv",
                        help="rows whose input columns set the formats (cover the whole operating range)")
     fixed.add_argument("--inputs", type=_args.names, action="extend", metavar="NAMES",
                        help="input columns of DATA.csv (default: the input names stored in the model)")
     fixed.add_argument("--delimiter", default=",", help="field separator of DATA.csv (default ',')")
-    fixed.add_argument("--headroom", type=_args.positive_float, default=2.0,
-                       help="margin above the largest calibrated magnitude, at least 1 (default 2)")
+    fixed.add_argument("--headroom", type=_args.positive_float, default=None,
+                       help="margin above the largest calibrated (or guaranteed) magnitude, at least 1 (default 2 "
+                            "with --calibration, 1 with an envelope)")
+    fixed.add_argument("--envelope-low", type=_numbers, metavar="NUMBERS",
+                       help="lowest value of each input, comma-separated (with --envelope-high; default: the "
+                            "envelope stored in the model)")
+    fixed.add_argument("--envelope-high", type=_numbers, metavar="NUMBERS",
+                       help="highest value of each input, comma-separated (with --envelope-low)")
+    fixed.add_argument("--tolerance", type=_args.positive_float, metavar="NUMBER",
+                       help="warn when the proven error bound over the envelope exceeds this (output units)")
     add_import_option(parser)
 
 
@@ -84,34 +97,53 @@ def run(args: argparse.Namespace) -> int:
             _NAME_CHECKS[language](args.name)
         except ValueError as exc:
             raise CommandError(f"--name: {exc} (for --language {language})", USAGE) from None
-    if ("c-fixed" in languages) != (args.calibration is not None):
-        raise CommandError("--language c-fixed needs --calibration DATA.csv" if args.calibration is None else
-                           "--calibration applies to --language c-fixed", USAGE)
-    if args.headroom < 1.0:
+    if args.calibration is not None and "c-fixed" not in languages:
+        raise CommandError("--calibration applies to --language c-fixed", USAGE)
+    if (args.envelope_low is None) != (args.envelope_high is None):
+        raise CommandError("--envelope-low and --envelope-high go together", USAGE)
+    if args.headroom is not None and args.headroom < 1.0:
         raise CommandError(f"--headroom must be at least 1, got {args.headroom:g}", USAGE)
     import_modules(args.imports)
     model = read_model(args.model)
+    envelope = _envelope(args, model)
+    if "c-fixed" in languages and args.calibration is None and envelope is None:
+        raise CommandError("--language c-fixed needs --calibration DATA.csv or an envelope (--envelope-low and "
+                           "--envelope-high, or one stored in the model)", USAGE)
+    if args.check_envelope and envelope is None:
+        raise CommandError("--check-envelope: the model stores no operating envelope; give --envelope-low and "
+                           "--envelope-high, or store one with 'tinyprop envelope MODEL.npz --low ... --high ... "
+                           "--out NEW.npz'", USAGE)
     folder = output_folder(args.out)
     metadata = None if args.no_metadata else _export_metadata(model.metadata)
-    envelope = _stored_envelope(model) if args.check_envelope else None
+    checked = envelope if args.check_envelope else None  # the float code checks its inputs only when asked
     entry = class_entry(model.metadata)
     labels = None if entry is None else entry.get("labels")  # a classifier: add the class decision
-    written, report, agreement = [], None, None
+    written, report, agreement, outside = [], None, None, False
     try:
         if "c" in languages:
             dtype = "float32" if args.c_type == "float" else "float64"
             written += export_c(model.network, folder, name=args.name, dtype=dtype, metadata=metadata, labels=labels,
-                                envelope=envelope)
+                                envelope=checked)
         if "python" in languages:
             written.append(export_python(model.network, folder, name=args.name, metadata=metadata, labels=labels,
-                                         envelope=envelope))
+                                         envelope=checked))
         if "c-fixed" in languages:
-            calibration = _calibration_rows(args, model)
-            report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
-                                          headroom=args.headroom, metadata=metadata, labels=labels)
+            calibration = None if args.calibration is None else _calibration_rows(args, model)
+            if calibration is not None and envelope is not None:  # the formats come from the envelope
+                outside = warn_rows_outside("export", envelope, calibration, f"the calibration rows of "
+                                            f"{args.calibration}")
+            with warnings.catch_warnings():  # the report's warnings are printed below, one line each
+                warnings.simplefilter("ignore", ErrorBoundWarning)
+                report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
+                                              headroom=args.headroom, metadata=metadata, labels=labels,
+                                              envelope=envelope, tolerance=args.tolerance,
+                                              check_envelope=args.check_envelope)
             written += [report.header, report.source, *report.class_files]
-            if labels is not None:
+            if labels is not None and calibration is not None:
                 agreement = fixed_point_class_agreement(report, model.network, calibration)
+        float_bound = None
+        if "c" in languages and envelope is not None:
+            float_bound = envelope_error_bound(model.network, envelope, dtype=dtype)
     except OSError as exc:
         raise CommandError(f"cannot write the code: {describe_os_error(exc)}") from None
     except (TypeError, ValueError) as exc:
@@ -119,13 +151,16 @@ def run(args: argparse.Namespace) -> int:
     for path in written:
         print(f"wrote {path}")
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
+    if float_bound is not None:
+        print(f"proven bound on |{args.c_type} C code - network (float64)| over the envelope, per output: "
+              + ", ".join(f"{b:.3g}" for b in float_bound))
     if report is not None:
         print(report)
         if agreement is not None:
             print(f"class decision on the {agreement.rows} calibration rows: {agreement}")
         for warning in report.warnings:
             warn("export", warning)
-        return _judge_fixed_point_error(report, args.headroom)
+        return _judge_fixed_point_error(report, report.headroom, outside)
     return 0
 
 
@@ -133,15 +168,21 @@ USELESS_ERROR = 1.0  # integer code whose largest error exceeds the output range
 POOR_ERROR = 0.1  # above a tenth of the output range: a warning
 
 
-def _judge_fixed_point_error(report: Any, headroom: float) -> int:
-    """Exit status 1 when the integer code's error on the calibration rows exceeds the output range; warn above 10 %."""
+def _judge_fixed_point_error(report: Any, headroom: float, outside: bool = False) -> int:
+    """Exit status 1 when the integer code's error on the calibration rows exceeds the output range; warn above 10 %.
+
+    ``outside``: calibration rows lie outside the envelope the formats came from (they saturate there).
+    """
     relative = np.nan_to_num(report.max_rel_error, nan=0.0)
     worst = int(np.argmax(relative))
     share = float(relative[worst])
     if share <= POOR_ERROR:
         return 0
+    cause = ("calibration rows lie outside the envelope its formats were proven over (listed above): give an "
+             "envelope that covers them (--envelope-low/--envelope-high, or 'tinyprop envelope')" if outside else
+             f"its formats keep too few fractional bits: lower --headroom (now {headroom:g})")
     text = (f"the integer code's largest error on the calibration rows is {100 * share:.3g}% of output {worst}'s "
-            f"range; its formats keep too few fractional bits: lower --headroom (now {headroom:g})")
+            f"range; {cause}")
     if share > USELESS_ERROR:
         print(f"tinyprop export: error: {text}; the files were written for inspection but are not usable",
               file=sys.stderr)
@@ -166,16 +207,27 @@ def _calibration_rows(args: argparse.Namespace, model: ModelFile) -> np.ndarray:
     return X
 
 
-def _stored_envelope(model: ModelFile) -> Envelope:
-    """The operating envelope stored in the model, for ``--check-envelope``."""
+def _numbers(text: str) -> list[float]:
+    """Comma-separated finite numbers (one per input)."""
+    return [_args.number(part) for part in text.split(",")]
+
+
+def _envelope(args: argparse.Namespace, model: ModelFile) -> Envelope | None:
+    """The box of ``--envelope-low``/``--envelope-high``, else the model's stored envelope, else ``None``."""
+    n_in = model.network.n_in
+    if args.envelope_low is not None:
+        for option, values in (("--envelope-low", args.envelope_low), ("--envelope-high", args.envelope_high)):
+            if len(values) != n_in:
+                raise CommandError(f"{option} must give one number per model input ({n_in}), got {len(values)}",
+                                   USAGE)
+        try:
+            return Envelope(args.envelope_low, args.envelope_high, source="set by user")
+        except ValueError as exc:
+            raise CommandError(f"--envelope-low/--envelope-high: {exc}", USAGE) from None
     try:
-        envelope = Envelope.from_metadata(model.metadata, n_in=model.network.n_in)
+        return Envelope.from_metadata(model.metadata, n_in=n_in)
     except EnvelopeError as exc:
-        raise CommandError(f"--check-envelope: {exc}") from None
-    if envelope is None:
-        raise CommandError("--check-envelope: the model stores no operating envelope; store one with "
-                           "'tinyprop envelope MODEL.npz --low ... --high ... --out NEW.npz'", USAGE)
-    return envelope
+        raise CommandError(f"the model's stored envelope: {exc}") from None
 
 
 def _export_metadata(metadata: dict[str, Any]) -> dict[str, Any] | None:

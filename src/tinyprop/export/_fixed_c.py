@@ -11,12 +11,17 @@ multiplications.
 
 from __future__ import annotations
 
+import numpy as np
+
 from ._fixed_program import SLOPE_BITS, IntegerProgram, QAffine, QLeaky, QRelu, QScaling, QStep, QTable
 from ._fixed_tables import c_function
 from ._plan import route_work_arrays, work_array_widths
 from ._source import c_header
 
-__all__ = ["source_file", "header_file", "buffer_widths"]
+__all__ = ["source_file", "header_file", "buffer_widths", "Box"]
+
+Box = tuple[np.ndarray, np.ndarray]
+"""The envelope's ends in the inputs' integer formats (int16 values)."""
 
 _PER_LINE = 8
 
@@ -45,7 +50,9 @@ def buffer_widths(program: IntegerProgram) -> dict[str, int]:
     return work_array_widths(_routing(program))
 
 
-def header_file(name: str, comment: list[str], program: IntegerProgram, fingerprint: str) -> str:
+def header_file(name: str, comment: list[str], program: IntegerProgram, fingerprint: str,
+                box: Box | None = None) -> str:
+    """The header; with ``box`` (the envelope in the inputs' integer formats) ``predict_q`` returns a count."""
     macro = name.upper()
     defines = [f"#define {macro}_N_INPUTS {len(program.in_bits)}",
                f"#define {macro}_N_OUTPUTS {len(program.out_bits)}",
@@ -53,15 +60,24 @@ def header_file(name: str, comment: list[str], program: IntegerProgram, fingerpr
                "", "/* Fractional bits f of each input and output: value = integer / 2^f. */"]
     defines += [f"#define {macro}_INPUT_FRAC_BITS_{j} {_int(b)}" for j, b in enumerate(program.in_bits)]
     defines += [f"#define {macro}_OUTPUT_FRAC_BITS_{k} {_int(b)}" for k, b in enumerate(program.out_bits)]
-    return c_header(macro, comment, defines, signature(name), includes=["#include <stdint.h>"])
+    if box is not None:
+        defines += ["", f"/* The envelope in the inputs' integer formats: {name}_predict_q returns how many of",
+                    f" * x_q[j] lie outside [{macro}_ENVELOPE_LOW_j, {macro}_ENVELOPE_HIGH_j] (0: all inside). */"]
+        defines += [f"#define {macro}_ENVELOPE_LOW_{j} {_int(int(v))}" for j, v in enumerate(box[0])]
+        defines += [f"#define {macro}_ENVELOPE_HIGH_{j} {_int(int(v))}" for j, v in enumerate(box[1])]
+    return c_header(macro, comment, defines, signature(name, box is not None), includes=["#include <stdint.h>"])
 
 
-def signature(name: str) -> str:
-    return f"void {name}_predict_q(const int16_t *x_q, int16_t *y_q)"
+def signature(name: str, checked: bool = False) -> str:
+    """``void <name>_predict_q(...)``, or ``int`` (inputs outside the envelope) when ``checked``."""
+    return f"{'int' if checked else 'void'} {name}_predict_q(const int16_t *x_q, int16_t *y_q)"
 
 
-def source_file(name: str, comment: list[str], program: IntegerProgram) -> str:
+def source_file(name: str, comment: list[str], program: IntegerProgram, box: Box | None = None) -> str:
     lines = comment + ["", "#include <stdint.h>", "", f'#include "{name}.h"']
+    if box is not None:
+        lines += ["", "/* the envelope of each input, in its integer format */"]
+        lines += _array("int16_t", f"{name}_envelope_low", box[0]) + _array("int16_t", f"{name}_envelope_high", box[1])
     for step in program.steps:
         lines += _constants(name, step)
     tables = {step.table.kind: step.table for step in program.steps if isinstance(step, QTable)}
@@ -78,7 +94,7 @@ def source_file(name: str, comment: list[str], program: IntegerProgram) -> str:
             functions[(step.table.kind, step.in_bits)] = function
             lines += ["", f"/* {step.table.kind} of an input with {step.in_bits} fractional bits, result Q14 */"]
             lines += text
-    lines += ["", signature(name), "{"] + _body(name, program, functions) + ["}"]
+    lines += ["", signature(name, box is not None), "{"] + _body(name, program, functions, box is not None) + ["}"]
     return "\n".join(lines) + "\n"
 
 
@@ -140,10 +156,15 @@ def _loop(count: int, statements: list[str]) -> list[str]:
     return [f"    for (k = 0; k < {count}; ++k) {{"] + [f"        {s}" for s in statements] + ["    }"]
 
 
-def _body(name: str, program: IntegerProgram, functions: dict[tuple[str, int], str]) -> list[str]:
+def _body(name: str, program: IntegerProgram, functions: dict[tuple[str, int], str], checked: bool) -> list[str]:
     widths = buffer_widths(program)
     lines = [f"    int16_t {buffer}[{width}];" for buffer, width in sorted(widths.items())]
     lines += ["    int j, k;"]
+    if checked:  # counted before anything is written: y_q may be x_q
+        lines += ["    int outside = 0;", "",  "    /* inputs outside the envelope */"]
+        lines += _loop(len(program.in_bits), [
+            f"if (x_q[k] < {name}_envelope_low[k] || x_q[k] > {name}_envelope_high[k]) {{",
+            "    ++outside;", "}"])
     for step, (source, target, width) in zip(program.steps, _routing(program)):
         formats = ", ".join(sorted({f"Q{b}" for b in step.out_bits}))
         lines += ["", f"    /* {step.label}; result {formats} */"]
@@ -163,7 +184,7 @@ def _body(name: str, program: IntegerProgram, functions: dict[tuple[str, int], s
             lines += _loop(width, [f"{target}[k] = {function}({source}[k]);"])
     final = _routing(program)[-1][1]
     lines += ["", "    /* result */"] + _loop(len(program.out_bits), [f"y_q[k] = {final}[k];"])
-    return lines
+    return lines + (["    return outside;"] if checked else [])
 
 
 def _affine(name: str, step: QAffine, source: str, target: str) -> list[str]:

@@ -63,7 +63,7 @@ from ._plan import ActivationStep, AffineStep, Plan, ScalingStep
 
 __all__ = [
     "INT16_MIN", "INT16_MAX", "QAffine", "QScaling", "QRelu", "QLeaky", "QTable", "QStep",
-    "IntegerProgram", "build_program", "narrow", "vector_bits",
+    "IntegerProgram", "build_program", "calibration_ranges", "check_activations", "narrow", "vector_bits",
 ]
 
 INT16_MIN, INT16_MAX = -32768, 32767
@@ -158,7 +158,8 @@ class IntegerProgram:
 
     def to_integers(self, X: np.ndarray) -> tuple[np.ndarray, int]:
         """``x_q = saturate(round(x 2**f))`` per column (ties away from zero) and the saturation count."""
-        scaled = np.asarray(X, dtype=np.float64) * np.exp2(np.array(self.in_bits, dtype=np.float64))
+        with np.errstate(over="ignore"):  # a value beyond float64 after scaling saturates like any other
+            scaled = np.asarray(X, dtype=np.float64) * np.exp2(np.array(self.in_bits, dtype=np.float64))
         bounded = np.clip(scaled, 2.0 * INT16_MIN, 2.0 * INT16_MAX)  # keep the int64 cast in range
         q = round_half_away(bounded)
         clamped = (q > INT16_MAX) | (q < INT16_MIN)
@@ -180,6 +181,13 @@ class IntegerProgram:
             v, count = _run_step(step, v)
             counts.append(count)
         return v, counts
+
+    def trace(self, x_q: np.ndarray) -> list[np.ndarray]:
+        """The integer input and every step's integer output (int64), for int16 inputs ``(n, n_in)``."""
+        values = [np.asarray(x_q, dtype=np.int64)]
+        for step in self.steps:
+            values.append(_run_step(step, values[-1])[0])
+        return values
 
 
 def _run_step(step: QStep, v: np.ndarray) -> tuple[np.ndarray, int]:
@@ -226,7 +234,10 @@ def constant_bits(values: np.ndarray, what: str) -> int:
 
 def _fit(magnitude: float, limit: float) -> int:
     """The largest ``f`` in ``[F_MIN, F_MAX]`` with ``magnitude * 2**f`` below ``limit`` (``<=`` for int limits)."""
-    bits = min(F_MAX, max(F_MIN, math.floor(math.log2(limit / magnitude))))
+    ratio = limit / magnitude
+    if not math.isfinite(ratio):  # a magnitude near the smallest subnormal (a guaranteed range [0, 5e-324])
+        return F_MAX
+    bits = min(F_MAX, max(F_MIN, math.floor(math.log2(ratio))))
     while bits > F_MIN and _over(magnitude * 2.0**bits, limit):
         bits -= 1
     while bits < F_MAX and not _over(magnitude * 2.0 ** (bits + 1), limit):
@@ -280,10 +291,19 @@ def calibration_ranges(plan: Plan, X: np.ndarray) -> list[np.ndarray]:
     return ranges
 
 
-def build_program(plan: Plan, X: np.ndarray, headroom: float) -> IntegerProgram:
-    """Choose every format from the calibration rows ``X`` (float64) and quantise every constant."""
+def check_activations(plan: Plan) -> None:
+    """Refuse (``TypeError``) an activation without an integer form, before any range is computed."""
     _check_activations(plan)
-    ranges = calibration_ranges(plan, X)
+
+
+def build_program(plan: Plan, ranges: list[np.ndarray], headroom: float) -> IntegerProgram:
+    """Choose every format from ``ranges`` and quantise every constant.
+
+    ``ranges[0]`` is the largest ``|value|`` per input column, ``ranges[i + 1]``
+    that of step ``i``'s output (from :func:`calibration_ranges`, or guaranteed
+    over an envelope by :mod:`~tinyprop.export._envelope_error`).
+    """
+    _check_activations(plan)
     steps = plan.steps
     consumer = next((s for s in steps if not _preserves_format(s)), None)
     per_column = isinstance(consumer, (AffineStep, ScalingStep))
