@@ -262,7 +262,8 @@ def test_export_c_fixed_point_calibrates_on_the_model_input_columns(demo_model, 
     (tmp_path / "lib").mkdir()
     model = tp.load_model_file(demo_model)
     library = tp.export_c_fixed_point(model.network, tmp_path / "lib", csv_file[1], name="plant_q",
-                                      envelope=tp.Envelope.from_metadata(model.metadata))
+                                      envelope=tp.Envelope.from_metadata(model.metadata),
+                                      tolerance=model.metadata["training"]["test"]["rmse"])
     assert f"inputs: {', '.join(f'Q{b}' for b in library.input_bits)}" in result.stdout
     assert (out / "plant_q.c").read_text() == (tmp_path / "lib" / "plant_q.c").read_text()
     if shutil.which("gcc"):

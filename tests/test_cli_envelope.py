@@ -73,6 +73,16 @@ def test_train_stores_the_envelope_of_the_training_rows_widened_by_the_margin(ex
     assert stored.source == "training data, widened by 0.1 of each width on both sides"
 
 
+def test_train_stores_the_test_error_that_export_compares_its_bounds_with(exchanger):
+    _, _, _, _, model = exchanger
+    stored = tp.load_model_file(model).metadata["training"]["test"]
+    report = json.loads(model.with_name("exchanger.report.json").read_text(encoding="utf-8"))
+    test = report["metrics"]["test"]
+    assert stored["rows"] == test["rows"]
+    assert stored["rmse"] == [test["targets"][name]["rmse"] for name in report["data"]["targets"]]
+    assert stored["max_abs_error"] == [test["targets"][name]["max_abs_error"] for name in report["data"]["targets"]]
+
+
 def test_train_on_a_class_column_stores_the_envelope_of_its_training_rows(tmp_path, capsys):
     data = write_machine_csv(tmp_path / "machine.csv", 60, seed=5)
     status, _, err = run_main(capsys, "train", str(data), "--targets", "state", "--epochs", "2", "--hidden", "3",

@@ -343,7 +343,7 @@ def _run_cli(*args: str) -> subprocess.CompletedProcess:
 
 @pytest.fixture(scope="module")
 def cooling_model(tmp_path_factory) -> tuple[Path, tp.Network, tuple]:
-    """The synthetic cooling loop saved with an envelope in its metadata (as the envelope branch stores it)."""
+    """The synthetic cooling loop saved with an envelope in its metadata (as tinyprop train stores it)."""
     net, (low, high) = cooling_loop()
     path = tmp_path_factory.mktemp("cli") / "cooling.npz"
     tp.save(net, path, metadata={"envelope": {"low": low, "high": high, "source": "synthetic"}})
@@ -387,3 +387,23 @@ def test_format_of_a_subnormal_range():
     """A guaranteed range can be [0, 5e-324] (outward rounding of 0); its format was an OverflowError."""
     from tinyprop.export._fixed_program import F_MAX, vector_bits
     assert vector_bits(5e-324, 1.0) == F_MAX
+
+
+@pytest.mark.parametrize("stored_rmse, warned", [(1e-9, True), (1e3, False)])
+def test_cli_compares_the_proven_bounds_with_the_stored_test_error(cooling_model, tmp_path, stored_rmse, warned):
+    # issue 18: "the export warns when that bound exceeds the model's own test error"; tinyprop train stores
+    # the test rows' RMSE per output under training.test (docs/model-file.md)
+    path, net, (low, high) = cooling_model
+    stored = tmp_path / "with_test_error.npz"
+    tp.save(net, stored, metadata={"envelope": {"low": low, "high": high, "source": "synthetic"},
+                                   "training": {"test": {"rows": 30, "rmse": [stored_rmse] * net.n_out,
+                                                         "max_abs_error": [stored_rmse] * net.n_out}}})
+    result = _run_cli("export", str(stored), "--language", "c-fixed", "--language", "c", "--out", str(tmp_path))
+    assert result.returncode == 0, result.stderr
+    assert "proven error bounds are compared with the model's test RMSE (stored by tinyprop train)" in result.stdout
+    integer = "the proven error bound over the envelope of output 0" in result.stderr
+    floating = "the float C code's proven error bound over the envelope for output 0" in result.stderr
+    assert integer == warned and floating == warned, result.stderr
+    given = _run_cli("export", str(stored), "--language", "c-fixed", "--out", str(tmp_path / "given"),
+                     "--tolerance", "1e6")
+    assert "compared with --tolerance" in given.stdout and "exceeds" not in given.stderr

@@ -51,16 +51,22 @@ def training_envelope(X_train: np.ndarray, names: Sequence[str], margin: float) 
 
 def model_metadata(
     data: Dataset, settings: FitSettings, description: str, outcome: FitOutcome | None = None,
-    envelope: Envelope | None = None,
+    envelope: Envelope | None = None, test: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """What the model file keeps: input and output names and units (used by ``export``), a description, the recipe.
 
     For the default recipe's methods also the branch it chose and why (``training.fit``); the operating
-    ``envelope`` when given.
+    ``envelope`` when given; the test rows' errors (``test``: :func:`~tinyprop.recipes.evaluate` on them)
+    as ``training.test`` = ``{"rows": n, "rmse": [...], "max_abs_error": [...]}``, one entry per output,
+    which ``export`` compares its proven error bounds with.
     """
     training: dict[str, Any] = {"settings": settings.to_dict(), "data": data.source}
     if outcome is not None and outcome.recipe is not None:
         training["fit"] = {"recipe_method": outcome.recipe.method, "reason": outcome.recipe.reason}
+    if test is not None:
+        training["test"] = {"rows": test["rows"],
+                            **{key: [test["targets"][name][key] for name in data.target_names]
+                               for key in ("rmse", "max_abs_error")}}
     return {
         "description": description,
         **data.ports(),

@@ -91,7 +91,8 @@ def run(args: argparse.Namespace) -> int:
                      f"largest error {test['max_abs_error']:.4f}, on {sizes['test']} synthetic test rows")
 
     clock = time.perf_counter()
-    files = _save_and_export(out, net, data, outcome, training_envelope(data.X[split.training], data.input_names, 0.0))
+    files = _save_and_export(out, net, data, outcome, training_envelope(data.X[split.training], data.input_names, 0.0),
+                             metrics["test"])
     agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
     fixed = _export_fixed_point(out, net, data, split.training, split.test)
     files["integer C"] = [fixed.header, fixed.source]
@@ -136,11 +137,11 @@ def _step(number: int, label: str, text: str, flush: bool = False) -> None:
 
 
 def _save_and_export(
-    out: Path, net: Network, data: Dataset, outcome: FitOutcome, envelope: Envelope
+    out: Path, net: Network, data: Dataset, outcome: FitOutcome, envelope: Envelope, test: dict[str, Any] | None
 ) -> dict[str, list[Path]]:
     """The model file (with names, units, a description and the envelope), C and Python code, and the data as CSV."""
     description = f"tinyprop demo: battery state of charge. {SYNTHETIC}."
-    metadata = model_metadata(data, DEMO_SETTINGS, description, outcome, envelope)
+    metadata = model_metadata(data, DEMO_SETTINGS, description, outcome, envelope, test)
     export_metadata = {**data.ports(), "description": description}
     model = out / f"{NAME}.npz"
     save(net, model, metadata=metadata)

@@ -86,7 +86,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fixed.add_argument("--envelope-high", type=_numbers, metavar="NUMBERS",
                        help="highest value of each input, comma-separated (with --envelope-low)")
     fixed.add_argument("--tolerance", type=_args.positive_float, metavar="NUMBER",
-                       help="warn when the proven error bound over the envelope exceeds this (output units)")
+                       help="warn when a proven error bound over the envelope exceeds this (output units; default: the "
+                            "model's test RMSE when tinyprop train stored it)")
     add_import_option(parser)
 
 
@@ -109,6 +110,7 @@ def run(args: argparse.Namespace) -> int:
     if "c-fixed" in languages and args.calibration is None and envelope is None:
         raise CommandError("--language c-fixed needs --calibration DATA.csv or an envelope (--envelope-low and "
                            "--envelope-high, or one stored in the model)", USAGE)
+    tolerance, tolerance_source = _tolerance(args, model)
     if args.check_envelope and envelope is None:
         raise CommandError("--check-envelope: the model stores no operating envelope; give --envelope-low and "
                            "--envelope-high, or store one with 'tinyprop envelope MODEL.npz --low ... --high ... "
@@ -136,7 +138,7 @@ def run(args: argparse.Namespace) -> int:
                 warnings.simplefilter("ignore", ErrorBoundWarning)
                 report = export_c_fixed_point(model.network, folder, calibration, name=f"{args.name}_q",
                                               headroom=args.headroom, metadata=metadata, labels=labels,
-                                              envelope=envelope, tolerance=args.tolerance,
+                                              envelope=envelope, tolerance=tolerance,
                                               check_envelope=args.check_envelope)
             written += [report.header, report.source, *report.class_files]
             if labels is not None and calibration is not None:
@@ -151,9 +153,16 @@ def run(args: argparse.Namespace) -> int:
     for path in written:
         print(f"wrote {path}")
     print(f"model fingerprint {model.fingerprint} (also written into the code)")
+    if envelope is not None and tolerance is not None:
+        print(f"proven error bounds are compared with {tolerance_source}: "
+              + ", ".join(f"{t:.3g}" for t in np.broadcast_to(tolerance, (model.network.n_out,))))
     if float_bound is not None:
         print(f"proven bound on |{args.c_type} C code - network (float64)| over the envelope, per output: "
               + ", ".join(f"{b:.3g}" for b in float_bound))
+        limit = None if tolerance is None else np.broadcast_to(tolerance, float_bound.shape)
+        for k in ([] if limit is None else np.flatnonzero(float_bound > limit)):
+            warn("export", f"the {args.c_type} C code's proven error bound over the envelope for output {k}, "
+                           f"{float_bound[k]:.3g}, exceeds {tolerance_source} ({limit[k]:.3g})")
     if report is not None:
         print(report)
         if agreement is not None:
@@ -205,6 +214,24 @@ def _calibration_rows(args: argparse.Namespace, model: ModelFile) -> np.ndarray:
     if X.shape[0] == 0:
         raise CommandError(f"{args.calibration}: no data rows to calibrate on")
     return X
+
+
+def _tolerance(args: argparse.Namespace, model: ModelFile) -> tuple[Any, str]:
+    """What proven error bounds are compared with: ``--tolerance``, else the test RMSE stored by ``tinyprop train``.
+
+    Returns ``(tolerance or None, its description)``; a stored entry that is not one positive finite
+    number per output is not used.
+    """
+    if args.tolerance is not None:
+        return args.tolerance, "--tolerance"
+    training = model.metadata.get("training")
+    test = training.get("test") if isinstance(training, dict) else None
+    rmse = test.get("rmse") if isinstance(test, dict) else None
+    n_out = model.network.n_out
+    if (isinstance(rmse, list) and len(rmse) == n_out
+            and all(isinstance(v, (int, float)) and np.isfinite(v) and v > 0 for v in rmse)):
+        return np.array(rmse, dtype=np.float64), "the model's test RMSE (stored by tinyprop train)"
+    return None, "no tolerance"
 
 
 def _numbers(text: str) -> list[float]:

@@ -206,7 +206,7 @@ def run(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     envelope = training_envelope(data.X[split.training], data.input_names, args.envelope_margin)
     metadata = model_metadata(data, settings, f"fitted by tinyprop train to {Path(args.data).name}", outcome,
-                              envelope)
+                              envelope, metrics["test"])
     extra["envelope"] = metadata["envelope"]
     extra["model_file"] = os.fspath(model_path)
     with files_together(model_path.parent):  # the report on disk always describes the model on disk
