@@ -204,10 +204,10 @@ def train(
         The network and its training data: ``X`` ``(n, n_in)``, ``y``
         ``(n, n_out)`` (1-D allowed for one output). Converted once to the
         network's dtype; the caller's arrays are not modified. Memory: one
-        shuffled copy of ``X`` and ``y``, refilled every epoch, the network's
-        workspace for one mini-batch, and a copy of the weights and of the
-        optimizer's state taken at the start of every epoch (for the
-        divergence guard's replay).
+        mini-batch of ``X`` and ``y`` (each batch's rows are gathered into it
+        in the shuffled order), the network's workspace for one mini-batch,
+        and a copy of the weights and of the optimizer's state taken at the
+        start of every epoch (for the divergence guard's replay).
     loss:
         A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
         losses (``MeanSquaredError``, the cross-entropies) make the step size
@@ -351,7 +351,8 @@ class _Run:
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
         self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
         self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
-        self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
+        rows = min(self.batch_size, self.X.shape[0])  # each mini-batch's rows are gathered into these
+        self.batch = np.empty((rows, net.n_in), net.dtype), np.empty((rows, net.n_out), net.dtype)
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
@@ -465,19 +466,16 @@ class _Run:
     def _epoch(self) -> str | None:
         """Run one epoch; return a description of a divergence, or ``None``."""
         order = self.rng.permutation(self.X.shape[0])
-        X, y = self.shuffled
-        np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
-        np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
         vector = self.net.vector
         np.copyto(self.backup, vector)  # the start of the epoch, to replay from if a check fails
         self.optimizer._mark()
-        problem, epoch_loss = self._updates(X, y, vector, every_check=False)
+        problem, epoch_loss = self._updates(order, vector, every_check=False)
         if problem is None and not _sum_is_finite(vector):
             problem = "a weight is not finite"
         if problem is not None:  # rewind and replay with every check after every update (module docstring)
             np.copyto(vector, self.backup)
             self.optimizer._rewind()
-            problem = self._updates(X, y, vector, every_check=True)[0] or problem
+            problem = self._updates(order, vector, every_check=True)[0] or problem
             return self._where(problem)
         return self._end_epoch(epoch_loss)
 
@@ -502,17 +500,23 @@ class _Run:
                 return f"after epoch {self.epoch}: the validation loss is {self.validation_loss[-1]}"
         return None
 
-    def _updates(self, X: np.ndarray, y: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
-        """The epoch's updates on the shuffled rows; ``(problem or None, running training loss)``.
+    def _updates(self, order: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
+        """The epoch's updates on the rows in ``order``; ``(problem or None, running training loss)``.
 
-        Stops at the first non-finite mini-batch loss or gradient norm; with
-        ``every_check`` also at the first update that makes a weight
-        non-finite, restoring the weights from before it.
+        Each mini-batch's rows are gathered into one preallocated batch
+        (``np.take`` of the batch's slice of ``order``), so the data are read
+        once per epoch, right before the step that uses them, and never
+        copied whole. Stops at the first non-finite mini-batch loss or
+        gradient norm; with ``every_check`` also at the first update that
+        makes a weight non-finite, restoring the weights from before it.
         """
-        total, n, summed = 0.0, X.shape[0], self.loss.sums_over_samples
+        total, n, summed = 0.0, order.shape[0], self.loss.sums_over_samples
         grad_vector = self.work.grad_vector  # the gradients are views of it
         for start in range(0, n, self.batch_size):
-            xb, yb = X[start:start + self.batch_size], y[start:start + self.batch_size]
+            rows = order[start:start + self.batch_size]
+            xb, yb = self.batch[0][:rows.shape[0]], self.batch[1][:rows.shape[0]]
+            np.take(self.X, rows, axis=0, out=xb, mode="clip")  # the rows of a permutation are always in range;
+            np.take(self.y, rows, axis=0, out=yb, mode="clip")  # mode="raise" would copy through a buffer
             out, trace = self.net.forward(xb, workspace=self.work)
             batch_loss = self.loss.value(out, yb)
             if not math.isfinite(batch_loss):
