@@ -119,6 +119,27 @@ def test_one_hundred_steps_of_eight_networks_are_bit_identical(dtype):
         _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
 
 
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("sizes", [[8, 64, 64, 1], [3, 33, 17, 2], [5, 16, 2]])
+def test_wide_layers_and_a_one_row_batch_are_bit_identical(sizes, dtype):
+    # Wider layers than the property test draws, and a last batch of one row: the stack multiplies by a
+    # contiguous copy of W^T only for the shapes where this BLAS gives the transposed view's bits (not for
+    # 33 -> 17 at 32 rows, nor for one row, on OpenBLAS), and by the view elsewhere.
+    rng = np.random.default_rng(11)
+    X = rng.normal(size=(65, sizes[0])).astype(dtype)
+    y = np.tanh(X[:, :sizes[-1]] - 0.5 * X[:, -1:])
+    template = tp.build_mlp(sizes, dtype=dtype)
+    nets = _members(template, [0, 1, 2])
+    optimizers = [Adam(lr) for lr in (1e-3, 3e-3, 1e-2)]
+    results = tp.train_stacked(nets, X, y, loss=tp.MeanSquaredError(), optimizers=optimizers, epochs=2,
+                               batch_size=32, seeds=[7, 8, 9])
+    for k, lr in enumerate((1e-3, 3e-3, 1e-2)):
+        optimizer = Adam(lr)
+        alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, 7 + k, epochs=2,
+                                  batch_size=32)
+        _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
+
+
 def test_a_diverging_network_leaves_the_stack_and_the_others_go_on():
     rng = np.random.default_rng(5)
     X = rng.normal(size=(40, 3))

@@ -68,6 +68,7 @@ True
 from __future__ import annotations
 
 import copy
+import functools
 from typing import Any, Sequence
 
 import numpy as np
@@ -144,10 +145,14 @@ def train_stacked(
         if not isinstance(validation, (tuple, list)) or len(validation) != 2:
             raise TypeError(f"validation must be a pair (X_val, y_val) or None, got {type(validation).__name__}")
         validations = list(zip(*_per_network_data(validation[0], validation[1], "validation ", K, nets[0])))
-    runs = [
-        _Run(net, Xk, yk, loss, opt, epochs, batch_size, val, patience, seed, False, l2, None, training_loss)
-        for net, Xk, yk, opt, val, seed in zip(nets, Xs, ys, optimizers, validations, seeds)
-    ]
+    digests: dict[tuple[int, ...], str] = {}  # shared data are hashed once, not once per network
+    runs = []
+    for net, Xk, yk, opt, val, seed in zip(nets, Xs, ys, optimizers, validations, seeds):
+        key = (id(Xk), id(yk)) + (() if val is None else (id(val[0]), id(val[1])))
+        run = _Run(net, Xk, yk, loss, opt, epochs, batch_size, val, patience, seed, False, l2, None, training_loss,
+                   digests.get(key))
+        digests[key] = run.settings["data_sha256"]
+        runs.append(run)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         return _Stacked(runs, optimizers).execute()
 
@@ -182,22 +187,25 @@ class _Stacked:
         self.grad = np.empty_like(self.theta)
         self.backup = np.empty_like(self.theta)
         self.weights, self.biases, self.grad_weights, self.grad_biases = {}, {}, {}, {}
+        self.transposed = {}  # affine layer -> (K, n_in, n_out) contiguous copy of W^T, refreshed every step
         start = 0
         for i in self.affine:
             layer = self.steps[i][1]
             size = layer.n_out * layer.n_in
             self.weights[i] = self.theta[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
+            if layer.n_in > 1 and layer.n_out > 1:  # otherwise W^T has the layout of its copy, or the product is
+                self.transposed[i] = np.empty((K, layer.n_in, layer.n_out), dtype)  # elementwise (_matmul)
             self.grad_weights[i] = self.grad[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
             start += size
             if layer.bias is not None:
                 self.biases[i] = self.theta[:, start:start + layer.n_out].reshape(K, 1, layer.n_out, copy=False)
                 self.grad_biases[i] = self.grad[:, start:start + layer.n_out]
                 start += layer.n_out
-        self.buffers: dict[int, tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray]] = {}
+        self.buffers: dict[int, _Buffers] = {}
         self.dtype = dtype
 
-    def _buffers(self, rows: int) -> tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray]:
-        """Per affine layer its ``(K, rows, n_out)`` output and ``(K, rows, n_in)`` delta; a vector of ones."""
+    def _buffers(self, rows: int) -> "_Buffers":
+        """The arrays of a batch of ``rows`` rows, and which layers multiply by the contiguous ``W^T``."""
         if rows not in self.buffers:
             K = self.theta.shape[0]
             layers = {i: self.steps[i][1] for i in self.affine}
@@ -205,6 +213,8 @@ class _Stacked:
                 {i: np.empty((K, rows, layer.n_out), self.dtype) for i, layer in layers.items()},
                 {i: np.empty((K, rows, layer.n_in), self.dtype) for i, layer in layers.items()},
                 np.ones(rows, self.dtype),
+                [i for i in self.transposed
+                 if _transposed_copy_agrees(rows, layers[i].n_in, layers[i].n_out, self.dtype.str)],
             )
         return self.buffers[rows]
 
@@ -220,11 +230,14 @@ class _Stacked:
     # ----------------------------------------------------------------- passes
     def _forward(self, x: np.ndarray) -> list[np.ndarray]:
         """Every layer's input and the output, as :meth:`Network.forward` with a workspace computes them."""
-        outputs = self._buffers(x.shape[1])[0]
+        outputs, _, _, contiguous = self._buffers(x.shape[1])
+        for i in contiguous:
+            np.copyto(self.transposed[i], self.weights[i].transpose(0, 2, 1))
         values, v = [x], x
         for i, (kind, layer) in enumerate(self.steps):
             if kind is _AFFINE:
-                v = _matmul(v, self.weights[i].transpose(0, 2, 1), outputs[i])  # x W^T
+                w_t = self.transposed[i] if i in contiguous else self.weights[i].transpose(0, 2, 1)
+                v = _matmul(v, w_t, outputs[i])  # x W^T
                 if i in self.biases:
                     v += self.biases[i]
             elif kind is _ACTIVATION_IN_PLACE:
@@ -239,7 +252,7 @@ class _Stacked:
 
     def _backward(self, values: list[np.ndarray], delta: np.ndarray) -> None:
         """The delta recursion of :meth:`Network.backward` (``need_input=False``) into ``self.grad``."""
-        _, scratch, ones = self._buffers(delta.shape[1])
+        _, scratch, ones, _ = self._buffers(delta.shape[1])
         for i, kind, layer in self.net._backward_steps:
             if kind is _AFFINE:
                 _matmul(delta.transpose(0, 2, 1), values[i], self.grad_weights[i])  # delta^T x
@@ -362,6 +375,39 @@ class _Stacked:
         layout = None if optimizer._layout is None else [((self.theta.shape[1],), self.theta.dtype)]
         slots = {name: [slot[0][row].copy()] for name, slot in optimizer._slots.items()}
         self.runs[self.active[row]].optimizer._take_state(optimizer.steps, layout, slots)
+
+
+# Per affine layer: the (K, rows, n_out) outputs, the (K, rows, n_in) deltas handed down,
+# a vector of rows ones (bias gradients), and the layers whose x W^T uses the contiguous copy.
+_Buffers = tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray, list[int]]
+
+
+@functools.lru_cache(maxsize=256)
+def _transposed_copy_agrees(rows: int, n_in: int, n_out: int, dtype: str) -> bool:
+    """Whether the stack may multiply by a contiguous copy of ``W^T`` for this shape: same bits as ``W.T``.
+
+    :meth:`Network.forward` multiplies ``x`` by the transposed view ``W.T``;
+    the stack multiplies each slice by a contiguous copy of ``W^T`` instead
+    (refreshed before every forward pass, which costs one copy of the
+    weights), because OpenBLAS multiplies that layout two to three times
+    faster for these small stacked matrices. The two are different BLAS calls
+    (a transposed operand or not), and nothing promises that their kernels add
+    the products in the same order. On OpenBLAS they do for many shapes and
+    not for others (33 -> 17 at 32 rows, float32, for one), and for a single
+    row, where numpy calls the matrix-vector routine, the order even depends
+    on how the arrays happen to be aligned in memory. So the stack uses the
+    copy only for two rows or more, and only for shapes where this probe, on
+    this machine's BLAS, gives every bit of the single network's product: the
+    rounding of each element depends on the order of the operations, not on
+    the values multiplied, so random operands reveal a different order.
+    """
+    if rows < 2:
+        return False
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((2, rows, n_in)).astype(dtype)
+    w = rng.standard_normal((2, n_out, n_in)).astype(dtype)
+    stacked = np.matmul(x, np.ascontiguousarray(w.transpose(0, 2, 1)))
+    return all(np.matmul(x[k], w[k].T).tobytes() == stacked[k].tobytes() for k in range(2))
 
 
 def _matmul(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> np.ndarray:

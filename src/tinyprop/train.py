@@ -85,6 +85,7 @@ from .layers import Affine
 from .losses import Loss
 from .network import Network
 from .optim import Optimizer
+from .workspace import Workspace
 
 __all__ = [
     "train",
@@ -302,7 +303,9 @@ class _Run:
         l2: float,
         callback: Callable[[EpochInfo], bool | None] | None,
         training_loss: str = TRAINING_LOSS_RUNNING,
+        data_sha256: str | None = None,
     ) -> None:
+        """``data_sha256``: the digest of the checked data if the caller has it (the networks of a stack share it)."""
         if training_loss not in (TRAINING_LOSS_RUNNING, TRAINING_LOSS_EXACT):
             raise ValueError(f"training_loss must be 'running' or 'exact', got {training_loss!r}")
         if not isinstance(net, Network):
@@ -342,7 +345,7 @@ class _Run:
             "n_samples": int(self.X.shape[0]),
             "n_validation": None if self.validation is None else int(self.validation[0].shape[0]),
             "parameter_shapes": [list(p.shape) for p in net.params],
-            "data_sha256": _data_digest(self.X, self.y, self.validation),
+            "data_sha256": data_sha256 or _data_digest(self.X, self.y, self.validation),
         }
         self.params = net.params
         self.is_weight = [
@@ -350,9 +353,8 @@ class _Run:
         ]
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
         self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
-        self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
-        rows = min(self.batch_size, self.X.shape[0])  # each mini-batch's rows are gathered into these
-        self.batch = np.empty((rows, net.n_in), net.dtype), np.empty((rows, net.n_out), net.dtype)
+        self.work: Workspace | None = None  # the loop's arrays, made when it starts (a stack never needs them)
+        self.batch: tuple[np.ndarray, np.ndarray] | None = None  # each mini-batch's rows are gathered into these
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
@@ -445,6 +447,9 @@ class _Run:
     # ----------------------------------------------------------------- the loop
     def execute(self) -> TrainingResult:
         self.started = time.perf_counter()
+        rows = min(self.batch_size, self.X.shape[0])
+        self.work = self.net.workspace(rows)
+        self.batch = np.empty((rows, self.net.n_in), self.net.dtype), np.empty((rows, self.net.n_out), self.net.dtype)
         reason = self._stop_reason(stop_requested=False)
         while reason is None:
             with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -511,13 +516,15 @@ class _Run:
         makes a weight non-finite, restoring the weights from before it.
         """
         total, n, summed = 0.0, order.shape[0], self.loss.sums_over_samples
-        grad_vector = self.work.grad_vector  # the gradients are views of it
+        work, batch = self.work, self.batch
+        assert work is not None and batch is not None
+        grad_vector = work.grad_vector  # the gradients are views of it
         for start in range(0, n, self.batch_size):
             rows = order[start:start + self.batch_size]
-            xb, yb = self.batch[0][:rows.shape[0]], self.batch[1][:rows.shape[0]]
+            xb, yb = batch[0][:rows.shape[0]], batch[1][:rows.shape[0]]
             np.take(self.X, rows, axis=0, out=xb, mode="clip")  # the rows of a permutation are always in range;
             np.take(self.y, rows, axis=0, out=yb, mode="clip")  # mode="raise" would copy through a buffer
-            out, trace = self.net.forward(xb, workspace=self.work)
+            out, trace = self.net.forward(xb, workspace=work)
             batch_loss = self.loss.value(out, yb)
             if not math.isfinite(batch_loss):
                 return f"the mini-batch loss is {batch_loss}", total
