@@ -24,7 +24,10 @@ stop reason, best epoch, optimizer state and ``TrainingResult`` (apart from
   single network runs on its matrices, with the same shapes and memory
   layout; each ``(K, 1, m) @ (K, m, 1)`` product is the dot product
   ``np.vdot`` that gives the mean-squared-error value and the squared
-  gradient norm;
+  gradient norm. One exception, for speed: ``x W^T`` is taken with a
+  contiguous copy of ``W^T`` instead of the transposed view, but only for
+  the shapes where a probe of this machine's BLAS gives the view's bits
+  (see ``_transposed_copy_agrees``);
 - elementwise operations (bias addition, activations and their derivatives,
   the loss gradient, the optimizer's passes) compute each element alone;
 - a learning rate or decay that differs between networks enters as a column
