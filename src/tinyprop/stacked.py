@@ -312,11 +312,15 @@ class _Stacked:
     def _epoch(self) -> np.ndarray | None:
         """One epoch of every network in the stack; the running loss totals, or ``None`` if none is left."""
         X, y = self.shuffled
-        for row, k in enumerate(self.active):
-            run = self.runs[k]
-            order = run.rng.permutation(self.n)
-            np.take(run.X, order, axis=0, out=X[row], mode="clip")
-            np.take(run.y, order, axis=0, out=y[row], mode="clip")
+        orders = np.stack([self.runs[k].rng.permutation(self.n) for k in self.active])
+        sources = [(self.runs[k].X, self.runs[k].y) for k in self.active]
+        if all(X_k is sources[0][0] and y_k is sources[0][1] for X_k, y_k in sources):
+            np.take(sources[0][0], orders, axis=0, out=X, mode="clip")  # shared rows: one gather for the stack
+            np.take(sources[0][1], orders, axis=0, out=y, mode="clip")
+        else:
+            for row, (X_k, y_k) in enumerate(sources):
+                np.take(X_k, orders[row], axis=0, out=X[row], mode="clip")
+                np.take(y_k, orders[row], axis=0, out=y[row], mode="clip")
         totals = np.zeros(len(self.active))
         start = 0
         while start < self.n:
