@@ -181,6 +181,8 @@ class _Stacked:
             for i, (kind, _) in enumerate(self.steps) if kind is _SCALING
         }
         self.optimizer = _stacked_optimizer(optimizers, first.net.dtype)
+        self.backup = np.empty_like(self.theta)  # the weights at the start of the epoch, to replay a network from
+        self.orders = np.empty((len(runs), self.n), dtype=np.intp)  # each network's order of the rows this epoch
         self._arrange()
 
     # ----------------------------------------------------------------- arrays
@@ -188,7 +190,6 @@ class _Stacked:
         """(Re)build every array that depends on the number of networks in the stack."""
         K, dtype = self.theta.shape[0], self.theta.dtype
         self.grad = np.empty_like(self.theta)
-        self.backup = np.empty_like(self.theta)
         self.weights, self.biases, self.grad_weights, self.grad_biases = {}, {}, {}, {}
         self.transposed = {}  # affine layer -> (K, n_in, n_out) contiguous copy of W^T, refreshed every step
         start = 0
@@ -224,7 +225,7 @@ class _Stacked:
     def _keep(self, keep: np.ndarray) -> None:
         """Drop the networks whose entry of ``keep`` is False from every stacked array."""
         self.active = [k for k, kept in zip(self.active, keep) if kept]
-        self.theta = self.theta[keep]
+        self.theta, self.backup, self.orders = self.theta[keep], self.backup[keep], self.orders[keep]
         self.shuffled = self.shuffled[0][keep], self.shuffled[1][keep]
         self.scalings = {i: (gain[keep], offset[keep]) for i, (gain, offset) in self.scalings.items()}
         _keep_optimizer_rows(self.optimizer, keep)
@@ -312,7 +313,7 @@ class _Stacked:
     def _epoch(self) -> np.ndarray | None:
         """One epoch of every network in the stack; the running loss totals, or ``None`` if none is left."""
         X, y = self.shuffled
-        orders = np.stack([self.runs[k].rng.permutation(self.n) for k in self.active])
+        self.orders = orders = np.stack([self.runs[k].rng.permutation(self.n) for k in self.active])
         sources = [(self.runs[k].X, self.runs[k].y) for k in self.active]
         if all(X_k is sources[0][0] and y_k is sources[0][1] for X_k, y_k in sources):
             np.take(sources[0][0], orders, axis=0, out=X, mode="clip")  # shared rows: one gather for the stack
@@ -321,29 +322,33 @@ class _Stacked:
             for row, (X_k, y_k) in enumerate(sources):
                 np.take(X_k, orders[row], axis=0, out=X[row], mode="clip")
                 np.take(y_k, orders[row], axis=0, out=y[row], mode="clip")
+        np.copyto(self.backup, self.theta)  # as train does: weights checked once per epoch, replayed on a failure
+        self.optimizer._mark()
         totals = np.zeros(len(self.active))
         start = 0
         while start < self.n:
-            failed = self._update(start, totals)
-            if failed is not None:  # some networks left the stack; the rest redo the step if it was not made
-                totals = totals[failed[0]]
+            kept = self._update(start, totals)
+            if kept is not None:  # some networks left the stack; the others redo the step
+                totals = totals[kept]
                 if not self.active:
                     return None
-                X, y = self.shuffled
-                if not failed[1]:
-                    continue
+                continue
             start += self.batch_size
-        return totals
+        if not _sum_is_finite(self.theta):
+            bad = ~np.isfinite(self.theta).all(axis=1)
+            if bad.any():
+                totals = totals[self._diverged(bad, ["a weight is not finite"] * len(bad))]
+        return totals if self.active else None
 
-    def _update(self, start: int, totals: np.ndarray) -> tuple[np.ndarray, bool] | None:
-        """One mini-batch step of every network; ``None``, or (rows kept, whether the step was made)."""
+    def _update(self, start: int, totals: np.ndarray) -> np.ndarray | None:
+        """One mini-batch step of every network: ``None``, or the rows kept when some failed a check (no step made)."""
         X, y = self.shuffled
         xb, yb = X[:, start:start + self.batch_size], y[:, start:start + self.batch_size]
         values = self._forward(xb)
         losses, gradient = self._loss(values[-1], yb)
         bad = ~np.isfinite(losses)
         if bad.any():
-            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses]), False
+            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses])
         self._backward(values, gradient)
         if self.l2:
             for i in self.affine:
@@ -352,36 +357,43 @@ class _Stacked:
         squared = np.matmul(flat, flat.transpose(0, 2, 1)).reshape(-1).astype(np.float64)  # np.vdot(g, g)
         bad = ~np.isfinite(squared)
         if bad.any():
-            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared]), False
+            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared])
         totals += losses if self.summed else losses * xb.shape[1]
-        np.copyto(self.backup, self.theta)
         self.optimizer.update([self.theta], [self.grad])
-        if _sum_is_finite(self.theta):
-            return None
-        bad = ~np.isfinite(self.theta).all(axis=1)
-        if not bad.any():
-            return None  # only the sum overflowed
-        self.theta[bad] = self.backup[bad]
-        message = "the update made a weight non-finite (the weights before it were restored)"
-        return self._diverged(bad, [message] * len(bad)), True
+        return None
 
     def _diverged(self, bad: np.ndarray, problems: list[str]) -> np.ndarray:
-        """Finish the networks marked in ``bad`` as diverged and drop them; return the rows kept."""
+        """Finish the networks marked in ``bad`` as diverged and drop them; return the rows kept.
+
+        Each network's epoch is replayed alone by :func:`~tinyprop.train`'s
+        loop, from the weights and optimizer state at the start of the epoch,
+        with every check after every update: a failed check may be the
+        symptom of a weight made non-finite by an earlier update, and the
+        replay finds that first failure and the last finite weights, as
+        :func:`~tinyprop.train` does.
+        """
         for row in np.flatnonzero(bad):
-            k = self.active[row]
-            self.runs[k].net.vector[...] = self.theta[row]
-            self._hand_over(int(row))
-            self.results[k] = self.runs[k]._finish(STOP_DIVERGED, self.runs[k]._where(problems[row]))
+            run = self.runs[self.active[row]]
+            np.copyto(run.backup, self.backup[row])
+            self._hand_over(int(row), self.optimizer._marked)
+            run.optimizer._mark()
+            self.results[self.active[row]] = run._finish(STOP_DIVERGED, run._replay(self.orders[row], problems[row]))
         keep = ~bad
         self._keep(keep)
         return keep
 
-    def _hand_over(self, row: int) -> None:
-        """Give the optimizer of the network in ``row`` the state it reached in the stack."""
+    def _hand_over(self, row: int, state: tuple[int, dict[str, list[np.ndarray]] | None] | None = None) -> None:
+        """Give the optimizer of the network in ``row`` the state it reached in the stack (or ``state``, marked)."""
         optimizer = self.optimizer
-        layout = None if optimizer._layout is None else [((self.theta.shape[1],), self.theta.dtype)]
-        slots = {name: [slot[0][row].copy()] for name, slot in optimizer._slots.items()}
-        self.runs[self.active[row]].optimizer._take_state(optimizer.steps, layout, slots)
+        if state is None:
+            state = optimizer.steps, (None if optimizer._layout is None else optimizer._slots)
+        steps, slots = state
+        if slots is None:  # no update made yet
+            self.runs[self.active[row]].optimizer._take_state(steps, None, {})
+            return
+        layout = [((self.theta.shape[1],), self.theta.dtype)]
+        rows = {name: [slot[0][row].copy()] for name, slot in slots.items()}
+        self.runs[self.active[row]].optimizer._take_state(steps, layout, rows)
 
 
 # Per affine layer: the (K, rows, n_out) outputs, the (K, rows, n_in) deltas handed down,
@@ -484,6 +496,9 @@ def _keep_optimizer_rows(optimizer: Optimizer, keep: np.ndarray) -> None:
         column = getattr(optimizer, name, None)
         if isinstance(column, _PerNetwork):
             setattr(optimizer, name, column._new(column.values[keep]))
+    steps, marked = getattr(optimizer, "_marked", (0, None))
+    if marked is not None:  # the state at the start of the epoch, for replays
+        optimizer._marked = steps, {name: [a[keep] for a in slot] for name, slot in marked.items()}
     if optimizer._layout is not None:
         optimizer._slots = {name: [a[keep] for a in slot] for name, slot in optimizer._slots.items()}
         optimizer._layout = [((int(keep.sum()), *shape[1:]), dtype) for shape, dtype in optimizer._layout]

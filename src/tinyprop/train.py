@@ -447,9 +447,7 @@ class _Run:
     # ----------------------------------------------------------------- the loop
     def execute(self) -> TrainingResult:
         self.started = time.perf_counter()
-        rows = min(self.batch_size, self.X.shape[0])
-        self.work = self.net.workspace(rows)
-        self.batch = np.empty((rows, self.net.n_in), self.net.dtype), np.empty((rows, self.net.n_out), self.net.dtype)
+        self._loop_arrays()
         reason = self._stop_reason(stop_requested=False)
         while reason is None:
             with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -477,12 +475,31 @@ class _Run:
         problem, epoch_loss = self._updates(order, vector, every_check=False)
         if problem is None and not _sum_is_finite(vector):
             problem = "a weight is not finite"
-        if problem is not None:  # rewind and replay with every check after every update (module docstring)
-            np.copyto(vector, self.backup)
-            self.optimizer._rewind()
-            problem = self._updates(order, vector, every_check=True)[0] or problem
-            return self._where(problem)
+        if problem is not None:
+            return self._replay(order, problem)
         return self._end_epoch(epoch_loss)
+
+    def _loop_arrays(self) -> None:
+        """Make the loop's workspace and batch arrays, once (a stack needs them only to replay an epoch)."""
+        if self.work is None:
+            rows, net = min(self.batch_size, self.X.shape[0]), self.net
+            self.work = net.workspace(rows)
+            self.batch = np.empty((rows, net.n_in), net.dtype), np.empty((rows, net.n_out), net.dtype)
+
+    def _replay(self, order: np.ndarray, problem: str) -> str:
+        """Rewind to the start of the epoch and redo its updates with every check after every update.
+
+        The weights return to :attr:`backup` and the optimizer to its last
+        mark (module docstring); the first failure found is returned with the
+        epoch and update it happened in (``problem``, the failure that started
+        the replay, if the replay finds none).
+        """
+        self._loop_arrays()
+        vector = self.net.vector
+        np.copyto(vector, self.backup)
+        self.optimizer._rewind()
+        problem = self._updates(order, vector, every_check=True)[0] or problem
+        return self._where(problem)
 
     def _where(self, problem: str) -> str:
         """A divergence found during the epoch's updates, with the epoch and update it happened in."""
