@@ -191,7 +191,7 @@ class _Stacked:
         K, dtype = self.theta.shape[0], self.theta.dtype
         self.grad = np.empty_like(self.theta)
         self.weights, self.biases, self.grad_weights, self.grad_biases = {}, {}, {}, {}
-        self.transposed = {}  # affine layer -> (K, n_in, n_out) contiguous copy of W^T, refreshed every step
+        self.transposed: dict[int, np.ndarray] = {}  # affine layer -> contiguous (K, n_in, n_out) copy of W^T
         start = 0
         for i in self.affine:
             layer = self.steps[i][1]
@@ -208,7 +208,7 @@ class _Stacked:
         self.buffers: dict[int, _Buffers] = {}
         self.dtype = dtype
 
-    def _buffers(self, rows: int) -> "_Buffers":
+    def _buffers(self, rows: int) -> _Buffers:
         """The arrays of a batch of ``rows`` rows, and which layers multiply by the contiguous ``W^T``."""
         if rows not in self.buffers:
             K = self.theta.shape[0]
