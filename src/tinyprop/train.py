@@ -100,6 +100,8 @@ STOP_EARLY = "early stopping"
 STOP_CALLBACK = "callback"
 STOP_DIVERGED = "diverged"
 
+_UPDATE_OVERFLOWED = "the update made a weight non-finite (the weights before it were restored)"
+
 TRAINING_LOSS_RUNNING = "running"
 TRAINING_LOSS_EXACT = "exact"
 
@@ -502,8 +504,13 @@ class _Run:
         return self._where(problem)
 
     def _where(self, problem: str) -> str:
-        """A divergence found during the epoch's updates, with the epoch and update it happened in."""
-        return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+        """A divergence found during the epoch's updates, with the epoch and update it happened in.
+
+        A non-finite loss or gradient stops the next update, one that made a
+        weight non-finite was the last one counted.
+        """
+        update = self.optimizer.steps + (0 if problem == _UPDATE_OVERFLOWED else 1)
+        return f"in epoch {self.epoch + 1}, update {update}: {problem}"
 
     def _end_epoch(self, epoch_loss: float) -> str | None:
         """Count the epoch done and record its losses (``epoch_loss``: the running training loss).
@@ -561,7 +568,7 @@ class _Run:
             self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
             if every_check and not np.isfinite(vector).all():
                 np.copyto(vector, self.step_backup)
-                return "the update made a weight non-finite (the weights before it were restored)", total
+                return _UPDATE_OVERFLOWED, total
         return None, total if summed else total / n
 
     def _after_epoch(self) -> str | None:
