@@ -207,10 +207,10 @@ def train(
         The network and its training data: ``X`` ``(n, n_in)``, ``y``
         ``(n, n_out)`` (1-D allowed for one output). Converted once to the
         network's dtype; the caller's arrays are not modified. Memory: one
-        mini-batch of ``X`` and ``y`` (each batch's rows are gathered into it
-        in the shuffled order), the network's workspace for one mini-batch,
-        and a copy of the weights and of the optimizer's state taken at the
-        start of every epoch (for the divergence guard's replay).
+        shuffled copy of ``X`` and ``y``, refilled every epoch, the network's
+        workspace for one mini-batch, and a copy of the weights and of the
+        optimizer's state taken at the start of every epoch (for the
+        divergence guard's replay).
     loss:
         A :class:`~tinyprop.losses.Loss`, evaluated per mini-batch. Mean
         losses (``MeanSquaredError``, the cross-entropies) make the step size
@@ -356,7 +356,7 @@ class _Run:
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
         self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
         self.work: Workspace | None = None  # the loop's arrays, made when it starts (a stack never needs them)
-        self.batch: tuple[np.ndarray, np.ndarray] | None = None  # each mini-batch's rows are gathered into these
+        self.shuffled: tuple[np.ndarray, np.ndarray] | None = None  # each epoch's order of X and y, refilled
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
@@ -482,11 +482,10 @@ class _Run:
         return self._end_epoch(epoch_loss)
 
     def _loop_arrays(self) -> None:
-        """Make the loop's workspace and batch arrays, once (a stack needs them only to replay an epoch)."""
+        """Make the loop's workspace and shuffled copy of the data, once (a stack needs them only to replay)."""
         if self.work is None:
-            rows, net = min(self.batch_size, self.X.shape[0]), self.net
-            self.work = net.workspace(rows)
-            self.batch = np.empty((rows, net.n_in), net.dtype), np.empty((rows, net.n_out), net.dtype)
+            self.work = self.net.workspace(min(self.batch_size, self.X.shape[0]))
+            self.shuffled = np.empty_like(self.X), np.empty_like(self.y)
 
     def _replay(self, order: np.ndarray, problem: str) -> str:
         """Rewind to the start of the epoch and redo its updates with every check after every update.
@@ -532,22 +531,23 @@ class _Run:
     def _updates(self, order: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
         """The epoch's updates on the rows in ``order``; ``(problem or None, running training loss)``.
 
-        Each mini-batch's rows are gathered into one preallocated batch
-        (``np.take`` of the batch's slice of ``order``), so the data are read
-        once per epoch, right before the step that uses them, and never
-        copied whole. Stops at the first non-finite mini-batch loss or
-        gradient norm; with ``every_check`` also at the first update that
-        makes a weight non-finite, restoring the weights from before it.
+        The rows are first copied in that order into the preallocated
+        shuffled copy of the data; the mini-batches are slices of it.
+        (Gathering each mini-batch's rows separately instead was slower at
+        batch 4096 with two BLAS threads; docs/benchmark.md.) Stops at the
+        first non-finite mini-batch loss or gradient norm; with
+        ``every_check`` also at the first update that makes a weight
+        non-finite, restoring the weights from before it.
         """
         total, n, summed = 0.0, order.shape[0], self.loss.sums_over_samples
-        work, batch = self.work, self.batch
-        assert work is not None and batch is not None
+        work, shuffled = self.work, self.shuffled
+        assert work is not None and shuffled is not None
+        X, y = shuffled
+        np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
+        np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
         grad_vector = work.grad_vector  # the gradients are views of it
         for start in range(0, n, self.batch_size):
-            rows = order[start:start + self.batch_size]
-            xb, yb = batch[0][:rows.shape[0]], batch[1][:rows.shape[0]]
-            np.take(self.X, rows, axis=0, out=xb, mode="clip")  # the rows of a permutation are always in range;
-            np.take(self.y, rows, axis=0, out=yb, mode="clip")  # mode="raise" would copy through a buffer
+            xb, yb = X[start:start + self.batch_size], y[start:start + self.batch_size]
             out, trace = self.net.forward(xb, workspace=work)
             batch_loss = self.loss.value(out, yb)
             if not math.isfinite(batch_loss):
