@@ -137,6 +137,8 @@ def _rows(results: dict[str, Any]) -> list[tuple[str, str, float | None, str | N
     for r in results["stacked"]:
         rows.append((f"stacked speed-up, {r['members']} x {r['network']} batch {r['batch']} {r['dtype']}",
                      f"{r['stacked_s'] * 1e3:.1f} ms", r["speedup"], r["case"]))
+        rows.append(("  loop / bare stacked arithmetic (a numpy stack's limit)",
+                     f"{r['arithmetic_s'] * 1e3:.1f} ms", r["speedup_bound"], None))
     for r in results["memory"]:
         rows.append((f"memory ratio, batch {r['batch']} {r['dtype']}", f"{r['peak_bytes'] / 2**20:.1f} MiB",
                      r["ratio"], "memory"))

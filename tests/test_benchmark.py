@@ -19,7 +19,7 @@ def test_quick_run_produces_every_figure(tmp_path, capsys):
     for row in results["train_epoch"] + results["light_path"]:
         assert row["ratio"] > 0
     assert {row["case"] for row in results["stacked"]} == {"stacked_small", "stacked_medium"}
-    assert all(row["speedup"] > 0 for row in results["stacked"])
+    assert all(row["speedup"] > 0 and row["speedup_bound"] > 0 for row in results["stacked"])
     assert all(v["met"] in (True, False, None) and v["bar"] for v in results["verdicts"])
     for row in results["floor"] + results["tax"] + results["memory"]:
         assert row["ratio"] > 0

@@ -119,6 +119,27 @@ def test_one_hundred_steps_of_eight_networks_are_bit_identical(dtype):
         _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
 
 
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("sizes", [[8, 64, 64, 1], [3, 33, 17, 2], [5, 16, 2]])
+def test_wide_layers_and_a_one_row_batch_are_bit_identical(sizes, dtype):
+    # Wider layers than the property test draws, and a last batch of one row: the stack multiplies by a
+    # contiguous copy of W^T only for the shapes where this BLAS gives the transposed view's bits (not for
+    # 33 -> 17 at 32 rows, nor for one row, on OpenBLAS), and by the view elsewhere.
+    rng = np.random.default_rng(11)
+    X = rng.normal(size=(65, sizes[0])).astype(dtype)
+    y = np.tanh(X[:, :sizes[-1]] - 0.5 * X[:, -1:])
+    template = tp.build_mlp(sizes, dtype=dtype)
+    nets = _members(template, [0, 1, 2])
+    optimizers = [Adam(lr) for lr in (1e-3, 3e-3, 1e-2)]
+    results = tp.train_stacked(nets, X, y, loss=tp.MeanSquaredError(), optimizers=optimizers, epochs=2,
+                               batch_size=32, seeds=[7, 8, 9])
+    for k, lr in enumerate((1e-3, 3e-3, 1e-2)):
+        optimizer = Adam(lr)
+        alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, 7 + k, epochs=2,
+                                  batch_size=32)
+        _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
+
+
 def test_a_diverging_network_leaves_the_stack_and_the_others_go_on():
     rng = np.random.default_rng(5)
     X = rng.normal(size=(40, 3))
@@ -135,6 +156,33 @@ def test_a_diverging_network_leaves_the_stack_and_the_others_go_on():
         alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, k, epochs=5, batch_size=8)
         _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
     assert np.isfinite(nets[1].get_vector()).all() and "training diverged" in results[1].message
+
+
+@pytest.mark.parametrize("dtype, huge", [(np.float64, [1e306, 3e307, 1e200]), (np.float32, [1e37, 3e37, 1e30])])
+@pytest.mark.parametrize("batch_size", [13, 39, 40])
+def test_weights_made_non_finite_inside_and_at_the_end_of_an_epoch(dtype, huge, batch_size):
+    # The stack checks the weights once per epoch and replays a failed network's epoch alone, as train does:
+    # an update that overflows a weight in the middle of an epoch (batch 13, float64) shows first as a
+    # non-finite mini-batch loss, one at the last update of an epoch (batches 39 and 40) only in the
+    # end-of-epoch check.
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(40, 3)).astype(dtype)
+    y = X[:, :1] * 10.0
+    template = tp.build_mlp([3, 6, 1], dtype=dtype)
+    lrs = [1e-2, *huge, 3e-2]
+    nets = _members(template, list(range(len(lrs))))
+    optimizers = [SGD(lr) for lr in lrs]
+    results = tp.train_stacked(nets, X, y, loss=tp.MeanSquaredError(), optimizers=optimizers, epochs=3,
+                               batch_size=batch_size, seeds=list(range(len(lrs))))
+    messages = []
+    for k, lr in enumerate(lrs):
+        optimizer = SGD(lr)
+        alone, reference = _alone(template, k, X, y, tp.MeanSquaredError(), optimizer, k, epochs=3,
+                                  batch_size=batch_size)
+        _assert_same_run(alone, nets[k], reference, results[k], optimizer, optimizers[k])
+        messages.append(reference.message)
+    overflowed = ["the update made a weight non-finite" in m for m in messages]
+    assert any(overflowed) or (batch_size, dtype) == (13, np.float32)  # float32's overflow comes in the loss first
 
 
 def _stack_args(K=2, **changes):

@@ -240,6 +240,10 @@ def test_divergence_stops_with_last_finite_weights(dtype, lr, target_scale, caus
     last_finite = [state for state in seen if all(np.isfinite(a).all() for a in state)][-1]
     assert np.array_equal(net.get_vector(), np.concatenate([a.ravel() for a in last_finite]))
     assert len(caught.value.result.history.training) == caught.value.result.epochs_run
+    # The message names the update that failed: one already made when it overflowed a weight, else the next.
+    made = caught.value.result.updates
+    failing = made if cause.startswith("the update") else made + 1
+    assert f", update {failing}: " in str(caught.value)
 
 
 def test_resume_is_bit_identical_to_an_uninterrupted_run():

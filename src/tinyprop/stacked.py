@@ -24,7 +24,10 @@ stop reason, best epoch, optimizer state and ``TrainingResult`` (apart from
   single network runs on its matrices, with the same shapes and memory
   layout; each ``(K, 1, m) @ (K, m, 1)`` product is the dot product
   ``np.vdot`` that gives the mean-squared-error value and the squared
-  gradient norm;
+  gradient norm. One exception, for speed: ``x W^T`` is taken with a
+  contiguous copy of ``W^T`` instead of the transposed view, but only for
+  the shapes where a probe of this machine's BLAS gives the view's bits
+  (see ``_transposed_copy_agrees``);
 - elementwise operations (bias addition, activations and their derivatives,
   the loss gradient, the optimizer's passes) compute each element alone;
 - a learning rate or decay that differs between networks enters as a column
@@ -68,6 +71,7 @@ True
 from __future__ import annotations
 
 import copy
+import functools
 from typing import Any, Sequence
 
 import numpy as np
@@ -144,10 +148,14 @@ def train_stacked(
         if not isinstance(validation, (tuple, list)) or len(validation) != 2:
             raise TypeError(f"validation must be a pair (X_val, y_val) or None, got {type(validation).__name__}")
         validations = list(zip(*_per_network_data(validation[0], validation[1], "validation ", K, nets[0])))
-    runs = [
-        _Run(net, Xk, yk, loss, opt, epochs, batch_size, val, patience, seed, False, l2, None, training_loss)
-        for net, Xk, yk, opt, val, seed in zip(nets, Xs, ys, optimizers, validations, seeds)
-    ]
+    digests: dict[tuple[int, ...], str] = {}  # shared data are hashed once, not once per network
+    runs = []
+    for net, Xk, yk, opt, val, seed in zip(nets, Xs, ys, optimizers, validations, seeds):
+        key = (id(Xk), id(yk)) + (() if val is None else (id(val[0]), id(val[1])))
+        run = _Run(net, Xk, yk, loss, opt, epochs, batch_size, val, patience, seed, False, l2, None, training_loss,
+                   digests.get(key))
+        digests[key] = run.settings["data_sha256"]
+        runs.append(run)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         return _Stacked(runs, optimizers).execute()
 
@@ -173,6 +181,8 @@ class _Stacked:
             for i, (kind, _) in enumerate(self.steps) if kind is _SCALING
         }
         self.optimizer = _stacked_optimizer(optimizers, first.net.dtype)
+        self.backup = np.empty_like(self.theta)  # the weights at the start of the epoch, to replay a network from
+        self.orders = np.empty((len(runs), self.n), dtype=np.intp)  # each network's order of the rows this epoch
         self._arrange()
 
     # ----------------------------------------------------------------- arrays
@@ -180,24 +190,26 @@ class _Stacked:
         """(Re)build every array that depends on the number of networks in the stack."""
         K, dtype = self.theta.shape[0], self.theta.dtype
         self.grad = np.empty_like(self.theta)
-        self.backup = np.empty_like(self.theta)
         self.weights, self.biases, self.grad_weights, self.grad_biases = {}, {}, {}, {}
+        self.transposed: dict[int, np.ndarray] = {}  # affine layer -> contiguous (K, n_in, n_out) copy of W^T
         start = 0
         for i in self.affine:
             layer = self.steps[i][1]
             size = layer.n_out * layer.n_in
             self.weights[i] = self.theta[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
+            if layer.n_in > 1 and layer.n_out > 1:  # otherwise W^T has the layout of its copy, or the product is
+                self.transposed[i] = np.empty((K, layer.n_in, layer.n_out), dtype)  # elementwise (_matmul)
             self.grad_weights[i] = self.grad[:, start:start + size].reshape(K, layer.n_out, layer.n_in, copy=False)
             start += size
             if layer.bias is not None:
                 self.biases[i] = self.theta[:, start:start + layer.n_out].reshape(K, 1, layer.n_out, copy=False)
                 self.grad_biases[i] = self.grad[:, start:start + layer.n_out]
                 start += layer.n_out
-        self.buffers: dict[int, tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray]] = {}
+        self.buffers: dict[int, _Buffers] = {}
         self.dtype = dtype
 
-    def _buffers(self, rows: int) -> tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray]:
-        """Per affine layer its ``(K, rows, n_out)`` output and ``(K, rows, n_in)`` delta; a vector of ones."""
+    def _buffers(self, rows: int) -> _Buffers:
+        """The arrays of a batch of ``rows`` rows, and which layers multiply by the contiguous ``W^T``."""
         if rows not in self.buffers:
             K = self.theta.shape[0]
             layers = {i: self.steps[i][1] for i in self.affine}
@@ -205,13 +217,15 @@ class _Stacked:
                 {i: np.empty((K, rows, layer.n_out), self.dtype) for i, layer in layers.items()},
                 {i: np.empty((K, rows, layer.n_in), self.dtype) for i, layer in layers.items()},
                 np.ones(rows, self.dtype),
+                [i for i in self.transposed
+                 if _transposed_copy_agrees(rows, layers[i].n_in, layers[i].n_out, self.dtype.str)],
             )
         return self.buffers[rows]
 
     def _keep(self, keep: np.ndarray) -> None:
         """Drop the networks whose entry of ``keep`` is False from every stacked array."""
         self.active = [k for k, kept in zip(self.active, keep) if kept]
-        self.theta = self.theta[keep]
+        self.theta, self.backup, self.orders = self.theta[keep], self.backup[keep], self.orders[keep]
         self.shuffled = self.shuffled[0][keep], self.shuffled[1][keep]
         self.scalings = {i: (gain[keep], offset[keep]) for i, (gain, offset) in self.scalings.items()}
         _keep_optimizer_rows(self.optimizer, keep)
@@ -220,11 +234,14 @@ class _Stacked:
     # ----------------------------------------------------------------- passes
     def _forward(self, x: np.ndarray) -> list[np.ndarray]:
         """Every layer's input and the output, as :meth:`Network.forward` with a workspace computes them."""
-        outputs = self._buffers(x.shape[1])[0]
+        outputs, _, _, contiguous = self._buffers(x.shape[1])
+        for i in contiguous:
+            np.copyto(self.transposed[i], self.weights[i].transpose(0, 2, 1))
         values, v = [x], x
         for i, (kind, layer) in enumerate(self.steps):
             if kind is _AFFINE:
-                v = _matmul(v, self.weights[i].transpose(0, 2, 1), outputs[i])  # x W^T
+                w_t = self.transposed[i] if i in contiguous else self.weights[i].transpose(0, 2, 1)
+                v = _matmul(v, w_t, outputs[i])  # x W^T
                 if i in self.biases:
                     v += self.biases[i]
             elif kind is _ACTIVATION_IN_PLACE:
@@ -239,7 +256,7 @@ class _Stacked:
 
     def _backward(self, values: list[np.ndarray], delta: np.ndarray) -> None:
         """The delta recursion of :meth:`Network.backward` (``need_input=False``) into ``self.grad``."""
-        _, scratch, ones = self._buffers(delta.shape[1])
+        _, scratch, ones, _ = self._buffers(delta.shape[1])
         for i, kind, layer in self.net._backward_steps:
             if kind is _AFFINE:
                 _matmul(delta.transpose(0, 2, 1), values[i], self.grad_weights[i])  # delta^T x
@@ -296,34 +313,42 @@ class _Stacked:
     def _epoch(self) -> np.ndarray | None:
         """One epoch of every network in the stack; the running loss totals, or ``None`` if none is left."""
         X, y = self.shuffled
-        for row, k in enumerate(self.active):
-            run = self.runs[k]
-            order = run.rng.permutation(self.n)
-            np.take(run.X, order, axis=0, out=X[row], mode="clip")
-            np.take(run.y, order, axis=0, out=y[row], mode="clip")
+        self.orders = orders = np.stack([self.runs[k].rng.permutation(self.n) for k in self.active])
+        sources = [(self.runs[k].X, self.runs[k].y) for k in self.active]
+        if all(X_k is sources[0][0] and y_k is sources[0][1] for X_k, y_k in sources):
+            np.take(sources[0][0], orders, axis=0, out=X, mode="clip")  # shared rows: one gather for the stack
+            np.take(sources[0][1], orders, axis=0, out=y, mode="clip")
+        else:
+            for row, (X_k, y_k) in enumerate(sources):
+                np.take(X_k, orders[row], axis=0, out=X[row], mode="clip")
+                np.take(y_k, orders[row], axis=0, out=y[row], mode="clip")
+        np.copyto(self.backup, self.theta)  # as train does: weights checked once per epoch, replayed on a failure
+        self.optimizer._mark()
         totals = np.zeros(len(self.active))
         start = 0
         while start < self.n:
-            failed = self._update(start, totals)
-            if failed is not None:  # some networks left the stack; the rest redo the step if it was not made
-                totals = totals[failed[0]]
+            kept = self._update(start, totals)
+            if kept is not None:  # some networks left the stack; the others redo the step
+                totals = totals[kept]
                 if not self.active:
                     return None
-                X, y = self.shuffled
-                if not failed[1]:
-                    continue
+                continue
             start += self.batch_size
-        return totals
+        if not _sum_is_finite(self.theta):
+            bad = ~np.isfinite(self.theta).all(axis=1)
+            if bad.any():
+                totals = totals[self._diverged(bad, ["a weight is not finite"] * len(bad))]
+        return totals if self.active else None
 
-    def _update(self, start: int, totals: np.ndarray) -> tuple[np.ndarray, bool] | None:
-        """One mini-batch step of every network; ``None``, or (rows kept, whether the step was made)."""
+    def _update(self, start: int, totals: np.ndarray) -> np.ndarray | None:
+        """One mini-batch step of every network: ``None``, or the rows kept when some failed a check (no step made)."""
         X, y = self.shuffled
         xb, yb = X[:, start:start + self.batch_size], y[:, start:start + self.batch_size]
         values = self._forward(xb)
         losses, gradient = self._loss(values[-1], yb)
         bad = ~np.isfinite(losses)
         if bad.any():
-            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses]), False
+            return self._diverged(bad, [f"the mini-batch loss is {v}" for v in losses])
         self._backward(values, gradient)
         if self.l2:
             for i in self.affine:
@@ -332,36 +357,76 @@ class _Stacked:
         squared = np.matmul(flat, flat.transpose(0, 2, 1)).reshape(-1).astype(np.float64)  # np.vdot(g, g)
         bad = ~np.isfinite(squared)
         if bad.any():
-            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared]), False
+            return self._diverged(bad, [f"the squared gradient norm is {v}" for v in squared])
         totals += losses if self.summed else losses * xb.shape[1]
-        np.copyto(self.backup, self.theta)
         self.optimizer.update([self.theta], [self.grad])
-        if _sum_is_finite(self.theta):
-            return None
-        bad = ~np.isfinite(self.theta).all(axis=1)
-        if not bad.any():
-            return None  # only the sum overflowed
-        self.theta[bad] = self.backup[bad]
-        message = "the update made a weight non-finite (the weights before it were restored)"
-        return self._diverged(bad, [message] * len(bad)), True
+        return None
 
     def _diverged(self, bad: np.ndarray, problems: list[str]) -> np.ndarray:
-        """Finish the networks marked in ``bad`` as diverged and drop them; return the rows kept."""
+        """Finish the networks marked in ``bad`` as diverged and drop them; return the rows kept.
+
+        Each network's epoch is replayed alone by :func:`~tinyprop.train`'s
+        loop, from the weights and optimizer state at the start of the epoch,
+        with every check after every update: a failed check may be the
+        symptom of a weight made non-finite by an earlier update, and the
+        replay finds that first failure and the last finite weights, as
+        :func:`~tinyprop.train` does.
+        """
         for row in np.flatnonzero(bad):
-            k = self.active[row]
-            self.runs[k].net.vector[...] = self.theta[row]
-            self._hand_over(int(row))
-            self.results[k] = self.runs[k]._finish(STOP_DIVERGED, self.runs[k]._where(problems[row]))
+            run = self.runs[self.active[row]]
+            np.copyto(run.backup, self.backup[row])
+            self._hand_over(int(row), self.optimizer._marked)
+            run.optimizer._mark()
+            self.results[self.active[row]] = run._finish(STOP_DIVERGED, run._replay(self.orders[row], problems[row]))
         keep = ~bad
         self._keep(keep)
         return keep
 
-    def _hand_over(self, row: int) -> None:
-        """Give the optimizer of the network in ``row`` the state it reached in the stack."""
+    def _hand_over(self, row: int, state: tuple[int, dict[str, list[np.ndarray]] | None] | None = None) -> None:
+        """Give the optimizer of the network in ``row`` the state it reached in the stack (or ``state``, marked)."""
         optimizer = self.optimizer
-        layout = None if optimizer._layout is None else [((self.theta.shape[1],), self.theta.dtype)]
-        slots = {name: [slot[0][row].copy()] for name, slot in optimizer._slots.items()}
-        self.runs[self.active[row]].optimizer._take_state(optimizer.steps, layout, slots)
+        if state is None:
+            state = optimizer.steps, (None if optimizer._layout is None else optimizer._slots)
+        steps, slots = state
+        if slots is None:  # no update made yet
+            self.runs[self.active[row]].optimizer._take_state(steps, None, {})
+            return
+        layout = [((self.theta.shape[1],), self.theta.dtype)]
+        rows = {name: [slot[0][row].copy()] for name, slot in slots.items()}
+        self.runs[self.active[row]].optimizer._take_state(steps, layout, rows)
+
+
+# Per affine layer: the (K, rows, n_out) outputs, the (K, rows, n_in) deltas handed down,
+# a vector of rows ones (bias gradients), and the layers whose x W^T uses the contiguous copy.
+_Buffers = tuple[dict[int, np.ndarray], dict[int, np.ndarray], np.ndarray, list[int]]
+
+
+@functools.lru_cache(maxsize=256)
+def _transposed_copy_agrees(rows: int, n_in: int, n_out: int, dtype: str) -> bool:
+    """Whether the stack may multiply by a contiguous copy of ``W^T`` for this shape: same bits as ``W.T``.
+
+    :meth:`Network.forward` multiplies ``x`` by the transposed view ``W.T``;
+    the stack multiplies each slice by a contiguous copy of ``W^T`` instead
+    (refreshed before every forward pass, which costs one copy of the
+    weights), because OpenBLAS multiplies that layout two to three times
+    faster for these small stacked matrices. The two are different BLAS calls
+    (a transposed operand or not), and nothing promises that their kernels add
+    the products in the same order. On OpenBLAS they do for many shapes and
+    not for others (33 -> 17 at 32 rows, float32, for one), and for a single
+    row, where numpy calls the matrix-vector routine, the order even depends
+    on how the arrays happen to be aligned in memory. So the stack uses the
+    copy only for two rows or more, and only for shapes where this probe, on
+    this machine's BLAS, gives every bit of the single network's product: the
+    rounding of each element depends on the order of the operations, not on
+    the values multiplied, so random operands reveal a different order.
+    """
+    if rows < 2:
+        return False
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((2, rows, n_in)).astype(dtype)
+    w = rng.standard_normal((2, n_out, n_in)).astype(dtype)
+    stacked = np.matmul(x, np.ascontiguousarray(w.transpose(0, 2, 1)))
+    return all(np.matmul(x[k], w[k].T).tobytes() == stacked[k].tobytes() for k in range(2))
 
 
 def _matmul(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> np.ndarray:
@@ -431,6 +496,9 @@ def _keep_optimizer_rows(optimizer: Optimizer, keep: np.ndarray) -> None:
         column = getattr(optimizer, name, None)
         if isinstance(column, _PerNetwork):
             setattr(optimizer, name, column._new(column.values[keep]))
+    steps, marked = getattr(optimizer, "_marked", (0, None))
+    if marked is not None:  # the state at the start of the epoch, for replays
+        optimizer._marked = steps, {name: [a[keep] for a in slot] for name, slot in marked.items()}
     if optimizer._layout is not None:
         optimizer._slots = {name: [a[keep] for a in slot] for name, slot in optimizer._slots.items()}
         optimizer._layout = [((int(keep.sum()), *shape[1:]), dtype) for shape, dtype in optimizer._layout]

@@ -85,6 +85,7 @@ from .layers import Affine
 from .losses import Loss
 from .network import Network
 from .optim import Optimizer
+from .workspace import Workspace
 
 __all__ = [
     "train",
@@ -98,6 +99,8 @@ STOP_EPOCHS = "epochs"
 STOP_EARLY = "early stopping"
 STOP_CALLBACK = "callback"
 STOP_DIVERGED = "diverged"
+
+_UPDATE_OVERFLOWED = "the update made a weight non-finite (the weights before it were restored)"
 
 TRAINING_LOSS_RUNNING = "running"
 TRAINING_LOSS_EXACT = "exact"
@@ -302,7 +305,9 @@ class _Run:
         l2: float,
         callback: Callable[[EpochInfo], bool | None] | None,
         training_loss: str = TRAINING_LOSS_RUNNING,
+        data_sha256: str | None = None,
     ) -> None:
+        """``data_sha256``: the digest of the checked data if the caller has it (the networks of a stack share it)."""
         if training_loss not in (TRAINING_LOSS_RUNNING, TRAINING_LOSS_EXACT):
             raise ValueError(f"training_loss must be 'running' or 'exact', got {training_loss!r}")
         if not isinstance(net, Network):
@@ -342,7 +347,7 @@ class _Run:
             "n_samples": int(self.X.shape[0]),
             "n_validation": None if self.validation is None else int(self.validation[0].shape[0]),
             "parameter_shapes": [list(p.shape) for p in net.params],
-            "data_sha256": _data_digest(self.X, self.y, self.validation),
+            "data_sha256": data_sha256 or _data_digest(self.X, self.y, self.validation),
         }
         self.params = net.params
         self.is_weight = [
@@ -350,8 +355,8 @@ class _Run:
         ]
         self.backup = np.empty_like(net.vector)  # the weights at the start of the epoch (for a replay)
         self.step_backup: np.ndarray | None = None  # the weights before one update, during a replay only
-        self.work = net.workspace(min(self.batch_size, self.X.shape[0]))
-        self.shuffled = np.empty_like(self.X), np.empty_like(self.y)  # each epoch's order, reused
+        self.work: Workspace | None = None  # the loop's arrays, made when it starts (a stack never needs them)
+        self.shuffled: tuple[np.ndarray, np.ndarray] | None = None  # each epoch's order of X and y, refilled
         self.checkpoint: str | os.PathLike[str] | None = None
         self.checkpoint_every = 1
         self.best_weights = None if self.validation is None else [np.empty_like(p) for p in self.params]
@@ -444,6 +449,7 @@ class _Run:
     # ----------------------------------------------------------------- the loop
     def execute(self) -> TrainingResult:
         self.started = time.perf_counter()
+        self._loop_arrays()
         reason = self._stop_reason(stop_requested=False)
         while reason is None:
             with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -465,25 +471,45 @@ class _Run:
     def _epoch(self) -> str | None:
         """Run one epoch; return a description of a divergence, or ``None``."""
         order = self.rng.permutation(self.X.shape[0])
-        X, y = self.shuffled
-        np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
-        np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
         vector = self.net.vector
         np.copyto(self.backup, vector)  # the start of the epoch, to replay from if a check fails
         self.optimizer._mark()
-        problem, epoch_loss = self._updates(X, y, vector, every_check=False)
+        problem, epoch_loss = self._updates(order, vector, every_check=False)
         if problem is None and not _sum_is_finite(vector):
             problem = "a weight is not finite"
-        if problem is not None:  # rewind and replay with every check after every update (module docstring)
-            np.copyto(vector, self.backup)
-            self.optimizer._rewind()
-            problem = self._updates(X, y, vector, every_check=True)[0] or problem
-            return self._where(problem)
+        if problem is not None:
+            return self._replay(order, problem)
         return self._end_epoch(epoch_loss)
 
+    def _loop_arrays(self) -> None:
+        """Make the loop's workspace and shuffled copy of the data, once (a stack needs them only to replay)."""
+        if self.work is None:
+            self.work = self.net.workspace(min(self.batch_size, self.X.shape[0]))
+            self.shuffled = np.empty_like(self.X), np.empty_like(self.y)
+
+    def _replay(self, order: np.ndarray, problem: str) -> str:
+        """Rewind to the start of the epoch and redo its updates with every check after every update.
+
+        The weights return to :attr:`backup` and the optimizer to its last
+        mark (module docstring); the first failure found is returned with the
+        epoch and update it happened in (``problem``, the failure that started
+        the replay, if the replay finds none).
+        """
+        self._loop_arrays()
+        vector = self.net.vector
+        np.copyto(vector, self.backup)
+        self.optimizer._rewind()
+        problem = self._updates(order, vector, every_check=True)[0] or problem
+        return self._where(problem)
+
     def _where(self, problem: str) -> str:
-        """A divergence found during the epoch's updates, with the epoch and update it happened in."""
-        return f"in epoch {self.epoch + 1}, update {self.optimizer.steps + 1}: {problem}"
+        """A divergence found during the epoch's updates, with the epoch and update it happened in.
+
+        A non-finite loss or gradient stops the next update, one that made a
+        weight non-finite was the last one counted.
+        """
+        update = self.optimizer.steps + (0 if problem == _UPDATE_OVERFLOWED else 1)
+        return f"in epoch {self.epoch + 1}, update {update}: {problem}"
 
     def _end_epoch(self, epoch_loss: float) -> str | None:
         """Count the epoch done and record its losses (``epoch_loss``: the running training loss).
@@ -502,18 +528,27 @@ class _Run:
                 return f"after epoch {self.epoch}: the validation loss is {self.validation_loss[-1]}"
         return None
 
-    def _updates(self, X: np.ndarray, y: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
-        """The epoch's updates on the shuffled rows; ``(problem or None, running training loss)``.
+    def _updates(self, order: np.ndarray, vector: np.ndarray, every_check: bool) -> tuple[str | None, float]:
+        """The epoch's updates on the rows in ``order``; ``(problem or None, running training loss)``.
 
-        Stops at the first non-finite mini-batch loss or gradient norm; with
+        The rows are first copied in that order into the preallocated
+        shuffled copy of the data; the mini-batches are slices of it.
+        (Gathering each mini-batch's rows separately instead was slower at
+        batch 4096 with two BLAS threads; docs/benchmark.md.) Stops at the
+        first non-finite mini-batch loss or gradient norm; with
         ``every_check`` also at the first update that makes a weight
         non-finite, restoring the weights from before it.
         """
-        total, n, summed = 0.0, X.shape[0], self.loss.sums_over_samples
-        grad_vector = self.work.grad_vector  # the gradients are views of it
+        total, n, summed = 0.0, order.shape[0], self.loss.sums_over_samples
+        work, shuffled = self.work, self.shuffled
+        assert work is not None and shuffled is not None
+        X, y = shuffled
+        np.take(self.X, order, axis=0, out=X, mode="clip")  # a permutation is always in range;
+        np.take(self.y, order, axis=0, out=y, mode="clip")  # mode="raise" would copy through a buffer
+        grad_vector = work.grad_vector  # the gradients are views of it
         for start in range(0, n, self.batch_size):
             xb, yb = X[start:start + self.batch_size], y[start:start + self.batch_size]
-            out, trace = self.net.forward(xb, workspace=self.work)
+            out, trace = self.net.forward(xb, workspace=work)
             batch_loss = self.loss.value(out, yb)
             if not math.isfinite(batch_loss):
                 return f"the mini-batch loss is {batch_loss}", total
@@ -533,7 +568,7 @@ class _Run:
             self.optimizer.update([vector], [grad_vector])  # every parameter array in one go
             if every_check and not np.isfinite(vector).all():
                 np.copyto(vector, self.step_backup)
-                return "the update made a weight non-finite (the weights before it were restored)", total
+                return _UPDATE_OVERFLOWED, total
         return None, total if summed else total / n
 
     def _after_epoch(self) -> str | None:
