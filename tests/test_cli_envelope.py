@@ -129,6 +129,18 @@ def test_predict_warns_per_input_in_its_units_and_predicts_all_rows(exchanger, c
     assert len((tmp_path / "p.csv").read_text().splitlines()) == X.shape[0] + 1
 
 
+def test_one_row_outside_is_counted_in_the_singular(exchanger, capsys, tmp_path):
+    folder, X, _, swapped, model = exchanger
+    rows = tmp_path / "one_outside.csv"
+    lines = swapped.read_text().splitlines()
+    header_at = next(i for i, line in enumerate(lines) if not line.startswith("#"))
+    rows.write_text("\n".join(lines[: header_at + 2]) + "\n")  # the header and the first (swapped) row
+    status, _, err = run_main(capsys, "predict", str(model), str(rows), "--out", str(tmp_path / "one.csv"))
+    assert status == 0
+    assert err.splitlines()[0].startswith("tinyprop predict: warning: 1 of the 1 row of ")
+    assert "one_outside.csv lies outside the model's operating envelope" in err.splitlines()[0]
+
+
 def test_a_model_without_an_envelope_gets_no_warning_and_a_malformed_one_a_single_line(exchanger, capsys, tmp_path):
     _, _, _, swapped, model = exchanger
     loaded = tp.load_model_file(model)

@@ -240,7 +240,8 @@ def warn_rows_outside(command: str, envelope: Envelope, X: np.ndarray, rows: str
     result = envelope.check(X)
     if result.inside:
         return False
-    warn(command, f"{int(result.outside_rows.sum())} of {rows} lie outside the model's operating envelope "
+    outside = int(result.outside_rows.sum())
+    warn(command, f"{outside} of {rows} {'lies' if outside == 1 else 'lie'} outside the model's operating envelope "
                   f"({envelope.source}); no error measured or bound proven for the model holds there:")
     for line in result.lines(units):
         warn(command, f"  {line}")
