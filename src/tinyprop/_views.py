@@ -11,11 +11,12 @@ is the same element for element.
 from __future__ import annotations
 
 import math
+from operator import is_
 from typing import Sequence
 
 import numpy as np
 
-__all__ = ["ViewList", "flat_vector", "views_of"]
+__all__ = ["Layout", "ViewList", "flat_vector", "views_of"]
 
 
 class ViewList(list):
@@ -40,17 +41,36 @@ def flat_vector(arrays: Sequence[np.ndarray]) -> np.ndarray | None:
     items = arrays._items
     if len(arrays) != len(items):
         return None  # an element was added or removed since the list was made
-    for a, b in zip(arrays, items):
-        if a is not b:
-            return None  # an element was replaced
+    if not all(map(is_, arrays, items)):
+        return None  # an element was replaced
     return arrays.vector
+
+
+class Layout:
+    """Where arrays of the given shapes lie, one after another, in a flat vector.
+
+    Made once per list of shapes, so that views of each new vector are cut
+    without recomputing the offsets (a backward pass without a workspace makes
+    one such list per call).
+    """
+
+    __slots__ = ("shapes", "size", "_parts")
+
+    def __init__(self, shapes: tuple[tuple[int, ...], ...]) -> None:
+        parts, start = [], 0
+        for shape in shapes:
+            stop = start + math.prod(shape)
+            parts.append((slice(start, stop), shape))
+            start = stop
+        self.shapes = shapes
+        self.size = start
+        self._parts = tuple(parts)
+
+    def views(self, vector: np.ndarray) -> ViewList:
+        """Consecutive views of ``vector`` (of length :attr:`size`) with these shapes."""
+        return ViewList(tuple([vector[part].reshape(shape) for part, shape in self._parts]), vector, self.shapes)
 
 
 def views_of(vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> ViewList:
     """Consecutive views of ``vector`` with the given shapes (their sizes must add up to its length)."""
-    arrays, start = [], 0
-    for shape in shapes:
-        stop = start + math.prod(shape)
-        arrays.append(vector[start:stop].reshape(shape))
-        start = stop
-    return ViewList(tuple(arrays), vector, shapes)
+    return Layout(shapes).views(vector)

@@ -122,10 +122,19 @@ class Optimizer:
         P, G = flat_vector(params), flat_vector(grads)
         if P is None or G is None or not self._flat_work:
             return None
-        shapes = self._shapes
-        if params.shapes != shapes or grads.shapes != shapes or P.dtype != self._flat_work[0].dtype:  # type: ignore[attr-defined]
+        same = self._has_layout(params.shapes) and self._has_layout(grads.shapes)  # type: ignore[attr-defined]
+        if not same or P.dtype != self._flat_work[0].dtype:
             return None  # not the layout of the first update: the per-array check explains
         return P, G
+
+    def _has_layout(self, shapes: tuple[tuple[int, ...], ...]) -> bool:
+        """``shapes == self._shapes``; the last equal tuple met is remembered and then recognised by identity."""
+        if shapes is self._same_shapes:
+            return True  # tuples do not change: equal when it was remembered, equal now
+        if shapes != self._shapes:
+            return False
+        self._same_shapes = shapes
+        return True
 
     def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
         raise NotImplementedError
@@ -171,6 +180,7 @@ class Optimizer:
         self._flat_slots: dict[str, list[np.ndarray]] = {}
         self._flat_work: list[np.ndarray] = []
         self._shapes = tuple(shape for shape, _ in self._layout)
+        self._same_shapes = self._shapes
         flat_work = flat_vector(self._work)
         if flat_work is None:
             return  # arrays of several dtypes are updated one by one
