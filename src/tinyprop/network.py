@@ -28,7 +28,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ._validate import as_float_array, as_samples, kind_of, seed_value
-from ._views import Layout, ViewList
+from ._views import Layout, ViewList, view_list
 from .activations import Activation, works_in_place
 from .init import SCHEMES, draw_weight
 from .layers import Affine, ColumnScaling
@@ -155,7 +155,7 @@ class Network:
         for layer, name, linked in self._sources:
             if getattr(layer, name) is not linked:  # replaced by assignment: vector re-links them
                 return [p for layer in self._affine for p in layer.params]
-        return ViewList(self._linked, self._vector, self._shapes)
+        return view_list(self._linked, self._vector, self._shapes)
 
     @property
     def n_params(self) -> int:

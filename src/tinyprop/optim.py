@@ -122,15 +122,17 @@ class Optimizer:
         P, G = flat_vector(params), flat_vector(grads)
         if P is None or G is None or not self._flat_work:
             return None
-        same = self._has_layout(params.shapes) and self._has_layout(grads.shapes)  # type: ignore[attr-defined]
+        p_shapes, g_shapes, known = params.shapes, grads.shapes, self._same_shapes  # type: ignore[attr-defined]
+        same = (p_shapes is known or self._has_layout(p_shapes)) and (g_shapes is known or self._has_layout(g_shapes))
         if not same or P.dtype != self._flat_work[0].dtype:
             return None  # not the layout of the first update: the per-array check explains
         return P, G
 
     def _has_layout(self, shapes: tuple[tuple[int, ...], ...]) -> bool:
-        """``shapes == self._shapes``; the last equal tuple met is remembered and then recognised by identity."""
-        if shapes is self._same_shapes:
-            return True  # tuples do not change: equal when it was remembered, equal now
+        """``shapes == self._shapes``; the last equal tuple met is remembered, so that it is recognised by identity.
+
+        (Tuples do not change: one that was equal when remembered is equal now.)
+        """
         if shapes != self._shapes:
             return False
         self._same_shapes = shapes
