@@ -306,7 +306,7 @@ class Network:
             d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
         rows = d_out.shape[0]
         if work is None:  # new arrays, views of one new flat vector: the caller may keep them
-            grads, ones = self._grad_layout.views(np.empty(self.n_params, self.dtype)), self._ones(rows)
+            grads, ones = self._grad_layout.views(np.empty(self._vector.size, self.dtype)), self._ones(rows)
         else:
             grads, ones = work.grads, work.ones(rows)
 
