@@ -339,8 +339,10 @@ class Network:
                 on_affine(i, layer, values[i], delta)
                 if i == self._first_affine and not need_input:
                     return None
-                out = None if work is None else work.scratch(delta.shape[0], layer.n_in)
-                delta = np.matmul(delta, layer.weight, out=out)  # delta_x = delta_z W
+                if work is None:
+                    delta = np.matmul(delta, layer.weight)  # delta_x = delta_z W
+                else:
+                    delta = np.matmul(delta, layer.weight, out=work.scratch(delta.shape[0], layer.n_in))
             elif kind is _ACTIVATION_IN_PLACE and work is not None:
                 a = values[i + 1]
                 for rows in work.row_blocks(*a.shape):
