@@ -109,3 +109,22 @@ def test_integer_inputs_are_converted_once_to_the_network_dtype(net):
     out = net.predict(np.array([[1, 2, 3]]))
     assert out.dtype == np.float64
     np.testing.assert_array_equal(out, net.predict(np.array([[1.0, 2.0, 3.0]])))
+
+
+@pytest.mark.parametrize("dtype, big", [(np.float64, 1e200), (np.float32, 1e30)])
+def test_finite_inputs_whose_squares_overflow_are_accepted_as_they_are(dtype, big):
+    """The quick input check (a sum of squares) overflows here; the exact check accepts the batch, silently."""
+    X = np.array([[big, -big, 0.5], [0.0, 1.0, -2.0]], dtype=dtype)  # C-contiguous, the network's dtype
+    net = tp.build_mlp([3, 4, 2], seed=0, dtype=dtype)
+    with np.errstate(all="raise"):  # no numpy warning may come from the check
+        out, trace = net.forward(X)
+    assert trace.values[0] is X
+    np.testing.assert_array_equal(out, net.predict(X))
+
+
+@pytest.mark.parametrize("order", ["C", "F"])
+def test_a_nan_in_a_batch_of_the_right_dtype_and_shape_is_refused(net, order):
+    X = np.asarray(np.arange(12.0).reshape(4, 3), order=order)
+    X[2, 1] = np.nan
+    with pytest.raises(ValueError, match=r"non-finite value \(nan\) at row 2, column 1"):
+        net.forward(X)

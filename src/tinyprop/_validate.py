@@ -64,6 +64,18 @@ def _sum_is_finite(array: np.ndarray) -> bool:
         return math.isfinite(array.sum())
 
 
+def _squares_are_finite(array: np.ndarray) -> bool:
+    """True when the sum of squares is finite, which proves every entry finite (a False may be overflow only).
+
+    One BLAS dot product of the contiguous ``array`` with itself, without a
+    temporary array and without numpy's floating-point warnings: a NaN or an
+    infinity makes the sum NaN or infinite; finite entries above about
+    ``sqrt(finfo.max)`` may overflow it too, a false alarm that the caller's
+    exact check settles.
+    """
+    return math.isfinite(np.vdot(array, array))
+
+
 def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.ndarray:
     """A 2-D ``(n, n_columns)`` sample matrix (samples are rows)."""
     if (
@@ -72,7 +84,7 @@ def as_samples(value: Any, name: str, n_columns: int, dtype: np.dtype) -> np.nda
         and value.ndim == 2
         and value.shape[1] == n_columns
         and value.shape[0] > 0
-        and _sum_is_finite(value)
+        and (_squares_are_finite(value) if value.flags.c_contiguous else _sum_is_finite(value))
     ):
         return value  # already right: the common case inside training loops, checked cheaply
     array = as_float_array(value, name, dtype)

@@ -11,26 +11,35 @@ is the same element for element.
 from __future__ import annotations
 
 import math
+from operator import is_
 from typing import Sequence
 
 import numpy as np
 
-__all__ = ["ViewList", "flat_vector", "views_of"]
+__all__ = ["Layout", "ViewList", "flat_vector", "view_list", "views_of"]
 
 
 class ViewList(list):
-    """A list of arrays that are, in order, the whole of the flat array ``vector``."""
+    """A list of arrays that are, in order, the whole of the flat array ``vector``; made by :func:`view_list`."""
 
     __slots__ = ("vector", "shapes", "_items")
 
-    def __init__(self, arrays: tuple[np.ndarray, ...], vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> None:
-        list.__init__(self, arrays)
-        self.vector = vector
-        self._items = arrays  # what the list held when it was made
-        self.shapes = shapes
-
 
 ViewList.__name__ = "list"  # a list in every respect; error messages that name the type say so
+
+
+def view_list(arrays: tuple[np.ndarray, ...], vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> ViewList:
+    """The :class:`ViewList` of ``arrays``, views of ``vector`` with ``shapes``.
+
+    (A function rather than ``__init__``: list's own constructor and three
+    attribute stores take half the time of a Python ``__init__``, and every
+    ``net.params`` and backward pass makes one.)
+    """
+    made = ViewList(arrays)
+    made.vector = vector
+    made._items = arrays  # what the list held when it was made
+    made.shapes = shapes
+    return made
 
 
 def flat_vector(arrays: Sequence[np.ndarray]) -> np.ndarray | None:
@@ -40,17 +49,37 @@ def flat_vector(arrays: Sequence[np.ndarray]) -> np.ndarray | None:
     items = arrays._items
     if len(arrays) != len(items):
         return None  # an element was added or removed since the list was made
-    for a, b in zip(arrays, items):
-        if a is not b:
-            return None  # an element was replaced
+    if not all(map(is_, arrays, items)):
+        return None  # an element was replaced
     return arrays.vector
+
+
+class Layout:
+    """Where arrays of the given shapes lie, one after another, in a flat vector.
+
+    Made once per list of shapes, so that views of each new vector are cut
+    without recomputing the offsets (a backward pass without a workspace makes
+    one such list per call).
+    """
+
+    __slots__ = ("shapes", "size", "_parts")
+
+    def __init__(self, shapes: tuple[tuple[int, ...], ...]) -> None:
+        parts, start = [], 0
+        for shape in shapes:
+            stop = start + math.prod(shape)
+            parts.append((slice(start, stop), shape if len(shape) != 1 else None))  # a 1-D slice needs no reshape
+            start = stop
+        self.shapes = shapes
+        self.size = start
+        self._parts = tuple(parts)
+
+    def views(self, vector: np.ndarray) -> ViewList:
+        """Consecutive views of ``vector`` (of length :attr:`size`) with these shapes."""
+        views = tuple([vector[part] if shape is None else vector[part].reshape(shape) for part, shape in self._parts])
+        return view_list(views, vector, self.shapes)
 
 
 def views_of(vector: np.ndarray, shapes: tuple[tuple[int, ...], ...]) -> ViewList:
     """Consecutive views of ``vector`` with the given shapes (their sizes must add up to its length)."""
-    arrays, start = [], 0
-    for shape in shapes:
-        stop = start + math.prod(shape)
-        arrays.append(vector[start:stop].reshape(shape))
-        start = stop
-    return ViewList(tuple(arrays), vector, shapes)
+    return Layout(shapes).views(vector)

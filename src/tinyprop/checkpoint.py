@@ -25,6 +25,7 @@ the state; :func:`tinyprop.train` then checks it against the run it resumes.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import math
 import os
@@ -226,29 +227,34 @@ def network_digest(net: Any, weights: list[np.ndarray] | None = None) -> str:
     the same digest when they have the same dtype, layer classes, settings
     (activation parameters, fixed scalings) and bit-identical parameters.
     """
-    params = net.params if weights is None else weights
+    arrays = [np.asarray(p) for p in (net.params if weights is None else weights)]
     layers = [
         {"class": f"{type(layer).__module__}.{type(layer).__qualname__}",
          "settings": layer.settings() if hasattr(layer, "settings") else None}
         for layer in net.layers
     ]
     description = {
-        "dtype": net.dtype.name,
-        "layers": layers,
-        "params": [[list(np.shape(p)), np.asarray(p).dtype.name, hashlib.sha256(array_bytes(np.asarray(p))).hexdigest()]
-                   for p in params],
+        "dtype": _dtype_name(net.dtype),
+        "layers": _plain(layers),  # the other entries are plain already
+        "params": [[list(a.shape), _dtype_name(a.dtype), hashlib.sha256(array_bytes(a)).hexdigest()] for a in arrays],
     }
-    return sha256_hex(canonical_json(_plain(description)))
+    return sha256_hex(canonical_json(description))
+
+
+@functools.lru_cache(maxsize=None)
+def _dtype_name(dtype: np.dtype) -> str:
+    """``dtype.name``, remembered: numpy computes it anew, in Python, on every access (about 1.6 us)."""
+    return dtype.name
 
 
 def _plain(value: Any) -> Any:
     """``value`` with every leaf JSON cannot hold (a custom activation's own setting types) replaced by its ``repr``."""
+    if value is None or isinstance(value, (str, int)) or (isinstance(value, float) and math.isfinite(value)):
+        return value  # the common case first (bool is an int)
     if isinstance(value, dict):
         return {str(key): _plain(item) for key, item in value.items()}
     if isinstance(value, (list, tuple)):
         return [_plain(item) for item in value]
-    if value is None or isinstance(value, (str, bool, int)) or (isinstance(value, float) and math.isfinite(value)):
-        return value
     return repr(value)
 
 

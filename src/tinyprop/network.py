@@ -28,7 +28,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ._validate import as_float_array, as_samples, kind_of, seed_value
-from ._views import ViewList, views_of
+from ._views import Layout, ViewList, view_list
 from .activations import Activation, works_in_place
 from .init import SCHEMES, draw_weight
 from .layers import Affine, ColumnScaling
@@ -133,8 +133,10 @@ class Network:
         self._steps = tuple(
             (_kind(layer, self.layers[i - 1] if i else None), layer) for i, layer in enumerate(self.layers)
         )
+        self._values_of = tuple(layer.value for layer in self.layers)  # each layer's new-array forward function
         self._backward_steps = tuple((i, kind, layer) for i, (kind, layer) in reversed(list(enumerate(self._steps))))
         self._shapes = tuple(p.shape for p in self._linked)
+        self._grad_layout = Layout(self._shapes)  # cuts the gradient views of a backward pass without workspace
         self._ones_for: dict[int, np.ndarray] = {}  # rows -> read-only vector of ones (never handed out)
         self._grad_slot = {}  # affine layer index -> index of its weight in params
         for i, layer in enumerate(self.layers):
@@ -153,7 +155,7 @@ class Network:
         for layer, name, linked in self._sources:
             if getattr(layer, name) is not linked:  # replaced by assignment: vector re-links them
                 return [p for layer in self._affine for p in layer.params]
-        return ViewList(self._linked, self._vector, self._shapes)
+        return view_list(self._linked, self._vector, self._shapes)
 
     @property
     def n_params(self) -> int:
@@ -241,10 +243,12 @@ class Network:
         epoch, and its divergence guard catches non-finite results.
         """
         if workspace is None:
-            values = [as_samples(X, "X", self.n_in, self.dtype)]
-            for _, layer in self._steps:
-                values.append(layer.value(values[-1]))
-            return values[-1], Trace(tuple(values))
+            v = as_samples(X, "X", self.n_in, self.dtype)
+            values = [v]
+            for value_of in self._values_of:
+                v = value_of(v)
+                values.append(v)
+            return v, Trace(tuple(values))
         x = X if _is_batch(X, self.n_in, self.dtype) else as_samples(X, "X", self.n_in, self.dtype)
         generation = self._claim(workspace, x.shape[0])
         values = [x]
@@ -302,7 +306,7 @@ class Network:
             d_out = d_out.copy()  # the in-place derivative may overwrite its delta; never the caller's
         rows = d_out.shape[0]
         if work is None:  # new arrays, views of one new flat vector: the caller may keep them
-            grads, ones = views_of(np.empty(self.n_params, self.dtype), self._shapes), self._ones(rows)
+            grads, ones = self._grad_layout.views(np.empty(self._vector.size, self.dtype)), self._ones(rows)
         else:
             grads, ones = work.grads, work.ones(rows)
 
@@ -335,8 +339,10 @@ class Network:
                 on_affine(i, layer, values[i], delta)
                 if i == self._first_affine and not need_input:
                     return None
-                out = None if work is None else work.scratch(delta.shape[0], layer.n_in)
-                delta = np.matmul(delta, layer.weight, out=out)  # delta_x = delta_z W
+                if work is None:
+                    delta = np.matmul(delta, layer.weight)  # delta_x = delta_z W
+                else:
+                    delta = np.matmul(delta, layer.weight, out=work.scratch(delta.shape[0], layer.n_in))
             elif kind is _ACTIVATION_IN_PLACE and work is not None:
                 a = values[i + 1]
                 for rows in work.row_blocks(*a.shape):

@@ -103,17 +103,13 @@ class Optimizer:
         multiplier = 1.0 if self.schedule is None else self.schedule.multiplier(self.steps)
         if flat is not None:
             self.steps += 1
-            slots, work = self._slots, self._work
-            self._slots, self._work = self._flat_slots, self._flat_work
-            try:
-                self._apply(0, flat[0], flat[1], multiplier)
-            finally:
-                self._slots, self._work = slots, work
+            self._apply(self._flat_slots, self._flat_work, 0, flat[0], flat[1], multiplier)
             return
         grads = self._clip(grads)
         self.steps += 1
+        slots, work = self._slots, self._work
         for i, (p, g) in enumerate(zip(params, grads)):
-            self._apply(i, p, g, multiplier)
+            self._apply(slots, work, i, p, g, multiplier)
 
     def _flat_pair(
         self, params: Sequence[np.ndarray], grads: Sequence[np.ndarray]
@@ -122,12 +118,31 @@ class Optimizer:
         P, G = flat_vector(params), flat_vector(grads)
         if P is None or G is None or not self._flat_work:
             return None
-        shapes = self._shapes
-        if params.shapes != shapes or grads.shapes != shapes or P.dtype != self._flat_work[0].dtype:  # type: ignore[attr-defined]
+        p_shapes, g_shapes, known = params.shapes, grads.shapes, self._same_shapes  # type: ignore[attr-defined]
+        same = (p_shapes is known or self._has_layout(p_shapes)) and (g_shapes is known or self._has_layout(g_shapes))
+        if not same or P.dtype != self._flat_work[0].dtype:
             return None  # not the layout of the first update: the per-array check explains
         return P, G
 
-    def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
+    def _has_layout(self, shapes: tuple[tuple[int, ...], ...]) -> bool:
+        """``shapes == self._shapes``; the last equal tuple met is remembered, so that it is recognised by identity.
+
+        (Tuples do not change: one that was equal when remembered is equal now.)
+        """
+        if shapes != self._shapes:
+            return False
+        self._same_shapes = shapes
+        return True
+
+    def _apply(
+        self, slots: dict[str, list[np.ndarray]], scratch: list[np.ndarray], i: int, p: np.ndarray, g: np.ndarray,
+        multiplier: float,
+    ) -> None:
+        """Update ``p`` from ``g`` in place, with state ``slots[name][i]`` and scratch array ``scratch[i]``.
+
+        ``slots`` and ``scratch`` are the per-array lists, or, for an update of all
+        arrays at once, the one-element lists of the flat vectors (``i == 0``).
+        """
         raise NotImplementedError
 
     def _clip(self, grads: Sequence[np.ndarray]) -> Sequence[np.ndarray]:
@@ -171,6 +186,7 @@ class Optimizer:
         self._flat_slots: dict[str, list[np.ndarray]] = {}
         self._flat_work: list[np.ndarray] = []
         self._shapes = tuple(shape for shape, _ in self._layout)
+        self._same_shapes = self._shapes
         flat_work = flat_vector(self._work)
         if flat_work is None:
             return  # arrays of several dtypes are updated one by one
@@ -413,13 +429,16 @@ class SGD(Optimizer):
     def _own_settings(self) -> dict[str, Any]:
         return {"momentum": self.momentum, "nesterov": self.nesterov}
 
-    def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
-        step = self._work[i]
+    def _apply(
+        self, slots: dict[str, list[np.ndarray]], scratch: list[np.ndarray], i: int, p: np.ndarray, g: np.ndarray,
+        multiplier: float,
+    ) -> None:
+        step = scratch[i]
         np.multiply(g, self.lr * multiplier, out=step)  # lr_t g
         if self.momentum == 0.0:
             p -= step
             return
-        v = self._slots["velocity"][i]
+        v = slots["velocity"][i]
         v *= self.momentum
         v -= step
         if self.nesterov:
@@ -467,8 +486,11 @@ class RMSProp(Optimizer):
     def _own_settings(self) -> dict[str, Any]:
         return {"beta": self.beta, "epsilon": self.epsilon}
 
-    def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
-        r, work = self._slots["mean_square"][i], self._work[i]
+    def _apply(
+        self, slots: dict[str, list[np.ndarray]], scratch: list[np.ndarray], i: int, p: np.ndarray, g: np.ndarray,
+        multiplier: float,
+    ) -> None:
+        r, work = slots["mean_square"][i], scratch[i]
         np.multiply(g, g, out=work)
         work *= 1.0 - self.beta
         r *= self.beta
@@ -534,14 +556,17 @@ class Adam(Optimizer):
             "decoupled_decay": self.decoupled_decay,
         }
 
-    def _apply(self, i: int, p: np.ndarray, g: np.ndarray, multiplier: float) -> None:
+    def _apply(
+        self, slots: dict[str, list[np.ndarray]], scratch: list[np.ndarray], i: int, p: np.ndarray, g: np.ndarray,
+        multiplier: float,
+    ) -> None:
         """Algorithm 1 in 12 elementwise passes (no pass divides by the bias corrections).
 
         ``m + (1 - beta1)(g - m)`` is the moment update rearranged, and with
         ``c1 = 1 - beta1**t``, ``c2 = 1 - beta2**t``:
         ``m_hat / (sqrt(v_hat) + epsilon) = (sqrt(c2) / c1) m / (sqrt(v) + epsilon sqrt(c2))``.
         """
-        m, v, work = self._slots["first_moment"][i], self._slots["second_moment"][i], self._work[i]
+        m, v, work = slots["first_moment"][i], slots["second_moment"][i], scratch[i]
         root_c2 = math.sqrt(1.0 - self.beta2**self.steps)
         np.subtract(g, m, out=work)
         work *= 1.0 - self.beta1
