@@ -91,10 +91,10 @@ def run(args: argparse.Namespace) -> int:
                      f"largest error {test['max_abs_error']:.4f}, on {sizes['test']} synthetic test rows")
 
     clock = time.perf_counter()
-    files = _save_and_export(out, net, data, outcome, training_envelope(data.X[split.training], data.input_names, 0.0),
-                             metrics["test"])
+    envelope = training_envelope(data.X[split.training], data.input_names, 0.0)
+    files = _save_and_export(out, net, data, outcome, envelope, metrics["test"])
     agreement = _check_python_export(files["Python code"][0], net, data.X[split.test])
-    fixed = _export_fixed_point(out, net, data, split.training, split.test)
+    fixed = _export_fixed_point(out, net, data, envelope, test["rmse"])
     files["integer C"] = [fixed.header, fixed.source]
     files["report"] = [out / "report.json"]
     plots, plot_note = write_plots(out, outcome.history, data.y[split.test], net.predict(data.X[split.test]),
@@ -120,8 +120,10 @@ def run(args: argparse.Namespace) -> int:
     print(f"   (the exported Python gives the network's outputs on the {agreement['rows']} test rows to within "
           f"the rounding bound; largest difference {agreement['max_abs_difference']:.1e})")
     fixed_error = extra["exports"]["c_fixed_point_test_error"]
-    print(f"   (the integer C, with number formats calibrated on the {split.training.size} training rows, is within "
-          f"{fixed_error['max_abs_error']:.1e} of the network's outputs on the test rows)")
+    proof = "proven free of saturation over" if fixed_error["saturation_free"] else "NOT proven free of saturation in"
+    print(f"   (the integer C, with number formats {proof} the training rows' envelope, "
+          f"is within {fixed_error['max_abs_error']:.1e} of the network's outputs on the test rows; proven bound "
+          f"over the whole envelope {fixed_error['proven_bound']:.1e}, the test RMSE {test['rmse']:.1e})")
     model = files["model"][0]
     print("\nnext:")
     print(f"   tinyprop inspect {model}")
@@ -153,19 +155,18 @@ def _save_and_export(
     }
 
 
-def _export_fixed_point(
-    out: Path, net: Network, data: Dataset, training: np.ndarray, test: np.ndarray
-) -> FixedPointReport:
-    """Integer-only C calibrated on the training rows (the test rows stay unseen, as on a device)."""
-    return export_c_fixed_point(net, output_folder(out / "c-fixed"), data.X[training], name=f"{NAME}_q",
-                                metadata=data.ports())
+def _export_fixed_point(out: Path, net: Network, data: Dataset, envelope: Envelope, rmse: float) -> FixedPointReport:
+    """Integer-only C with formats proven over the training envelope, its error bound compared with the test RMSE."""
+    return export_c_fixed_point(net, output_folder(out / "c-fixed"), name=f"{NAME}_q", metadata=data.ports(),
+                                envelope=envelope, tolerance=rmse)
 
 
 def _fixed_point_test_error(fixed: FixedPointReport, net: Network, X: np.ndarray) -> dict[str, Any]:
-    """The integer arithmetic against the network on rows it was not calibrated on."""
+    """The integer arithmetic against the network on the test rows, and its proven bound over the envelope."""
     error = np.abs(fixed.predict(X) - net.predict(X))
     return {"rows": int(X.shape[0]), "max_abs_error": float(error.max()),
-            "saturations": int(sum(fixed.saturations(X).values()))}
+            "saturations": int(sum(fixed.saturations(X).values())), "proven_bound": float(fixed.error_bound.max()),
+            "saturation_free": bool(fixed.saturation_free)}
 
 
 def _check_python_export(path: Path, net: Network, X: np.ndarray) -> dict[str, Any]:
