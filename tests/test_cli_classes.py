@@ -14,6 +14,7 @@ import importlib.util
 import json
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +24,7 @@ import tinyprop as tp
 from tinyprop.classify import encode_labels, stratified_split
 from tinyprop.cli import main
 from tinyprop.datasets import load_iris, machine_states, write_machine_csv
+from tinyprop.export.classes import fixed_point_class_agreement
 
 FAST = ["--epochs", "15", "--hidden", "6"]
 
@@ -73,6 +75,15 @@ def test_train_on_a_text_column_fits_the_library_recipe_bit_for_bit(classifier_r
     assert report["fit"]["penalty"] == fitted.penalty
     assert "test: accuracy" in result.stdout and "recall precision" in result.stdout
     assert "not certified for safety functions" in report["safety"]
+    # the integer-code check at training time is of the code 'tinyprop export --language c-fixed' writes:
+    # formats proven over the stored envelope, not calibrated on the training rows
+    integer = report["integer_code"]
+    assert integer["formats"] == "training envelope" and integer["saturation_free"] is True
+    envelope = tp.Envelope.from_metadata(model.metadata)
+    with tempfile.TemporaryDirectory() as code:
+        exported = tp.export_c_fixed_point(model.network, code, name="model_q", envelope=envelope)
+    agreement = fixed_point_class_agreement(exported, model.network, X[test])
+    assert {key: integer[key] for key in agreement.to_dict()} == agreement.to_dict()
 
 
 def test_predict_round_trip_on_the_training_csv_equals_the_library(classifier_run, tmp_path):

@@ -15,6 +15,7 @@ import os
 import sys
 import tempfile
 import time
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -25,7 +26,8 @@ from ..classify import Classifier, encode_labels, stratified_split
 from ..classmetrics import ClassificationMetrics, classification_metrics
 from ..csvdata import CsvError, CsvTable
 from ..csvlabels import is_text_column, label_cells
-from ..export import export_c_fixed_point
+from ..envelope import Envelope
+from ..export import ErrorBoundWarning, export_c_fixed_point
 from ..export.classes import fixed_point_class_agreement
 from ..modelfile import save
 from ..plots import PLOT_HINT, PlotsUnavailable, confusion_plot, reliability_diagram
@@ -139,10 +141,12 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     shown = metrics["test"] or metrics["training"]
     assert shown is not None
     print("\n".join(str(shown).splitlines()[1:]))
-    integer = _integer_code_agreement(net, X[training], X[test if test.size else training])
-    print(f"integer-only C (formats from the training rows), on the {'test' if test.size else 'training'} rows: "
+    stored_envelope = training_envelope(X[training], inputs, args.envelope_margin)
+    integer = _integer_code_agreement(net, stored_envelope, X[test if test.size else training])
+    print(f"integer-only C (formats from the training envelope, as 'tinyprop export' writes it), on the "
+          f"{'test' if test.size else 'training'} rows: "
           f"{integer['agreement'] if 'agreement' in integer else integer['unavailable']}")
-    envelope = training_envelope(X[training], inputs, args.envelope_margin).to_metadata()
+    envelope = stored_envelope.to_metadata()
     metadata = {
         "description": f"classifier of {target} fitted by tinyprop train to {Path(args.data).name}",
         "inputs": [{"name": name} for name in inputs],
@@ -189,15 +193,21 @@ def run(args: argparse.Namespace, table: CsvTable, target: str, inputs: list[str
     return 0
 
 
-def _integer_code_agreement(net: Any, calibration: np.ndarray, rows: np.ndarray) -> dict[str, Any]:
-    """How the integer-only C code (formats from ``calibration``) decides on ``rows`` against the float64 network."""
+def _integer_code_agreement(net: Any, envelope: Envelope, rows: np.ndarray) -> dict[str, Any]:
+    """How the integer-only C code (formats proven over ``envelope``) decides on ``rows`` against the float64 network.
+
+    The same code ``tinyprop export --language c-fixed`` writes from the envelope stored in the model.
+    """
     try:
-        with tempfile.TemporaryDirectory() as folder:
-            report = export_c_fixed_point(net, folder, calibration, name="model_q")
+        with tempfile.TemporaryDirectory() as folder, warnings.catch_warnings():
+            warnings.simplefilter("ignore", ErrorBoundWarning)  # the proof's outcome is reported below
+            report = export_c_fixed_point(net, folder, name="model_q", envelope=envelope)
     except (TypeError, ValueError) as exc:  # e.g. weights no int16 format holds
         return {"unavailable": f"not available ({exc})"}
     agreement = fixed_point_class_agreement(report, net, rows)
-    return {"calibration": "training rows", **agreement.to_dict(), "agreement": str(agreement)}
+    text = str(agreement) + ("" if report.saturation_free else "; saturation inside the envelope NOT proven")
+    return {"formats": "training envelope", "saturation_free": bool(report.saturation_free),
+            **agreement.to_dict(), "agreement": text}
 
 
 def _split(indices: np.ndarray, fraction: float, seed: int, classes: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
