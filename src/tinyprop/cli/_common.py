@@ -216,6 +216,13 @@ def stored_names(metadata: dict, key: str) -> list[str] | None:
     return [e["name"] for e in entries]
 
 
+def require_one_per_input(n_in: int, *options: tuple[str, Sequence[float]]) -> None:
+    """Refuse (exit 2) an option such as ``--low`` whose comma-separated numbers are not one per model input."""
+    for option, values in options:
+        if len(values) != n_in:
+            raise CommandError(f"{option} must give one number per model input ({n_in}), got {len(values)}", USAGE)
+
+
 def warn_outside_envelope(command: str, metadata: dict, X: np.ndarray, rows: str) -> None:
     """Warn on stderr when rows of ``X`` lie outside the model's stored envelope: a summary, then a line per input.
 

@@ -19,7 +19,7 @@ from .._json import finite_or_none
 from ..bounds import UndeclaredActivation, certificate
 from ..envelope import Envelope, EnvelopeError
 from . import _args
-from ._common import SAFETY, USAGE, CommandError, read_model, stored_names, write_json
+from ._common import SAFETY, USAGE, CommandError, read_model, require_one_per_input, stored_names, write_json
 from ._imports import add_import_option, import_modules
 
 HELP = "prove bounds on a model's outputs and slopes over an input box; print them, write them as JSON"
@@ -54,9 +54,7 @@ def run(args: argparse.Namespace) -> int:
     model = read_model(args.model)
     net = model.network
     low, high = _box(args, model.metadata, net.n_in)
-    for option, values in (("--low", low), ("--high", high)):
-        if len(values) != net.n_in:
-            raise CommandError(f"{option} must give one number per model input ({net.n_in}), got {len(values)}", USAGE)
+    require_one_per_input(net.n_in, ("--low", low), ("--high", high))
     inputs = stored_names(model.metadata, "inputs")
     outputs = stored_names(model.metadata, "outputs")
     try:

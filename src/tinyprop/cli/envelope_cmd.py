@@ -15,7 +15,7 @@ import argparse
 from ..envelope import Envelope, EnvelopeError
 from ..modelfile import ModelFile, save
 from . import _args
-from ._common import USAGE, CommandError, describe_os_error, read_model, stored_names
+from ._common import USAGE, CommandError, describe_os_error, read_model, require_one_per_input, stored_names
 from ._imports import add_import_option, import_modules
 
 HELP = "show, set or widen the operating envelope stored in a model file; write the model with the new one"
@@ -74,10 +74,7 @@ def _changed(args: argparse.Namespace, model: ModelFile, stored: Envelope | None
     envelope = stored
     try:
         if args.low is not None:
-            for option, values in (("--low", args.low), ("--high", args.high)):
-                if len(values) != n_in:
-                    raise CommandError(f"{option} must give one number per model input ({n_in}), got "
-                                       f"{len(values)}", USAGE)
+            require_one_per_input(n_in, ("--low", args.low), ("--high", args.high))
             envelope = Envelope(args.low, args.high, names, "set by user")
         for text in args.limits or []:
             which, low, high = _one_input(text)

@@ -35,6 +35,7 @@ from ._common import (
     read_model,
     read_table,
     require_columns,
+    require_one_per_input,
     stored_names,
     warn,
     warn_rows_outside,
@@ -80,10 +81,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     fixed.add_argument("--headroom", type=_args.positive_float, default=None,
                        help="margin above the largest calibrated (or guaranteed) magnitude, at least 1 (default 2 "
                             "with --calibration, 1 with an envelope)")
-    fixed.add_argument("--envelope-low", type=_numbers, metavar="NUMBERS",
+    fixed.add_argument("--envelope-low", type=_args.numbers, metavar="NUMBERS",
                        help="lowest value of each input, comma-separated (with --envelope-high; default: the "
                             "envelope stored in the model)")
-    fixed.add_argument("--envelope-high", type=_numbers, metavar="NUMBERS",
+    fixed.add_argument("--envelope-high", type=_args.numbers, metavar="NUMBERS",
                        help="highest value of each input, comma-separated (with --envelope-low)")
     fixed.add_argument("--tolerance", type=_args.positive_float, metavar="NUMBER",
                        help="warn when a proven error bound over the envelope exceeds this (output units; default: the "
@@ -234,19 +235,11 @@ def _tolerance(args: argparse.Namespace, model: ModelFile) -> tuple[Any, str]:
     return None, "no tolerance"
 
 
-def _numbers(text: str) -> list[float]:
-    """Comma-separated finite numbers (one per input)."""
-    return [_args.number(part) for part in text.split(",")]
-
-
 def _envelope(args: argparse.Namespace, model: ModelFile) -> Envelope | None:
     """The box of ``--envelope-low``/``--envelope-high``, else the model's stored envelope, else ``None``."""
     n_in = model.network.n_in
     if args.envelope_low is not None:
-        for option, values in (("--envelope-low", args.envelope_low), ("--envelope-high", args.envelope_high)):
-            if len(values) != n_in:
-                raise CommandError(f"{option} must give one number per model input ({n_in}), got {len(values)}",
-                                   USAGE)
+        require_one_per_input(n_in, ("--envelope-low", args.envelope_low), ("--envelope-high", args.envelope_high))
         try:
             return Envelope(args.envelope_low, args.envelope_high, source="set by user")
         except ValueError as exc:
